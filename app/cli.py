@@ -1,0 +1,135 @@
+"""The ``swarmaudit`` command: inspect, export, check, serve, demo."""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+
+from ..core.errors import SwarmAuditError
+from .options import add_run_options, context_from_options
+
+
+def _positive_float(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"takes a positive number, got '{text}'") from None
+    if not (v > 0) or v == float("inf"):
+        raise argparse.ArgumentTypeError(f"takes a positive number, got '{text}'")
+    return v
+
+
+def _physics_options(p):
+    g = p.add_argument_group("physics")
+    g.add_argument("--relativistic", action="store_true",
+                   help="kinetic energy as (γ-1)mc² from momentum per unit mass (ux, uy, uz)")
+    g.add_argument("--c", type=_positive_float, metavar="C",
+                   help="speed of light in the run's units (default: SI, 299792458 m/s)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="swarmaudit",
+                                description="Audit the particle dumps of a block-structured particle run.")
+    p.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    q = sub.add_parser("inspect", help="what is in a run: snapshots, species, columns and roles, layout")
+    add_run_options(q)
+    q.add_argument("--json", action="store_true", help="machine-readable output")
+
+    e = sub.add_parser("export", help="figures (PNG), tables (CSV) and report.html, headless")
+    add_run_options(e)
+    _physics_options(e)
+    e.add_argument("--out", required=True, metavar="DIR", help="folder to write into (created)")
+    e.add_argument("--snapshots", default="first,last", metavar="WHICH",
+                   help="snapshots to draw: first,last (default), all, or positions like 0,5,-1")
+    e.add_argument("--rtol", type=_positive_float, metavar="X",
+                   help="also gate like 'check': exit 1 when a total leaves this band")
+    e.add_argument("--width", type=int, default=900, help="figure width in pixels (default 900)")
+    e.add_argument("--height", type=int, default=700, help="figure height in pixels (default 700)")
+    e.add_argument("--dpi", type=int, default=100, help="dots per inch of the PNGs (default 100)")
+    e.add_argument("--cmap", default="viridis", help="colour map name (default viridis)")
+    e.add_argument("--scale", choices=("linear", "log", "eq_hist"), default="eq_hist",
+                   help="colour scaling of density images (default eq_hist)")
+    e.add_argument("--space", metavar="A,B", help="columns of the spatial view (default: first two position axes)")
+    e.add_argument("--phase", metavar="A,B", help="columns of the phase-space view (default: x against its momentum)")
+    e.add_argument("--range", action="append", default=[], metavar="COL=LO,HI",
+                   help="axis range of a column in the views (repeatable)")
+    e.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    c = sub.add_parser("check", help="gate: exit 1 when a conserved total drifts past --rtol")
+    add_run_options(c)
+    _physics_options(c)
+    c.add_argument("--rtol", type=_positive_float, required=True, metavar="X",
+                   help="largest relative drift allowed against the first snapshot")
+    c.add_argument("--quantities", metavar="NAMES",
+                   help="only these totals (e.g. count,charge,total_energy); default every one")
+
+    s = sub.add_parser("serve", help="the dashboard in a browser")
+    add_run_options(s)
+    _physics_options(s)
+    _serve_options(s)
+
+    d = sub.add_parser("demo", help="write the demo runs and serve them")
+    d.add_argument("--out", default="swarmaudit-demo", metavar="DIR", help="where to write (default ./swarmaudit-demo)")
+    d.add_argument("--particles", type=int, default=None, metavar="N",
+                   help="particles of the main run (default 250000; millions for scale tests)")
+    d.add_argument("--snapshots", type=int, default=None, metavar="K", help="snapshots of the main run (default 40)")
+    d.add_argument("--no-serve", action="store_true", help="only write the runs")
+    d.add_argument("--force", action="store_true", help="write again even if the runs are there")
+    _serve_options(d)
+    return p
+
+
+def _serve_options(p):
+    p.add_argument("--port", type=int, default=5006, help="port (default 5006; 0 picks a free one)")
+    p.add_argument("--share", action="store_true",
+                   help="listen on the network too, behind a password printed at start")
+    p.add_argument("--password", help="password for --share (default: a generated one)")
+    p.add_argument("--no-browser", action="store_true", help="do not open a browser")
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return _dispatch(args)
+    except SwarmAuditError as exc:
+        print(f"swarmaudit: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("swarmaudit: interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        return 0
+    except Exception as exc:  # a bug, not the user's fault: one line unless asked
+        if args.debug or os.environ.get("SWARMAUDIT_DEBUG"):
+            raise
+        print(f"swarmaudit: internal error: {type(exc).__name__}: {exc} "
+              "(run again with --debug for details)", file=sys.stderr)
+        return 3
+
+
+def _dispatch(args) -> int:
+    if args.command == "demo":
+        from ..demo_data.generate import demo_command
+        return demo_command(args)
+    ctx = context_from_options(args)
+    if args.command == "inspect":
+        from .inspect_cmd import run_inspect
+        return run_inspect(ctx, as_json=args.json)
+    if args.command == "export":
+        from .export import run_export
+        return run_export(ctx, args)
+    if args.command == "check":
+        from .check import run_check
+        return run_check(ctx, args)
+    if args.command == "serve":
+        from .serve import run_serve
+        return run_serve(ctx, args)
+    raise AssertionError(args.command)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

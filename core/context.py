@@ -1,0 +1,83 @@
+"""What every command works on: a run, its layout(s) and the user's choices."""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import InputError
+from .layout import BlockLayout, bounding_layout
+from .run import Run
+
+
+@dataclass
+class AuditContext:
+    """A run plus how to find the block layout of each snapshot.
+
+    Layout precedence: the command line (``--domain/--cells/--blocks`` or
+    ``--layout``), else the snapshot's own ``blocks`` group, else a
+    ``layout.csv``/``blocks.csv`` beside the snapshots, else one block around
+    the first snapshot's particles (with a warning).
+    """
+
+    run: Run
+    fixed_layout: BlockLayout | None = None
+    species: list[str] | None = None        # None: every species
+    engine: str = "auto"                    # auto | memory | dask
+    scheduler: str | None = None
+    relativistic: bool = False
+    c: float | None = None                  # speed of light in the run's units (None: SI)
+    notes: list[str] = field(default_factory=list)
+    _sidecar: BlockLayout | None | bool = field(default=False, repr=False)
+    _fallback: BlockLayout | None = field(default=None, repr=False)
+
+    def species_names(self) -> list[str]:
+        names = self.run.species_names()
+        if self.species:
+            missing = [s for s in self.species if s not in names]
+            if missing:
+                raise InputError(self.run.source, f"no species {', '.join(missing)} in this run",
+                                 f"species are: {', '.join(names)}")
+            return [s for s in names if s in self.species]
+        return names
+
+    def _find_sidecar(self):
+        if self._sidecar is False:
+            self._sidecar = None
+            from ..readers.layout_files import read_layout_csv
+            folders = []
+            for ref in self.run.refs[:1]:
+                p = ref.paths[0]
+                folders += [os.path.dirname(p), os.path.dirname(os.path.dirname(p))]
+            for folder in folders:
+                for name in ("layout.csv", "blocks.csv"):
+                    cand = os.path.join(folder or ".", name)
+                    if os.path.isfile(cand):
+                        self._sidecar = read_layout_csv(cand)
+                        return self._sidecar
+        return self._sidecar
+
+    def layout(self, i: int) -> BlockLayout:
+        """The block layout in force at snapshot ``i``."""
+        if self.fixed_layout is not None:
+            return self.fixed_layout
+        snap = self.run[i]
+        if snap.layout is not None:
+            return snap.layout
+        side = self._find_sidecar()
+        if side is not None:
+            return side
+        if self._fallback is None:
+            first = self.run[0]
+            frames = [f for f in first.species.values() if f.ndim > 0 and f.length > 0]
+            if not frames:
+                raise InputError(first.path, "has no particles with positions to place a layout around",
+                                 "give --domain, --cells and --blocks")
+            d = frames[0].ndim
+            cols = [np.concatenate([f.positions()[a] for f in frames if f.ndim == d]) for a in range(d)]
+            self._fallback = bounding_layout(cols)
+            self.notes.append("no block layout given or stored: using one block around the first "
+                              "snapshot's particles (give --domain/--cells/--blocks or --layout)")
+        return self._fallback

@@ -1,0 +1,219 @@
+"""The common in-memory model: a lazily read columnar Frame per species, a Snapshot.
+
+A reader builds a :class:`Frame` from *loaders*: one zero-argument callable per
+column that reads that column (and nothing else) from the file. Nothing is
+read until a column is asked for, so a view of ``x`` against ``ux`` never
+touches the other columns.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable, Mapping
+
+import numpy as np
+
+from .errors import InputError
+from .roles import (MOMENTUM_ROLES, POSITION_ROLES, PROPER_VELOCITY_ROLES,
+                    VELOCITY_ROLES, RoleMap)
+
+Loader = Callable[[], np.ndarray]
+
+
+class Frame:
+    """One species of one snapshot, as named columns of equal length.
+
+    ``frame[name]`` reads (once) and returns a 1-D array. ``frame.reads``
+    counts the reads that reached a file, which tests use to prove laziness.
+    """
+
+    def __init__(self, species: str, length: int, loaders: Mapping[str, Loader], *,
+                 units: Mapping[str, str] | None = None,
+                 attrs: Mapping[str, object] | None = None,
+                 source: str | None = None,
+                 role_map: RoleMap | None = None,
+                 cache: bool = True):
+        self.species = species
+        self.length = int(length)
+        self._loaders = dict(loaders)
+        self.units = dict(units or {})
+        self.attrs = dict(attrs or {})
+        self.source = source
+        self.role_map = role_map or RoleMap()
+        self._cache_enabled = cache
+        self._cache: dict[str, np.ndarray] = {}
+        self.reads = 0
+        self._roles: dict[str, str] | None = None
+
+    # columns -----------------------------------------------------------
+    @property
+    def columns(self) -> list[str]:
+        return list(self._loaders)
+
+    def __len__(self) -> int:
+        return self.length
+
+    def __contains__(self, name) -> bool:
+        return name in self._loaders
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        if name in self._cache:
+            return self._cache[name]
+        try:
+            loader = self._loaders[name]
+        except KeyError:
+            raise InputError(self.source, f"species '{self.species}' has no column '{name}'",
+                             f"columns are: {', '.join(self.columns)}") from None
+        arr = loader()
+        self.reads += 1
+        arr = np.asarray(arr) if not isinstance(arr, np.ndarray) else arr
+        if arr.ndim != 1 or arr.shape[0] != self.length:
+            raise InputError(self.source, f"column '{name}' of species '{self.species}' has "
+                             f"shape {arr.shape}, expected ({self.length},)")
+        if self._cache_enabled:
+            self._cache[name] = arr
+        return arr
+
+    def loader(self, name: str) -> Loader:
+        return self._loaders[name]
+
+    def drop_cache(self) -> None:
+        self._cache.clear()
+
+    def with_role_map(self, role_map: RoleMap) -> "Frame":
+        """The same columns seen through another role map (shares loaders, not cache)."""
+        f = Frame(self.species, self.length, self._loaders, units=self.units, attrs=self.attrs,
+                  source=self.source, role_map=role_map, cache=self._cache_enabled)
+        return f
+
+    def select(self, columns) -> "Frame":
+        """Only the named columns (others are not even reachable)."""
+        missing = [c for c in columns if c not in self._loaders]
+        if missing:
+            raise InputError(self.source, f"species '{self.species}' has no column "
+                             f"{', '.join(repr(m) for m in missing)}")
+        return Frame(self.species, self.length, {c: self._loaders[c] for c in columns},
+                     units=self.units, attrs=self.attrs, source=self.source,
+                     role_map=self.role_map, cache=self._cache_enabled)
+
+    # roles ---------------------------------------------------------------
+    @property
+    def roles(self) -> dict[str, str]:
+        if self._roles is None:
+            self._roles = self.role_map.resolve(self.columns)
+        return self._roles
+
+    def column_for(self, role: str) -> str | None:
+        return self.roles.get(role)
+
+    def role(self, role: str) -> np.ndarray | None:
+        """The column playing ``role``, or None when the frame has none."""
+        name = self.roles.get(role)
+        return None if name is None else self[name]
+
+    @property
+    def position_names(self) -> list[str]:
+        return [self.roles[r] for r in POSITION_ROLES if r in self.roles]
+
+    @property
+    def ndim(self) -> int:
+        return len(self.position_names)
+
+    def positions(self) -> list[np.ndarray]:
+        return [self[n] for n in self.position_names]
+
+    def momentum_kind(self) -> str | None:
+        """'v' (velocity), 'u' (γv, momentum per unit mass) or 'p' (momentum), whichever exists."""
+        for kind, roles in (("u", PROPER_VELOCITY_ROLES), ("p", MOMENTUM_ROLES), ("v", VELOCITY_ROLES)):
+            if any(r in self.roles for r in roles):
+                return kind
+        return None
+
+    def momentum_names(self) -> list[str]:
+        kind = self.momentum_kind()
+        roles = {"u": PROPER_VELOCITY_ROLES, "p": MOMENTUM_ROLES, "v": VELOCITY_ROLES}.get(kind, ())
+        return [self.roles[r] for r in roles if r in self.roles]
+
+    def key_columns(self) -> tuple[str, ...] | None:
+        return self.role_map.key_columns(self.columns, self.roles)
+
+    def per_particle(self, role: str, default: float | None = None):
+        """A column for ``role`` if there is one, else the species attribute, else ``default``.
+
+        Used for weight (default 1), mass and charge (column, else species attribute).
+        """
+        arr = self.role(role)
+        if arr is not None:
+            return arr
+        if role in self.attrs and self.attrs[role] is not None:
+            return float(self.attrs[role])
+        return default
+
+    def unit(self, name: str) -> str:
+        return self.units.get(name, "")
+
+    def __repr__(self) -> str:
+        return f"Frame({self.species!r}, n={self.length}, columns={self.columns})"
+
+
+def concat_frames(parts: list[Frame], *, species: str, rank_values=None, source=None) -> Frame:
+    """Join per-rank parts of one species into one frame.
+
+    Columns present in every part are kept. When no part has a rank column,
+    ``rank`` is filled with ``rank_values[i]`` for part ``i``.
+    """
+    if len(parts) == 1 and rank_values is None:
+        return parts[0]
+    common = [c for c in parts[0].columns if all(c in p for p in parts[1:])]
+    lengths = [p.length for p in parts]
+    loaders: dict[str, Loader] = {}
+    for c in common:
+        loaders[c] = (lambda c=c: np.concatenate([p[c] for p in parts]) if parts else np.empty(0))
+    rank_named = any("rank" in p.roles for p in parts)
+    if not rank_named and rank_values is not None and "rank" not in loaders:
+        rv = np.asarray(rank_values, dtype=np.int32)
+        loaders["rank"] = lambda: np.repeat(rv, lengths)
+    units = {}
+    attrs = {}
+    for p in parts:
+        units.update(p.units)
+        for k, v in p.attrs.items():
+            attrs.setdefault(k, v)
+    return Frame(species, sum(lengths), loaders, units=units, attrs=attrs,
+                 source=source or (parts[0].source if parts else None),
+                 role_map=parts[0].role_map if parts else None)
+
+
+@dataclass
+class Snapshot:
+    """All particles at one step: a frame per species plus per-snapshot scalars.
+
+    ``meta`` holds scalars such as a field energy that the code wrote beside
+    the particles; ``layout`` is the block layout stored in the file, if any.
+    """
+
+    path: str
+    species: dict[str, Frame]
+    step: int | None = None
+    time: float | None = None
+    meta: dict[str, float] = field(default_factory=dict)
+    layout: object | None = None
+    warnings: list[str] = field(default_factory=list)
+    parts: list[str] = field(default_factory=list)
+    time_unit: str = ""
+
+    @property
+    def count(self) -> int:
+        return sum(f.length for f in self.species.values())
+
+    def frame(self, species: str) -> Frame:
+        try:
+            return self.species[species]
+        except KeyError:
+            raise InputError(self.path, f"no species '{species}'",
+                             f"species are: {', '.join(self.species)}") from None
+
+    def with_role_map(self, role_map: RoleMap) -> "Snapshot":
+        return Snapshot(self.path, {k: f.with_role_map(role_map) for k, f in self.species.items()},
+                        self.step, self.time, dict(self.meta), self.layout, list(self.warnings),
+                        list(self.parts), self.time_unit)

@@ -1,0 +1,176 @@
+"""Column roles: which column of a frame holds positions, momenta, ids, weights...
+
+A role is found from common names; a user overrides it with a TOML map
+(``[roles] x = "pos0"``, ``id = ["id", "cpu"]``) or ``--role ROLE=NAME``.
+Columns keep their own names; roles only point at them.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+
+from .errors import InputError, OptionError
+
+AXES = ("x", "y", "z")
+
+#: every role, in display order
+ROLES = (
+    "x", "y", "z",
+    "vx", "vy", "vz",
+    "ux", "uy", "uz",
+    "px", "py", "pz",
+    "id", "weight", "mass", "charge", "radius", "rank", "block",
+)
+
+POSITION_ROLES = ("x", "y", "z")
+VELOCITY_ROLES = ("vx", "vy", "vz")
+PROPER_VELOCITY_ROLES = ("ux", "uy", "uz")
+MOMENTUM_ROLES = ("px", "py", "pz")
+
+# Stems of vector quantities; a column "<stem><sep><axis>" or "<stem>/<axis>"
+# or "<axis><stem>" names that component.
+_VECTOR_STEMS = {
+    "": ("x", "y", "z"),
+    "pos": ("x", "y", "z"), "position": ("x", "y", "z"), "positions": ("x", "y", "z"),
+    "r": ("x", "y", "z"), "coord": ("x", "y", "z"), "coords": ("x", "y", "z"),
+    "coordinates": ("x", "y", "z"), "loc": ("x", "y", "z"),
+    "v": ("vx", "vy", "vz"), "vel": ("vx", "vy", "vz"), "velocity": ("vx", "vy", "vz"),
+    "velocities": ("vx", "vy", "vz"),
+    "u": ("ux", "uy", "uz"), "gammav": ("ux", "uy", "uz"), "gamma_v": ("ux", "uy", "uz"),
+    "proper_velocity": ("ux", "uy", "uz"), "momentum_per_mass": ("ux", "uy", "uz"),
+    "p": ("px", "py", "pz"), "mom": ("px", "py", "pz"), "momentum": ("px", "py", "pz"),
+}
+
+_SCALAR_NAMES = {
+    "id": ("id", "ids", "pid", "particle_id", "particle_ids", "particleid", "tag", "global_id", "gid"),
+    "weight": ("w", "weight", "weights", "wt", "macro_weight", "statistical_weight"),
+    "mass": ("m", "mass", "masses"),
+    "charge": ("q", "charge", "charges"),
+    "radius": ("radius", "radii", "rad"),
+    "rank": ("rank", "cpu", "proc", "mpi_rank", "owner", "owner_rank", "processor"),
+    "block": ("block", "block_id", "blockid", "patch", "patch_id", "box", "box_id", "grid"),
+}
+
+
+def _normalise(name: str) -> str:
+    return name.strip().lower().replace("-", "_").replace(" ", "_")
+
+
+def _guess(name: str) -> str | None:
+    """The role a column name suggests, or None."""
+    n = _normalise(name)
+    for role, names in _SCALAR_NAMES.items():
+        if n in names:
+            return role
+    for i, axis in enumerate(AXES):
+        for stem, roles in _VECTOR_STEMS.items():
+            if not stem:
+                if n == axis:
+                    return roles[i]
+                continue
+            if n in (f"{stem}/{axis}", f"{stem}_{axis}", f"{stem}{axis}", f"{stem}.{axis}",
+                     f"{stem}/{i}", f"{stem}_{i}", f"{stem}[{i}]", f"{axis}{stem}"):
+                # bare "x_v" style and "vx" style both land here
+                return roles[i]
+    return None
+
+
+@dataclass
+class RoleMap:
+    """User overrides of column roles, plus the particle key."""
+
+    overrides: dict[str, str] = field(default_factory=dict)
+    key: tuple[str, ...] | None = None
+
+    def __post_init__(self):
+        for role in self.overrides:
+            if role not in ROLES:
+                raise OptionError(
+                    f"unknown role '{role}' in the column map; roles are: {', '.join(ROLES)}")
+
+    @classmethod
+    def from_options(cls, assignments=(), map_file=None, key=None) -> "RoleMap":
+        overrides: dict[str, str] = {}
+        file_key = None
+        if map_file:
+            overrides, file_key = _read_map_file(map_file)
+        for text in assignments or ():
+            if "=" not in text:
+                raise OptionError(f"--role takes ROLE=NAME, got '{text}'")
+            role, name = (s.strip() for s in text.split("=", 1))
+            if not role or not name:
+                raise OptionError(f"--role takes ROLE=NAME, got '{text}'")
+            if role == "id" and "," in name:
+                file_key = tuple(s.strip() for s in name.split(",") if s.strip())
+                continue
+            overrides[role] = name
+        if key:
+            file_key = tuple(s.strip() for s in key.split(",") if s.strip()) if isinstance(key, str) else tuple(key)
+        return cls(overrides, file_key)
+
+    def resolve(self, columns) -> dict[str, str]:
+        """Map role -> column name for the given column names."""
+        columns = list(columns)
+        found: dict[str, str] = {}
+        for name in columns:
+            role = _guess(name)
+            if role and role not in found:
+                found[role] = name
+        # a user's word beats a guess; a column taken by an override loses its guessed role
+        for role, name in self.overrides.items():
+            if name in columns:
+                for other, col in list(found.items()):
+                    if col == name and other != role:
+                        del found[other]
+                found[role] = name
+        return found
+
+    def key_columns(self, columns, roles: dict[str, str]) -> tuple[str, ...] | None:
+        """Columns that together identify a particle across snapshots, or None."""
+        if self.key:
+            return tuple(c for c in self.key if c in columns) if all(c in columns for c in self.key) else None
+        if "id" in roles:
+            return (roles["id"],)
+        return None
+
+
+def _read_map_file(path):
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # Python 3.10
+        import tomli as tomllib
+    try:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise InputError(path, "the column map file does not exist") from None
+    except (OSError, tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(path, f"cannot read the column map as TOML: {exc}") from None
+    table = data.get("roles", data)
+    overrides: dict[str, str] = {}
+    key = None
+    for role, name in table.items():
+        if role == "key" or (role == "id" and isinstance(name, list)):
+            names = name if isinstance(name, list) else [name]
+            if not all(isinstance(n, str) for n in names):
+                raise InputError(path, f"'{role}' must name columns as strings")
+            if len(names) == 1:
+                overrides["id"] = names[0]
+            key = tuple(names)
+            continue
+        if not isinstance(name, str):
+            raise InputError(path, f"role '{role}' must be a column name in quotes")
+        if role not in ROLES:
+            raise InputError(path, f"unknown role '{role}'; roles are: {', '.join(ROLES)}")
+        overrides[role] = name
+    return overrides, key
+
+
+_INT = re.compile(r"(\d+)")
+
+
+def last_integer(text: str) -> int | None:
+    """The last run of digits in a name (snapshot order fallback)."""
+    m = _INT.findall(text)
+    return int(m[-1]) if m else None

@@ -1,0 +1,152 @@
+"""``swarmaudit inspect``: what is in a run, told plainly (or as JSON)."""
+
+from __future__ import annotations
+
+import json
+import math
+
+from ..core.context import AuditContext
+from ..core.errors import SwarmAuditError
+from ..core.roles import ROLES
+
+
+def describe(ctx: AuditContext, health_snapshots=None) -> dict:
+    """Everything ``inspect`` prints, as plain data."""
+    run = ctx.run
+    names = ctx.species_names()
+    snaps = []
+    for i, ref in enumerate(run.refs):
+        s = run[i]
+        snaps.append({
+            "snapshot": i,
+            "label": ref.label,
+            "files": len(ref.paths),
+            "step": s.step,
+            "time": s.time,
+            "count": {k: f.length for k, f in s.species.items() if k in names},
+            "meta": {k: v for k, v in s.meta.items()},
+            "warnings": list(s.warnings),
+        })
+    first = run[0]
+    species = []
+    for name in names:
+        frame = next((s.species[name] for s in run if name in s.species), None)
+        if frame is None:
+            continue
+        roles = frame.roles
+        by_col = {c: r for r, c in roles.items()}
+        species.append({
+            "species": name,
+            "attrs": {k: _plain(v) for k, v in frame.attrs.items()},
+            "columns": [{"name": c, "role": by_col.get(c, ""), "unit": frame.unit(c)} for c in frame.columns],
+            "key": list(frame.key_columns() or []),
+            "momentum": {"v": "velocity", "u": "momentum per unit mass (γv)", "p": "momentum"}.get(
+                frame.momentum_kind() or "", "none"),
+            "ndim": frame.ndim,
+        })
+    layout = ctx.layout(0)
+    health = []
+    which = health_snapshots if health_snapshots is not None else sorted({0, len(run) - 1})
+    from ..readers.checks import frame_health
+    for i in which:
+        s = run[i]
+        lay = ctx.layout(i)
+        for name in names:
+            if name not in s.species:
+                continue
+            try:
+                h = frame_health(s.species[name], lay)
+            except SwarmAuditError as exc:
+                h = {"error": str(exc)}
+            health.append({"snapshot": i, "species": name, **{k: _plain(v) for k, v in h.items()}})
+    missing = [n for n in names if any(n not in s.species for s in run)]
+    return {
+        "run": run.source,
+        "snapshots": snaps,
+        "species": species,
+        "species_missing_somewhere": missing,
+        "layout": layout.summary(),
+        "health": health,
+        "notes": list(ctx.notes),
+        "first_file": first.path,
+    }
+
+
+def _plain(v):
+    if hasattr(v, "item"):
+        try:
+            v = v.item()
+        except (ValueError, AttributeError):
+            v = v.tolist()
+    if isinstance(v, float) and not math.isfinite(v):
+        return str(v)
+    if isinstance(v, bytes):
+        return v.decode(errors="replace")
+    return v
+
+
+def _fmt(v) -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, float):
+        return f"{v:.6g}"
+    return str(v)
+
+
+def run_inspect(ctx: AuditContext, as_json: bool = False) -> int:
+    info = describe(ctx)
+    if as_json:
+        print(json.dumps(info, indent=2, default=_plain))
+        return 0
+    snaps = info["snapshots"]
+    total = [sum(s["count"].values()) for s in snaps]
+    print(f"run        {info['run']}")
+    print(f"snapshots  {len(snaps)}   particles {min(total):,} .. {max(total):,} per snapshot")
+    lay = info["layout"]
+    per = ",".join(lay["periodic"]) or "none"
+    dom = " x ".join(f"[{lo:g}, {hi:g})" for lo, hi in zip(lay["domain_lower"], lay["domain_upper"]))
+    print(f"layout     {lay['ndim']}-D {dom}, cells {'x'.join(map(str, lay['cells']))}, "
+          f"{lay['blocks']} blocks on levels {','.join(map(str, lay['levels']))}, {lay['ranks']} ranks, "
+          f"periodic {per}  (from {lay['source']})")
+    print()
+    print("species")
+    for sp in info["species"]:
+        attrs = ", ".join(f"{k}={_fmt(v)}" for k, v in sp["attrs"].items())
+        print(f"  {sp['species']}  ({sp['ndim']}-D, momentum as {sp['momentum']}"
+              f"{', key ' + '+'.join(sp['key']) if sp['key'] else ', no particle key'}"
+              f"{', ' + attrs if attrs else ''})")
+        width = max(len(c["name"]) for c in sp["columns"]) if sp["columns"] else 4
+        for c in sp["columns"]:
+            role = c["role"] or "-"
+            unit = f"[{c['unit']}]" if c["unit"] else ""
+            print(f"    {c['name']:<{width}}  {role:<7} {unit}")
+    print()
+    names = [sp["species"] for sp in info["species"]]
+    meta_keys = sorted({k for s in snaps for k in s["meta"]})
+    head = ["#", "snapshot", "step", "time"] + names + meta_keys
+    rows = [[str(s["snapshot"]), s["label"] + (f" ({s['files']} files)" if s["files"] > 1 else ""),
+             _fmt(s["step"]), _fmt(s["time"])] + [f"{s['count'].get(n, 0):,}" for n in names]
+            + [_fmt(s["meta"].get(k)) for k in meta_keys] for s in snaps]
+    widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(head)]
+    print("  ".join(h.ljust(w) for h, w in zip(head, widths)))
+    for r in rows:
+        print("  ".join(v.ljust(w) for v, w in zip(r, widths)))
+    problems = []
+    for h in info["health"]:
+        for k, v in h.items():
+            if k in ("snapshot", "species") or not v:
+                continue
+            problems.append(f"snapshot {h['snapshot']} {h['species']}: {k.replace('_', ' ')} {v}")
+    for s in snaps:
+        for w in s["warnings"]:
+            problems.append(f"snapshot {s['snapshot']}: {w}")
+    if info["species_missing_somewhere"]:
+        problems.append("species not in every snapshot: " + ", ".join(info["species_missing_somewhere"]))
+    notes = info["notes"]
+    if problems or notes:
+        print()
+    for p in problems:
+        print(f"warning: {p}")
+    for n in notes:
+        print(f"note: {n}")
+    return 0

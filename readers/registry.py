@@ -71,6 +71,8 @@ def reader_for(path: str):
         raise InputError(path, "no such file or folder")
     if os.path.isdir(path):
         raise InputError(path, "is a folder, not a snapshot file")
+    if os.path.getsize(path) == 0:
+        raise InputError(path, "is an empty file", "it may still be being written")
     low = path.lower()
     by_suffix = [r for r in readers() if any(low.endswith(s.lower()) for s in r.suffixes)]
     for r in by_suffix + [r for r in readers() if r not in by_suffix]:

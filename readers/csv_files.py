@@ -1,0 +1,276 @@
+"""CSV snapshots: a header row, one particle per line; only the asked-for column is parsed.
+
+``# key = value`` lines before the header are per-snapshot scalars (``step``, ``time``, other
+numbers to ``meta``); other ``#`` lines and blank lines are skipped. Opening reads the header
+and counts data lines (a vectorised newline count); a column read parses the file with
+pyarrow's multi-threaded CSV reader restricted to that one column (``include_columns``).
+Errors name the file, the column and the line.
+"""
+
+from __future__ import annotations
+
+import csv
+import os
+
+import numpy as np
+
+from ..core.errors import InputError
+from ..core.frame import Snapshot
+from ._columns import Table, make_snapshot, split_scalars
+
+DEFAULT_SPECIES = "particles"
+#: a header line longer than this is not a header (a binary file, most likely)
+MAX_HEADER_BYTES = 1 << 20
+CHUNK = 1 << 24
+NL, CR, HASH = 10, 13, 35
+
+
+class _Layout:
+    """Where the data of one CSV file starts and what its columns are called."""
+
+    def __init__(self, path, names, delimiter, offset, header_line, length):
+        self.path, self.names, self.delimiter = path, names, delimiter
+        self.offset, self.header_line, self.length = offset, header_line, length
+
+
+def _number(text: str):
+    for kind in (int, float):
+        try:
+            return kind(text)
+        except ValueError:
+            pass
+    return text
+
+
+def _sniff(path: str):
+    """(names, delimiter, byte offset of the first data line, header line number, scalars)."""
+    scalars = []
+    lineno = 0
+    with open(path, "rb") as fh:
+        while True:
+            raw = fh.readline(MAX_HEADER_BYTES)
+            if not raw:
+                raise InputError(path, "is an empty file" if lineno == 0 else
+                                 "has no header row (only comments or blank lines)",
+                                 "the first line that is not a # comment must name the columns")
+            lineno += 1
+            if len(raw) == MAX_HEADER_BYTES and not raw.endswith(b"\n"):
+                raise InputError(path, f"line {lineno} is over {MAX_HEADER_BYTES} bytes long: not a CSV header")
+            try:
+                text = raw.decode("utf-8")
+            except UnicodeDecodeError as exc:
+                raise InputError(path, f"line {lineno} is not UTF-8 text (byte {exc.start + 1} of the line)",
+                                 "save the file as UTF-8") from None
+            if lineno == 1:
+                text = text.lstrip("\ufeff")
+            stripped = text.strip()
+            if not stripped:
+                continue
+            if stripped.startswith("#"):
+                key, sep, value = stripped[1:].partition("=")
+                if sep and key.strip():
+                    scalars.append((key.strip(), _number(value.strip())))
+                continue
+            header = text.rstrip("\r\n")
+            offset = fh.tell()
+            break
+    if "\x00" in header:
+        raise InputError(path, f"line {lineno} holds NUL bytes: not a text file")
+    delimiter = next((d for d in (",", "\t", ";") if d in header), ",")
+    names = [n.strip() for n in next(csv.reader([header], delimiter=delimiter))]
+    names = [n or f"unnamed_{i}" for i, n in enumerate(names)]
+    seen = set()
+    for n in names:
+        if n in seen:
+            raise InputError(path, f"the header (line {lineno}) names column '{n}' twice")
+        seen.add(n)
+    if all(isinstance(_number(n), (int, float)) for n in names):
+        raise InputError(path, f"line {lineno} holds numbers, not column names",
+                         "add a header row naming the columns, e.g. x,y,vx,vy,id")
+    return names, delimiter, offset, lineno, scalars
+
+
+def _scan_lines(path: str, offset: int, row: int | None = None) -> int:
+    """Data lines after ``offset`` (not blank, not ``#``), or the line number offset of data row ``row``.
+
+    Vectorised per chunk: a line start is byte ``offset`` or a byte after a newline.
+    """
+    count = 0
+    newlines = 0
+    at_start = True
+    with open(path, "rb") as fh:
+        fh.seek(offset)
+        while True:
+            buf = fh.read(CHUNK)
+            if not buf:
+                break
+            a = np.frombuffer(buf, np.uint8)
+            nl = np.flatnonzero(a == NL)
+            starts = nl + 1
+            if at_start:
+                starts = np.concatenate(([0], starts))
+            at_start = a[-1] == NL
+            starts = starts[starts < a.size]
+            first = a[starts]
+            data = starts[(first != NL) & (first != CR) & (first != HASH)]
+            if row is not None and count + data.size > row:
+                start = data[row - count]
+                return newlines + int(np.searchsorted(nl, start))
+            count += data.size
+            newlines += nl.size
+    if row is not None:
+        raise IndexError(row)
+    return count
+
+
+def read_table(lay: _Layout, include: list[str], column_types=None, use_threads: bool = True,
+               handler=None):
+    """The one place a CSV is parsed: only ``include`` columns are converted."""
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    def skip_comments(row):
+        return "skip" if row.text.startswith("#") else "error"
+
+    with pa.memory_map(lay.path, "r") as mm:
+        mm.seek(lay.offset)
+        return pacsv.read_csv(
+            mm,
+            read_options=pacsv.ReadOptions(column_names=lay.names, use_threads=use_threads),
+            parse_options=pacsv.ParseOptions(delimiter=lay.delimiter,
+                                             invalid_row_handler=handler or skip_comments),
+            convert_options=pacsv.ConvertOptions(include_columns=include, column_types=column_types,
+                                                 strings_can_be_null=True))
+
+
+def _first_failure(arr, convert) -> int:
+    """Index of the first value ``convert`` rejects, by bisection on prefixes (each try vectorised)."""
+    import pyarrow as pa
+    lo, hi = 0, len(arr)
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        try:
+            convert(arr.slice(0, mid))
+            lo = mid
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            hi = mid
+    return lo
+
+
+def _line(lay: _Layout, row: int) -> str:
+    try:
+        return f"line {lay.header_line + 1 + _scan_lines(lay.path, lay.offset, row)}"
+    except IndexError:
+        return f"data row {row + 1}"
+
+
+def _ragged(lay: _Layout, name: str, exc) -> InputError:
+    """The error for a row with the wrong number of fields (found again, single-threaded, for its line)."""
+    import pyarrow as pa
+    found = []
+
+    def record(row):
+        if row.text.startswith("#"):
+            return "skip"
+        found.append(row)
+        return "error"
+    try:
+        read_table(lay, [name], use_threads=False, handler=record)
+    except pa.ArrowInvalid:
+        pass
+    if found and found[0].number is not None:
+        r = found[0]
+        return InputError(lay.path, f"line {lay.header_line + r.number + 1} has {r.actual_columns} fields, "
+                          f"the header has {r.expected_columns}",
+                          "every row needs one value per column")
+    return InputError(lay.path, f"cannot be parsed as CSV ({exc})")
+
+
+def _as_numbers(lay: _Layout, name: str, col) -> np.ndarray:
+    """A numeric column, or an InputError naming the line of the first value that is not a number."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    t = col.type
+    if pa.types.is_null(t):
+        return np.full(len(col), np.nan)
+    if pa.types.is_floating(t) or ((pa.types.is_integer(t) or pa.types.is_boolean(t)) and col.null_count == 0):
+        return col.to_numpy()
+    if pa.types.is_integer(t) or pa.types.is_boolean(t):
+        return pc.cast(col, pa.float64()).to_numpy()   # an empty value: NaN, as in a float column
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        text = col.combine_chunks()
+    else:   # raw bytes (bad UTF-8) or a type like dates: check UTF-8, then numbers, in bulk
+        raw = col if pa.types.is_binary(t) else \
+            read_table(lay, [name], column_types={name: pa.binary()}).column(0)
+        raw = raw.combine_chunks()
+        try:
+            text = pc.cast(raw, pa.string())
+        except pa.ArrowInvalid:
+            row = _first_failure(raw, lambda a: pc.cast(a, pa.string()))
+            raise InputError(lay.path, f"column '{name}', {_line(lay, row)}: not UTF-8 text",
+                             "save the file as UTF-8") from None
+    try:
+        return pc.cast(text, pa.float64()).to_numpy(zero_copy_only=False)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        row = _first_failure(text, lambda a: pc.cast(a, pa.float64()))
+        value = text[row].as_py()
+        shown = value if len(value) <= 40 else value[:37] + "..."
+        raise InputError(lay.path, f"column '{name}', {_line(lay, row)}: '{shown}' is not a number",
+                         "swarmaudit reads numeric columns only") from None
+
+
+def _loader(lay: _Layout, name: str):
+    def load() -> np.ndarray:
+        import pyarrow as pa
+        if lay.length == 0:
+            return np.empty(0)
+        try:
+            table = read_table(lay, [name])
+        except pa.ArrowInvalid as exc:
+            if "parse error" in str(exc).lower():
+                raise _ragged(lay, name, exc) from None
+            # the type guessed from the first block does not fit a later value: find it
+            table = read_table(lay, [name], column_types={name: pa.binary()})
+        except OSError as exc:
+            raise InputError(lay.path, f"cannot be read ({exc})") from None
+        if table.num_rows != lay.length:
+            raise InputError(lay.path, f"column '{name}' has {table.num_rows} values but the file has "
+                             f"{lay.length} data lines",
+                             "a quoted value may span lines, or a comment line was read as data")
+        return _as_numbers(lay, name, table.column(0))
+    return load
+
+
+class CSVReader:
+    name = "csv"
+    suffixes = (".csv", ".tsv")
+
+    def can_open(self, path) -> bool:
+        path = os.fspath(path)
+        if path.lower().endswith(self.suffixes):
+            return True   # open() says what is wrong with a bad one
+        try:
+            with open(path, "rb") as fh:
+                head = fh.read(4096)
+        except OSError:
+            return False
+        if not head or b"\x00" in head:
+            return False
+        text = head.decode("utf-8", errors="ignore")
+        first = next((ln for ln in text.splitlines() if ln.strip() and not ln.startswith("#")), "")
+        return "," in first or "\t" in first
+
+    def open(self, path, columns=None) -> Snapshot:
+        path = os.fspath(path)
+        try:
+            names, delimiter, offset, header_line, scalars = _sniff(path)
+            length = _scan_lines(path, offset)
+        except OSError as exc:
+            raise InputError(path, f"cannot be read ({exc.strerror or exc})") from None
+        lay = _Layout(path, names, delimiter, offset, header_line, length)
+        step, time, meta, time_unit = split_scalars(scalars, path)
+        table = Table(path)
+        for n in names:
+            table.add(n, length, _loader(lay, n), n)
+        return make_snapshot(path, {DEFAULT_SPECIES: table}, columns=columns, step=step, time=time,
+                             meta=meta, time_unit=time_unit)

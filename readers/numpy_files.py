@@ -1,0 +1,244 @@
+"""NumPy snapshots: ``.npy`` structured arrays (memory-mapped) and ``.npz`` archives. Never unpickles.
+
+* ``.npy``: a 1-D structured array, one record per particle; one column per field (sub-array
+  fields split into ``name/x``...). Columns are views of one read-only memory map.
+* ``.npz``: one array per column. 1-D arrays are columns, ``(N, d)`` arrays give ``name/x``...,
+  0-d arrays are per-snapshot scalars (``step``, ``time``, others to ``meta``). A key prefix
+  ``beam_a/x`` puts the column in species ``beam_a`` (a 0-d ``beam_a/mass`` is its attribute);
+  keys without one (or named like a column, ``position/x``) belong to ``particles``.
+"""
+
+from __future__ import annotations
+
+import os
+import zipfile
+import zlib
+
+import numpy as np
+import numpy.lib.format as npformat
+
+from ..core.errors import InputError, SwarmAuditError
+from ..core.frame import Snapshot
+from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
+                       has_role, make_snapshot, native, reject_non_numeric, scalar_value,
+                       split_scalars, take_field)
+
+NPY_MAGIC = b"\x93NUMPY"
+ZIP_MAGICS = (b"PK\x03\x04", b"PK\x05\x06")
+PICKLE_HINT = ("swarmaudit never loads pickles (loading one can run any code); save numbers with "
+               "np.save(..., allow_pickle=False) as a structured array, or np.savez one array per column")
+ZIP_ERRORS = (zipfile.BadZipFile, zlib.error, EOFError, OSError, NotImplementedError, ValueError,
+              KeyError, RuntimeError)
+DEFAULT_SPECIES = "particles"
+
+
+def _read_header(fp, path, what: str):
+    """(shape, fortran_order, dtype) of an .npy stream, refusing object arrays before any data."""
+    head = fp.read(len(NPY_MAGIC))
+    if head[:1] == b"\x80":
+        raise InputError(path, f"{what} holds pickled Python objects", PICKLE_HINT)
+    if head != NPY_MAGIC:
+        raise InputError(path, f"{what} is not in NumPy's .npy format (wrong signature)")
+    try:
+        fp.seek(0)
+        version = npformat.read_magic(fp)
+        if version == (1, 0):
+            header = npformat.read_array_header_1_0(fp)
+        elif version == (2, 0):
+            header = npformat.read_array_header_2_0(fp)
+        else:   # 3.0 is 2.0 with UTF-8 field names; numpy keeps its reader private
+            from numpy.lib import _format_impl
+            header = _format_impl._read_array_header(fp, version)
+    except (ValueError, SyntaxError, TypeError, OSError, EOFError, KeyError) as exc:
+        raise InputError(path, f"{what} has a damaged .npy header ({exc})") from None
+    shape, fortran, dtype = header
+    if dtype.hasobject:
+        raise InputError(path, f"{what} holds Python objects (an object array)", PICKLE_HINT)
+    return shape, fortran, dtype
+
+
+def _nbytes(shape, dtype) -> int:
+    return int(np.prod(shape, dtype=np.float64)) * dtype.itemsize
+
+
+# .npy ---------------------------------------------------------------------------
+
+def _open_npy(path: str, columns) -> Snapshot:
+    size = os.path.getsize(path)
+    with open(path, "rb") as fh:
+        shape, _, dtype = _read_header(fh, path, "the file")
+        offset = fh.tell()
+    if dtype.names is None:
+        raise InputError(path, f"holds a plain {len(shape)}-D array of {dtype} without column names, "
+                         "so its columns cannot be told apart",
+                         "save a structured array (a dtype with named fields such as x, y, vx) or an "
+                         ".npz with one array per column")
+    if len(shape) != 1:
+        raise InputError(path, f"holds a structured array of shape {shape}; one record per particle "
+                         "(a 1-D array) is needed")
+    if offset + _nbytes(shape, dtype) > size:
+        raise InputError(path, f"declares {shape[0]} records ({_nbytes(shape, dtype)} bytes) but only "
+                         f"{size - offset} bytes follow the header",
+                         "the file is truncated or was not completely written")
+    n = shape[0]
+    table = Table(path)
+    warnings: list[str] = []
+    mapped: list = []
+
+    def records():
+        # one read-only map per opened snapshot, made on the first column read
+        if not mapped:
+            if n == 0:
+                mapped.append(np.empty(0, dtype))
+            else:
+                try:
+                    mapped.append(np.load(path, mmap_mode="r", allow_pickle=False))
+                except (ValueError, OSError) as exc:
+                    raise InputError(path, f"cannot be memory-mapped ({exc})") from None
+        return mapped[0]
+
+    for col, fpath, comp, fdt in flatten_fields(dtype):
+        if comp == "skip":
+            warnings.append(f"field '{col}' has shape {fdt.shape}; left out")
+            continue
+        if reject_non_numeric(path, col, fdt, f"field '{col}'", warnings):
+            table.add(col, n, lambda f=fpath, c=comp: native(take_field(records(), f, c)), col)
+    return make_snapshot(path, {DEFAULT_SPECIES: table}, columns=columns, warnings=warnings)
+
+
+# .npz ---------------------------------------------------------------------------
+
+def _split_key(key: str) -> tuple[str, str]:
+    """(species, column) of an npz key: ``beam_a/x`` -> (beam_a, x); ``position/x`` stays a column."""
+    if "/" in key and not has_role(key):
+        species, col = key.split("/", 1)
+        if species and col:
+            return species, col
+    return DEFAULT_SPECIES, key
+
+
+def _member_loader(path: str, member: str, shape, fortran, dtype, comp=None, field=None):
+    def load() -> np.ndarray:
+        check_fits_memory(path, f"array '{member[:-4]}'", _nbytes(shape, dtype))
+        try:
+            with zipfile.ZipFile(path) as zf, zf.open(member) as fp:
+                _read_header(fp, path, f"array '{member[:-4]}'")
+                need = _nbytes(shape, dtype)
+                data = fp.read(need)
+        except SwarmAuditError:
+            raise
+        except MemoryError:
+            raise InputError(path, f"array '{member[:-4]}' does not fit in memory") from None
+        except ZIP_ERRORS as exc:
+            raise InputError(path, f"array '{member[:-4]}' cannot be read ({exc})",
+                             "the archive may be damaged or still being written") from None
+        if len(data) < need:
+            raise InputError(path, f"array '{member[:-4]}' is truncated ({len(data)} of {need} bytes)")
+        count = need // dtype.itemsize if dtype.itemsize else 0
+        arr = np.frombuffer(data, dtype=dtype, count=count)
+        arr = arr.reshape(shape[::-1]).T if fortran else arr.reshape(shape)
+        if field is not None:
+            arr = take_field(arr, *field)
+        elif comp is not None:
+            arr = arr[:, comp]
+        return native(np.ascontiguousarray(arr))
+    return load
+
+
+def _open_npz(path: str, columns) -> Snapshot:
+    tables: dict[str, Table] = {}
+    warnings: list[str] = []
+    scalars: list = []
+    try:
+        with zipfile.ZipFile(path) as zf:
+            infos = zf.infolist()
+            for info in infos:
+                if info.is_dir():
+                    continue
+                if not info.filename.endswith(".npy"):
+                    warnings.append(f"'{info.filename}' in the archive is not a NumPy array; left out")
+                    continue
+                key = info.filename[:-4]
+                with zf.open(info) as fp:
+                    shape, fortran, dtype = _read_header(fp, path, f"array '{key}'")
+                    header_len = fp.tell()
+                if header_len + _nbytes(shape, dtype) > info.file_size:
+                    raise InputError(path, f"array '{key}' declares shape {shape} ({_nbytes(shape, dtype)} "
+                                     f"bytes) but the archive holds {info.file_size - header_len} bytes of it",
+                                     "the archive is damaged or was not completely written")
+                species, col = _split_key(key)
+                if len(shape) == 0:
+                    if dtype.kind in "biufSU":
+                        value = scalar_value(_member_loader(path, info.filename, (1,), False, dtype)()[0])
+                        scalars.append((species, col, value))
+                    continue
+                table = tables.setdefault(species, Table(species if species != DEFAULT_SPECIES else path))
+                load = lambda comp=None, field=None: _member_loader(path, info.filename, shape, fortran,
+                                                                    dtype, comp, field)
+                if dtype.names is not None:
+                    if len(shape) != 1:
+                        warnings.append(f"array '{key}' is a table of shape {shape}; left out")
+                        continue
+                    for fcol, fpath, comp, fdt in flatten_fields(dtype):
+                        name = f"{col}/{fcol}"
+                        if comp != "skip" and reject_non_numeric(path, name, fdt, f"field '{fcol}' of '{key}'",
+                                                                 warnings):
+                            table.add(name, shape[0], load(field=(fpath, comp)), key)
+                    continue
+                if len(shape) > 2 or (len(shape) == 2 and not 1 <= shape[1] <= MAX_COMPONENTS):
+                    warnings.append(f"array '{key}' has shape {shape}, not (N,) or (N, d); left out")
+                    continue
+                names = [col] if len(shape) == 1 else component_names(col, shape[1])
+                if reject_non_numeric(path, key, dtype, f"array '{key}'", warnings):
+                    for k, name in enumerate(names):
+                        table.add(name, shape[0], load(comp=None if len(shape) == 1 else k), key)
+    except SwarmAuditError:
+        raise
+    except ZIP_ERRORS as exc:
+        raise InputError(path, f"is not a readable .npz archive ({exc})",
+                         "the file may be truncated or still being written") from None
+    root = [(c, v) for s, c, v in scalars if s == DEFAULT_SPECIES]
+    step, time, meta, time_unit = split_scalars(root, path)
+    for s, c, v in scalars:
+        if s in tables and s != DEFAULT_SPECIES and isinstance(v, (int, float)):
+            tables[s].attrs[c] = float(v)
+        elif s == DEFAULT_SPECIES and c in ("mass", "charge") and isinstance(v, (int, float)):
+            tables.setdefault(DEFAULT_SPECIES, Table(path)).attrs[c] = float(v)
+    return make_snapshot(path, tables, columns=columns, step=step, time=time, meta=meta,
+                         warnings=warnings, time_unit=time_unit)
+
+
+class NumpyReader:
+    name = "numpy"
+    suffixes = (".npy", ".npz")
+
+    def can_open(self, path) -> bool:
+        path = os.fspath(path)
+        try:
+            with open(path, "rb") as fh:
+                head = fh.read(6)
+        except OSError:
+            return False
+        if head == NPY_MAGIC or head[:4] in ZIP_MAGICS:
+            return True
+        # claim our own suffixes anyway, so open() can say what is wrong (a pickle, say)
+        return path.lower().endswith(self.suffixes) and not head.startswith(b"\x89HDF")
+
+    def open(self, path, columns=None) -> Snapshot:
+        path = os.fspath(path)
+        try:
+            with open(path, "rb") as fh:
+                head = fh.read(6)
+        except OSError as exc:
+            raise InputError(path, f"cannot be read ({exc.strerror or exc})") from None
+        if not head:
+            raise InputError(path, "is an empty file")
+        try:
+            if head[:4] in ZIP_MAGICS:
+                return _open_npz(path, columns)
+            return _open_npy(path, columns)
+        except MemoryError:
+            raise InputError(path, "its header asks for more memory than there is (the file may be damaged)") \
+                from None
+        except OSError as exc:
+            raise InputError(path, f"cannot be read ({exc.strerror or exc})") from None

@@ -44,6 +44,9 @@ class Frame:
         self._cache: dict[str, np.ndarray] = {}
         self.reads = 0
         self._roles: dict[str, str] | None = None
+        # per-rank parts this frame joins (set by concat_frames): partitioned engines read them
+        self.parts: list[Frame] | None = None
+        self.part_ranks: list[int] | None = None
 
     # columns -----------------------------------------------------------
     @property
@@ -84,6 +87,7 @@ class Frame:
         """The same columns seen through another role map (shares loaders, not cache)."""
         f = Frame(self.species, self.length, self._loaders, units=self.units, attrs=self.attrs,
                   source=self.source, role_map=role_map, cache=self._cache_enabled)
+        f.parts, f.part_ranks = self.parts, self.part_ranks
         return f
 
     def select(self, columns) -> "Frame":
@@ -92,9 +96,11 @@ class Frame:
         if missing:
             raise InputError(self.source, f"species '{self.species}' has no column "
                              f"{', '.join(repr(m) for m in missing)}")
-        return Frame(self.species, self.length, {c: self._loaders[c] for c in columns},
-                     units=self.units, attrs=self.attrs, source=self.source,
-                     role_map=self.role_map, cache=self._cache_enabled)
+        f = Frame(self.species, self.length, {c: self._loaders[c] for c in columns},
+                  units=self.units, attrs=self.attrs, source=self.source,
+                  role_map=self.role_map, cache=self._cache_enabled)
+        f.parts, f.part_ranks = self.parts, self.part_ranks
+        return f
 
     # roles ---------------------------------------------------------------
     @property
@@ -168,7 +174,7 @@ def concat_frames(parts: list[Frame], *, species: str, rank_values=None, source=
     lengths = [p.length for p in parts]
     loaders: dict[str, Loader] = {}
     for c in common:
-        loaders[c] = (lambda c=c: np.concatenate([p[c] for p in parts]) if parts else np.empty(0))
+        loaders[c] = (lambda c=c: _join_column(parts, c))
     rank_named = any("rank" in p.roles for p in parts)
     if not rank_named and rank_values is not None and "rank" not in loaders:
         rv = np.asarray(rank_values, dtype=np.int32)
@@ -179,9 +185,42 @@ def concat_frames(parts: list[Frame], *, species: str, rank_values=None, source=
         units.update(p.units)
         for k, v in p.attrs.items():
             attrs.setdefault(k, v)
-    return Frame(species, sum(lengths), loaders, units=units, attrs=attrs,
-                 source=source or (parts[0].source if parts else None),
-                 role_map=parts[0].role_map if parts else None)
+    joined = Frame(species, sum(lengths), loaders, units=units, attrs=attrs,
+                   source=source or (parts[0].source if parts else None),
+                   role_map=parts[0].role_map if parts else None)
+    joined.parts = list(parts)
+    joined.part_ranks = None if rank_values is None else [int(r) for r in rank_values]
+    return joined
+
+
+def _join_column(parts: list[Frame], name: str) -> np.ndarray:
+    """One column of every part in one array, filled part by part.
+
+    Each part is read through its loader (not ``part[name]``) so the parts do
+    not keep their pieces cached beside the joined column, and at most one
+    part is in memory next to the result: peak is the result plus one part,
+    not twice the result as with ``np.concatenate`` of all parts.
+    """
+    if not parts:
+        return np.empty(0)
+    out = None
+    at = 0
+    total = sum(p.length for p in parts)
+    for p in parts:
+        arr = p.loader(name)()
+        p.reads += 1
+        arr = np.asarray(arr)
+        if arr.shape != (p.length,):
+            raise InputError(p.source, f"column '{name}' of species '{p.species}' has shape "
+                             f"{arr.shape}, expected ({p.length},)")
+        if out is None:
+            out = np.empty(total, dtype=arr.dtype)
+        elif np.result_type(out.dtype, arr.dtype) != out.dtype:   # parts disagree: widen once
+            out = out.astype(np.result_type(out.dtype, arr.dtype))
+        out[at:at + p.length] = arr
+        at += p.length
+        del arr
+    return out
 
 
 @dataclass

@@ -12,6 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from . import _fastassign
 from .errors import OptionError
 from .roles import AXES
 
@@ -86,7 +87,7 @@ class BlockLayout:
         """Row in this layout of each block id (-1 stays -1)."""
         ids = np.asarray(block_ids)
         if np.array_equal(self.block_id, np.arange(self.nblocks)):
-            return ids.astype(np.int64)
+            return ids.astype(np.int64, copy=False)
         order = np.argsort(self.block_id)
         pos = np.searchsorted(self.block_id[order], ids)
         pos = np.clip(pos, 0, self.nblocks - 1)
@@ -179,7 +180,14 @@ def assign_blocks(positions, layout: BlockLayout) -> np.ndarray:
     if layout.regular is not None:
         return _assign_regular(cols, layout)
     out = np.full(n, -1, dtype=np.int64)
+    fast = _fastassign.usable(cols)
     for lev in layout.levels:
+        kind, grid, a1, a2 = layout._level_lookup(int(lev))
+        if fast and kind == "grid":
+            origin = [layout.domain_lower[a] + a1[a] * a2[a] for a in range(len(cols))]
+            _fastassign.assign_grid_level(cols, origin, a2, grid.shape[::-1], grid,
+                                          layout.block_id, out)
+            continue
         hit = _assign_level(cols, layout, int(lev))
         np.copyto(out, hit, where=hit >= 0)
     return out
@@ -187,6 +195,12 @@ def assign_blocks(positions, layout: BlockLayout) -> np.ndarray:
 
 def _assign_regular(cols, layout: BlockLayout) -> np.ndarray:
     nb = np.asarray(layout.regular)
+    if _fastassign.usable(cols):
+        flat = _fastassign.assign_regular(cols, layout.domain_lower, layout.domain_upper, nb)
+        ids = layout.block_id
+        if np.array_equal(ids, np.arange(layout.nblocks)):
+            return flat
+        return np.where(flat >= 0, ids[np.clip(flat, 0, None)], -1)
     n = cols[0].shape[0]
     flat = np.zeros(n, dtype=np.int64)
     inside = np.ones(n, dtype=bool)

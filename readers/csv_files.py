@@ -90,10 +90,12 @@ def _sniff(path: str):
     return names, delimiter, offset, lineno, scalars
 
 
-def _scan_lines(path: str, offset: int, row: int | None = None) -> int:
-    """Data lines after ``offset`` (not blank, not ``#``), or the line number offset of data row ``row``.
+def _scan_lines(path: str, offset: int, row: int | None = None, comments_are_rows: bool = False) -> int:
+    """Data lines after ``offset`` (not blank, not ``#``), or how many lines precede data row ``row``.
 
-    Vectorised per chunk: a line start is byte ``offset`` or a byte after a newline.
+    Vectorised per chunk: a line starts at ``offset`` or after a newline; its first byte says
+    whether it is blank or a comment. ``comments_are_rows`` counts ``#`` lines as rows, the way
+    pyarrow numbers rows.
     """
     count = 0
     newlines = 0
@@ -112,10 +114,12 @@ def _scan_lines(path: str, offset: int, row: int | None = None) -> int:
             at_start = a[-1] == NL
             starts = starts[starts < a.size]
             first = a[starts]
-            data = starts[(first != NL) & (first != CR) & (first != HASH)]
+            keep = (first != NL) & (first != CR)
+            if not comments_are_rows:
+                keep &= first != HASH
+            data = starts[keep]
             if row is not None and count + data.size > row:
-                start = data[row - count]
-                return newlines + int(np.searchsorted(nl, start))
+                return newlines + int(np.searchsorted(nl, data[row - count]))
             count += data.size
             newlines += nl.size
     if row is not None:
@@ -157,9 +161,9 @@ def _first_failure(arr, convert) -> int:
     return lo
 
 
-def _line(lay: _Layout, row: int) -> str:
+def _line(lay: _Layout, row: int, comments_are_rows: bool = False) -> str:
     try:
-        return f"line {lay.header_line + 1 + _scan_lines(lay.path, lay.offset, row)}"
+        return f"line {lay.header_line + 1 + _scan_lines(lay.path, lay.offset, row, comments_are_rows)}"
     except IndexError:
         return f"data row {row + 1}"
 
@@ -179,8 +183,8 @@ def _ragged(lay: _Layout, name: str, exc) -> InputError:
     except pa.ArrowInvalid:
         pass
     if found and found[0].number is not None:
-        r = found[0]
-        return InputError(lay.path, f"line {lay.header_line + r.number + 1} has {r.actual_columns} fields, "
+        r = found[0]   # pyarrow numbers the non-blank lines after the header from 1
+        return InputError(lay.path, f"{_line(lay, r.number - 1, True)} has {r.actual_columns} fields, "
                           f"the header has {r.expected_columns}",
                           "every row needs one value per column")
     return InputError(lay.path, f"cannot be parsed as CSV ({exc})")
@@ -241,6 +245,24 @@ def _loader(lay: _Layout, name: str):
     return load
 
 
+def _looks_like_csv(text: str) -> bool:
+    """A header of plain names, then (if the sample reaches it) a row of as many numbers."""
+    lines = [ln for ln in text.splitlines() if ln.strip() and not ln.startswith("#")]
+    if not lines:
+        return False
+    delimiter = next((d for d in (",", "\t", ";") if d in lines[0]), None)
+    if delimiter is None:
+        return False
+    names = [n.strip() for n in lines[0].split(delimiter)]
+    if any(" " in n for n in names):
+        return False
+    if len(lines) < 3:          # the second line may be cut off by the sample: judge the header only
+        return True
+    values = [v.strip() for v in lines[1].split(delimiter)]
+    return len(values) == len(names) and all(isinstance(_number(v), (int, float)) or v.lower() in
+                                             ("", "nan", "inf", "-inf") for v in values)
+
+
 class CSVReader:
     name = "csv"
     suffixes = (".csv", ".tsv")
@@ -256,9 +278,7 @@ class CSVReader:
             return False
         if not head or b"\x00" in head:
             return False
-        text = head.decode("utf-8", errors="ignore")
-        first = next((ln for ln in text.splitlines() if ln.strip() and not ln.startswith("#")), "")
-        return "," in first or "\t" in first
+        return _looks_like_csv(head.decode("utf-8", errors="ignore"))
 
     def open(self, path, columns=None) -> Snapshot:
         path = os.fspath(path)

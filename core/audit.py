@@ -1,0 +1,632 @@
+"""Run-level tables: census, imbalance, migration, drift, and the ``check`` gate.
+
+Each function takes an :class:`AuditContext` and reads only the columns it
+needs. Per-snapshot reductions all go through :func:`_reduce`, the one place
+where a persistent cache keyed by ``SnapshotRef.signature()`` can be added;
+for now results are kept for the life of the context (and recomputed when a
+snapshot's files change).
+"""
+
+from __future__ import annotations
+
+import math
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from ..diagnostics import census as _census
+from ..diagnostics import drift as _drift
+from ..diagnostics.halo import halo_counts
+from ..diagnostics.migration import DuplicateKeyError, MigrationResult, migrate
+from ..diagnostics.rebalance import rebalance_whatif
+from .context import AuditContext
+from .errors import OptionError
+from .layout import assign_blocks
+
+CENSUS_COLUMNS = ["snapshot", "step", "time", "species", "block", "level", "rank", "count", "weight"]
+RANK_COLUMNS = ["snapshot", "step", "time", "species", "rank", "count", "weight", "blocks"]
+IMBALANCE_COLUMNS = ["snapshot", "step", "time", "species", "by", "max_over_mean", "cv", "max",
+                     "mean", "min", "n"]
+MIGRATION_COLUMNS = ["from_snapshot", "to_snapshot", "species", "from_block", "to_block", "count"]
+SUMMARY_COLUMNS = ["from_snapshot", "to_snapshot", "species", "matched", "migrated", "created", "lost",
+                   "max_displacement_cells", "over_one_cell"]
+TRAFFIC_COLUMNS = ["from_snapshot", "to_snapshot", "species", "rank", "send", "receive"]
+DRIFT_COLUMNS = list(_drift.DRIFT_COLUMNS)
+
+ALL = "all"
+
+#: quantities ``check`` judges when none are named: totals a closed run conserves
+DEFAULT_CHECK = {"count": "each", "weight": "each", "charge": "each",
+                 "momentum_x": ALL, "momentum_y": ALL, "momentum_z": ALL, "total_energy": ALL}
+
+
+# helpers -----------------------------------------------------------------------------
+def _note(ctx: AuditContext, text: str) -> None:
+    if text not in ctx.notes:
+        ctx.notes.append(text)
+
+
+def _positions(ctx: AuditContext, snapshots) -> list[int]:
+    n = len(ctx.run)
+    if snapshots is None:
+        return list(range(n))
+    if isinstance(snapshots, (int, np.integer)):
+        snapshots = [snapshots]
+    out = []
+    for s in snapshots:
+        i = int(s)
+        j = i + n if i < 0 else i
+        if not 0 <= j < n:
+            raise OptionError(f"snapshot {i} does not exist: the run has {n} snapshots (0 to {n - 1})")
+        out.append(j)
+    return out
+
+
+def _stamp(ctx: AuditContext, i: int) -> dict:
+    snap = ctx.run[i]
+    return {"snapshot": i, "step": snap.step, "time": np.nan if snap.time is None else float(snap.time)}
+
+
+def _finish(rows_or_frames, columns, frames: bool = False) -> pd.DataFrame:
+    if frames:
+        parts = [f for f in rows_or_frames if len(f)]
+        df = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=columns)
+    else:
+        df = pd.DataFrame(list(rows_or_frames), columns=columns)
+    df = df[columns]
+    if "step" in df:
+        df["step"] = pd.array(df["step"], dtype="Int64")
+    for col in ("snapshot", "from_snapshot", "to_snapshot"):
+        if col in df:
+            df[col] = df[col].astype(np.int64)
+    return df
+
+
+def _present_species(ctx: AuditContext, i: int) -> list[str]:
+    snap = ctx.run[i]
+    return [s for s in ctx.species_names() if s in snap.species]
+
+
+@contextmanager
+def _transient(frames):
+    """Forget afterwards the columns this block read (keep what others had cached)."""
+    before = [(f, set(getattr(f, "_cache", {}))) for f in frames]
+    try:
+        yield
+    finally:
+        for f, had in before:
+            cache = getattr(f, "_cache", None)
+            if cache is None:
+                continue
+            for k in [k for k in cache if k not in had]:
+                del cache[k]
+
+
+def _block_ids(ctx: AuditContext, frame, layout, where: str) -> np.ndarray:
+    if frame.ndim == layout.ndim and frame.ndim > 0:
+        return assign_blocks(frame.positions(), layout)
+    if frame.ndim == 0 and frame.role("block") is not None:
+        return np.asarray(frame.role("block")).astype(np.int64)
+    if frame.ndim == 0:
+        _note(ctx, f"{where}: species '{frame.species}' has no position columns; its particles are "
+                   "counted in block -1")
+        return np.full(len(frame), -1, dtype=np.int64)
+    raise OptionError(f"{where}: species '{frame.species}' has {frame.ndim} position axes but the block "
+                      f"layout has {layout.ndim} (check --domain/--layout or the column roles)")
+
+
+def _where(ctx: AuditContext, i: int) -> str:
+    return f"snapshot {i} ({ctx.run.refs[i].label})"
+
+
+# the one door for per-snapshot reductions ----------------------------------------------
+def _cache(ctx: AuditContext) -> dict:
+    cache = ctx.__dict__.get("_reductions")
+    if cache is None:
+        cache = ctx.__dict__["_reductions"] = {}
+    return cache
+
+
+def _reduce(ctx: AuditContext, i: int, kind: str):
+    """A per-snapshot reduction (``census`` or ``totals``), computed once per file version."""
+    layout = ctx.layout(i) if kind == "census" else None
+    key = (kind, i, ctx.run.refs[i].signature(), tuple(ctx.species_names()),
+           id(layout), bool(ctx.relativistic), ctx.c)
+    cache = _cache(ctx)
+    if key not in cache:
+        stale = [k for k in cache if k[:2] == (kind, i)]   # an older version of the same file
+        for k in stale:
+            del cache[k]
+        cache[key] = _COMPUTE[kind](ctx, i, layout)
+    return cache[key]
+
+
+def _compute_census(ctx: AuditContext, i: int, layout) -> dict:
+    snap = ctx.run[i]
+    out = {}
+    for s in _present_species(ctx, i):
+        frame = snap.species[s]
+        with _transient([frame]):
+            bids = _block_ids(ctx, frame, layout, _where(ctx, i))
+            w = frame.per_particle("weight", 1.0)
+            prank = frame.role("rank")
+            out[s] = (_census.block_census(bids, layout, w),
+                      _census.rank_census(bids, layout, w, prank))
+    return out
+
+
+def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
+    snap = ctx.run[i]
+    out = {}
+    for s in _present_species(ctx, i):
+        frame = snap.species[s]
+        with _transient([frame]):
+            out[s] = _drift.snapshot_totals(frame, ctx.relativistic, ctx.c, with_nonfinite=True)
+    return out
+
+
+_COMPUTE = {"census": _compute_census, "totals": _compute_totals}
+
+
+def _sum_block_tables(tables) -> pd.DataFrame:
+    df = pd.concat(tables, ignore_index=True)
+    g = df.groupby(["block", "level", "rank"], sort=False)[["count", "weight"]].sum().reset_index()
+    return pd.concat([g[g["block"] >= 0], g[g["block"] < 0]], ignore_index=True)
+
+
+def _sum_rank_tables(tables) -> pd.DataFrame:
+    df = pd.concat(tables, ignore_index=True)
+    g = df.groupby("rank", sort=True).agg(count=("count", "sum"), weight=("weight", "sum"),
+                                          blocks=("blocks", "max")).reset_index()
+    return pd.concat([g[g["rank"] >= 0], g[g["rank"] < 0]], ignore_index=True)
+
+
+# census ------------------------------------------------------------------------------
+def census_table(ctx: AuditContext, snapshots=None) -> pd.DataFrame:
+    """Particles and weight per block, per snapshot, for each species and ``all``."""
+    frames = []
+    for i in _positions(ctx, snapshots):
+        per = _reduce(ctx, i, "census")
+        if not per:
+            continue
+        stamp = _stamp(ctx, i)
+        tables = {s: bc for s, (bc, _) in per.items()}
+        tables[ALL] = _sum_block_tables(list(tables.values()))
+        for s, bc in tables.items():
+            frames.append(bc.assign(species=s, **stamp))
+    return _finish(frames, CENSUS_COLUMNS, frames=True)
+
+
+def rank_table(ctx: AuditContext, i: int) -> pd.DataFrame:
+    """Particles, weight and owned blocks per rank at snapshot ``i``, per species and ``all``.
+
+    Particles carrying a rank column are counted at that rank; others at
+    their block's owner.
+    """
+    (i,) = _positions(ctx, [i])
+    per = _reduce(ctx, i, "census")
+    if not per:
+        return _finish([], RANK_COLUMNS, frames=True)
+    stamp = _stamp(ctx, i)
+    tables = {s: rc for s, (_, rc) in per.items()}
+    tables[ALL] = _sum_rank_tables(list(tables.values()))
+    return _finish([t.assign(species=s, **stamp) for s, t in tables.items()], RANK_COLUMNS, frames=True)
+
+
+def imbalance_table(ctx: AuditContext, snapshots=None) -> pd.DataFrame:
+    """Load imbalance (particle counts) over ranks and over blocks, per snapshot and species."""
+    rows = []
+    for i in _positions(ctx, snapshots):
+        per = _reduce(ctx, i, "census")
+        if not per:
+            continue
+        stamp = _stamp(ctx, i)
+        blocks = {s: bc for s, (bc, _) in per.items()}
+        ranks = {s: rc for s, (_, rc) in per.items()}
+        blocks[ALL] = _sum_block_tables(list(blocks.values()))
+        ranks[ALL] = _sum_rank_tables(list(ranks.values()))
+        for s in blocks:
+            for by, t, col in (("rank", ranks[s], "rank"), ("block", blocks[s], "block")):
+                loads = t.loc[t[col] >= 0, "count"].to_numpy()   # particles in no block load nobody
+                rows.append({**stamp, "species": s, "by": by, **_census.imbalance(loads)})
+    return _finish(rows, IMBALANCE_COLUMNS)
+
+
+def rebalance_table(ctx: AuditContext, i: int, nranks: int | None = None) -> pd.DataFrame:
+    """Rank imbalance of snapshot ``i`` (all species) now and under other block-to-rank maps."""
+    (i,) = _positions(ctx, [i])
+    per = _reduce(ctx, i, "census")
+    layout = ctx.layout(i)
+    if not per:
+        return rebalance_whatif(np.zeros(layout.nblocks), layout, nranks)
+    return rebalance_whatif(_sum_block_tables([bc for bc, _ in per.values()]), layout, nranks)
+
+
+def halo_table(ctx: AuditContext, i: int, width_cells: float = 1) -> pd.DataFrame:
+    """Per block: particles and those within ``width_cells`` of a shared face, per species and all."""
+    (i,) = _positions(ctx, [i])
+    snap = ctx.run[i]
+    layout = ctx.layout(i)
+    parts = []
+    for s in _present_species(ctx, i):
+        frame = snap.species[s]
+        if frame.ndim != layout.ndim:
+            _note(ctx, f"{_where(ctx, i)}: species '{s}' has no positions matching the layout; "
+                       "left out of the halo table")
+            continue
+        with _transient([frame]):
+            pos = frame.positions()
+            parts.append(halo_counts(pos, assign_blocks(pos, layout), layout, width_cells)
+                         .assign(species=s))
+    if not parts:
+        return pd.DataFrame(columns=["snapshot", "species", "block", "count", "halo"])
+    total = (pd.concat(parts).groupby("block", sort=False)[["count", "halo"]].sum().reset_index()
+             .assign(species=ALL))
+    df = pd.concat(parts + [total], ignore_index=True).assign(snapshot=i)
+    return df[["snapshot", "species", "block", "count", "halo"]]
+
+
+# migration ---------------------------------------------------------------------------
+def _pairs(ctx: AuditContext, pairs) -> list[tuple[int, int]]:
+    n = len(ctx.run)
+    if pairs is None:
+        return [(i, i + 1) for i in range(n - 1)]
+    out = []
+    for a, b in pairs:
+        (a2, b2) = _positions(ctx, [a, b])
+        out.append((a2, b2))
+    return out
+
+
+def _migration_pair(ctx: AuditContext, a: int, b: int) -> dict:
+    """species -> MigrationResult for one pair (cached like the reductions)."""
+    key = ("migration", a, b, ctx.run.refs[a].signature(), ctx.run.refs[b].signature(),
+           tuple(ctx.species_names()), id(ctx.layout(a)), id(ctx.layout(b)))
+    cache = _cache(ctx)
+    if key in cache:
+        return cache[key]
+    sa, sb = ctx.run[a], ctx.run[b]
+    la, lb = ctx.layout(a), ctx.layout(b)
+    steps = (sb.step - sa.step) if (sa.step is not None and sb.step is not None) else None
+    results: dict[str, MigrationResult] = {}
+    pair = f"snapshots {a} -> {b}"
+    for s in ctx.species_names():
+        fa, fb = sa.species.get(s), sb.species.get(s)
+        if fa is None and fb is None:
+            continue
+        if fa is None or fb is None:
+            # the species appears or vanishes as a whole: no ids needed
+            _note(ctx, f"species '{s}' is in only one of {pair}: counted as "
+                       f"{'created' if fa is None else 'lost'}")
+            n = len(fb) if fa is None else len(fa)
+            results[s] = MigrationResult(0, 0, n if fa is None else 0, n if fb is None else 0,
+                                         np.nan, 0, 1, pd.DataFrame(columns=MIGRATION_COLUMNS[3:]),
+                                         pd.DataFrame(columns=["rank", "send", "receive"]))
+            continue
+        ka_cols, kb_cols = fa.key_columns(), fb.key_columns()
+        if not ka_cols or not kb_cols:
+            which = a if not ka_cols else b
+            _note(ctx, f"{_where(ctx, which)}: species '{s}' has no id column, so migration between "
+                       f"{pair} is skipped for it (name one with --role id=NAME or --id COLS)")
+            continue
+        with _transient([fa, fb]):
+            keys_a = tuple(fa[c] for c in ka_cols)
+            keys_b = tuple(fb[c] for c in kb_cols)
+            if len(keys_a) != len(keys_b):
+                _note(ctx, f"species '{s}': the id columns differ between {pair}; migration skipped")
+                continue
+            pos_a = fa.positions() if fa.ndim == la.ndim else None
+            pos_b = fb.positions() if fb.ndim == lb.ndim else None
+            try:
+                block_a = _block_ids(ctx, fa, la, _where(ctx, a))
+                block_b = _block_ids(ctx, fb, lb, _where(ctx, b))
+                res = migrate(keys_a if len(keys_a) > 1 else keys_a[0],
+                              keys_b if len(keys_b) > 1 else keys_b[0],
+                              block_a, block_b,
+                              pos_a if (pos_a is not None and pos_b is not None) else None,
+                              pos_b if (pos_a is not None and pos_b is not None) else None,
+                              la, steps, fa.role("rank"), fb.role("rank"), layout_b=lb)
+            except DuplicateKeyError as exc:
+                _note(ctx, f"species '{s}', {pair}: {exc}; migration skipped for it")
+                continue
+        for text in res.notes:
+            _note(ctx, f"species '{s}', {pair}: {text}")
+        results[s] = res
+    cache[key] = results
+    return results
+
+
+def _combine(results: dict[str, MigrationResult]) -> dict:
+    disp = [r.max_displacement_cells for r in results.values() if np.isfinite(r.max_displacement_cells)]
+    return {"matched": sum(r.matched for r in results.values()),
+            "migrated": sum(r.migrated for r in results.values()),
+            "created": sum(r.created for r in results.values()),
+            "lost": sum(r.lost for r in results.values()),
+            "max_displacement_cells": max(disp) if disp else np.nan,
+            "over_one_cell": sum(r.over_one_cell for r in results.values())}
+
+
+def migration_tables(ctx: AuditContext, pairs=None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """(migration, summary): block-to-block moves and per-pair totals, per species and ``all``.
+
+    Default pairs are consecutive snapshots. A species without ids in one of
+    the two snapshots is skipped for that pair (with a note in ``ctx.notes``).
+    """
+    moves, summary = [], []
+    for a, b in _pairs(ctx, pairs):
+        results = _migration_pair(ctx, a, b)
+        if not results:
+            continue
+        head = {"from_snapshot": a, "to_snapshot": b}
+        for s, r in results.items():
+            summary.append({**head, "species": s, **r.summary()})
+            if len(r.transfer):
+                moves.append(r.transfer.assign(species=s, **head))
+        summary.append({**head, "species": ALL, **_combine(results)})
+        tr = [r.transfer for r in results.values() if len(r.transfer)]
+        if tr:
+            total = (pd.concat(tr, ignore_index=True).groupby(["from_block", "to_block"], sort=True)["count"]
+                     .sum().reset_index())
+            moves.append(total.assign(species=ALL, **head))
+    mig = _finish(moves, MIGRATION_COLUMNS, frames=True)
+    for col in ("from_block", "to_block", "count"):
+        mig[col] = mig[col].astype(np.int64)
+    summ = _finish(summary, SUMMARY_COLUMNS)
+    for col in ("matched", "migrated", "created", "lost", "over_one_cell"):
+        summ[col] = summ[col].astype(np.int64)
+    summ["max_displacement_cells"] = summ["max_displacement_cells"].astype(np.float64)
+    return mig, summ
+
+
+def traffic_table(ctx: AuditContext, pairs=None) -> pd.DataFrame:
+    """Per rank: matched particles sent away and received between snapshot pairs."""
+    frames = []
+    for a, b in _pairs(ctx, pairs):
+        results = _migration_pair(ctx, a, b)
+        head = {"from_snapshot": a, "to_snapshot": b}
+        per = []
+        for s, r in results.items():
+            if len(r.traffic):
+                per.append(r.traffic)
+                frames.append(r.traffic.assign(species=s, **head))
+        if per:
+            total = pd.concat(per).groupby("rank", sort=True)[["send", "receive"]].sum().reset_index()
+            frames.append(total.assign(species=ALL, **head))
+    df = _finish(frames, TRAFFIC_COLUMNS, frames=True)
+    for col in ("rank", "send", "receive"):
+        df[col] = df[col].astype(np.int64)
+    return df
+
+
+# drift -------------------------------------------------------------------------------
+def _meta_scalars(snap) -> dict[str, float]:
+    out = {}
+    for k, v in (snap.meta or {}).items():
+        if isinstance(v, (bool, np.bool_)):
+            continue
+        try:
+            f = float(v)
+        except (TypeError, ValueError):
+            continue
+        if np.ndim(v) == 0:
+            name = f"meta_{k}" if k in _drift.PARTICLE_QUANTITIES or k == "total_energy" else k
+            out[name] = f
+    return out
+
+
+def _energy_meta(names) -> list[str]:
+    return sorted(n for n in names if n.endswith("_energy") and not n.startswith("meta_"))
+
+
+def drift_rows(ctx: AuditContext) -> list[dict]:
+    """Rows for :func:`diagnostics.drift.drift_table`: every total of every snapshot."""
+    rows: list[dict] = []
+    species = ctx.species_names()
+    n = len(ctx.run)
+    present = {s: [i for i in range(n) if s in ctx.run[i].species] for s in species}
+    for s, where in present.items():
+        if where and len(where) < n:
+            _note(ctx, f"species '{s}' is in {len(where)} of {n} snapshots only: its totals are "
+                       f"compared from snapshot {where[0]} on")
+    metas = [_meta_scalars(ctx.run[i]) for i in range(n)]
+    energy_names = _energy_meta(set().union(*metas) if metas else set())
+    if not energy_names:
+        _note(ctx, "no field or potential energy is stored beside the particles, so total_energy "
+                   "is not formed (kinetic_energy is still tabulated)")
+    for i in range(n):
+        stamp = _stamp(ctx, i)
+        per = _reduce(ctx, i, "totals")
+        sums: dict[str, list] = {}
+        for s, (values, bad) in per.items():
+            scales = {k: values.get(k, np.nan) for k in _drift.SCALE_QUANTITIES}
+            for q in _drift.PARTICLE_QUANTITIES:
+                if q in values:
+                    rows.append({**stamp, "species": s, "quantity": q, "value": values[q],
+                                 "nonfinite": bad.get(q, 0), **scales})
+            for q in list(_drift.PARTICLE_QUANTITIES) + list(_drift.SCALE_QUANTITIES):
+                sums.setdefault(q, []).append((values.get(q), bad.get(q, 0)))
+        missing_for_all = []
+        all_values: dict[str, tuple[float, int]] = {}
+        for q, items in sums.items():
+            if any(v is None for v, _ in items):
+                if any(v is not None for v, _ in items) and q in _drift.PARTICLE_QUANTITIES:
+                    missing_for_all.append(q)
+                continue
+            all_values[q] = (float(sum(v for v, _ in items)), int(sum(b for _, b in items)))
+        if missing_for_all:
+            _note(ctx, f"{_where(ctx, i)}: {', '.join(missing_for_all)} cannot be formed for every "
+                       "species (no mass, charge or momentum columns), so there is no 'all' total of it")
+        if per:
+            scales = {k: all_values.get(k, (np.nan, 0))[0] for k in _drift.SCALE_QUANTITIES}
+            for q in _drift.PARTICLE_QUANTITIES:
+                if q in all_values:
+                    v, b = all_values[q]
+                    rows.append({**stamp, "species": ALL, "quantity": q, "value": v, "nonfinite": b,
+                                 **scales})
+        meta = metas[i]
+        for name, v in meta.items():
+            rows.append({**stamp, "species": ALL, "quantity": name, "value": v,
+                         "nonfinite": 0 if math.isfinite(v) else 1})
+        if energy_names and "kinetic_energy" in all_values:
+            if all(e in meta for e in energy_names):
+                ke, b = all_values["kinetic_energy"]
+                rows.append({**stamp, "species": ALL, "quantity": "total_energy",
+                             "value": ke + sum(meta[e] for e in energy_names),
+                             "nonfinite": b + sum(0 if math.isfinite(meta[e]) else 1 for e in energy_names)})
+            else:
+                _note(ctx, f"{_where(ctx, i)} lacks {', '.join(e for e in energy_names if e not in meta)}: "
+                           "no total_energy there")
+    return rows
+
+
+def drift_details(ctx: AuditContext) -> pd.DataFrame:
+    """The drift table plus ``nonfinite``, ``scale`` and ``note`` columns."""
+    df = _drift.drift_table(drift_rows(ctx))
+    df["step"] = pd.array(df["step"], dtype="Int64")
+    df["snapshot"] = df["snapshot"].astype(np.int64)
+    for note in sorted(set(df["note"]) - {""}):
+        _note(ctx, note)
+    bad = df[df["nonfinite"] > 0]
+    for _, r in bad.drop_duplicates(["species", "quantity"]).iterrows():
+        _note(ctx, f"{r['quantity']} of species {r['species']}: {int(r['nonfinite'])} non-finite value(s) "
+                   f"at snapshot {int(r['snapshot'])} were left out of the total")
+    return df
+
+
+def drift_table(ctx: AuditContext, details: bool = False) -> pd.DataFrame:
+    """``snapshot,step,time,species,quantity,value,reference,relative_drift`` for every total.
+
+    Per species and ``all``: count, weight, charge, momentum_x/y/z,
+    kinetic_energy; numeric per-snapshot scalars (``field_energy``...) as
+    species ``all``; ``total_energy`` = kinetic energy of all species plus
+    the energy-like scalars (names ending in ``_energy``).
+    """
+    df = drift_details(ctx)
+    return df if details else df[DRIFT_COLUMNS].copy()
+
+
+# check -------------------------------------------------------------------------------
+@dataclass
+class CheckResult:
+    ok: bool
+    failures: list = field(default_factory=list)
+    lines: list[str] = field(default_factory=list)
+    table: pd.DataFrame | None = None
+
+
+def _select(df: pd.DataFrame, quantities) -> pd.DataFrame:
+    if quantities:
+        wanted = [q.strip() for q in quantities if q and q.strip()]
+        known = list(dict.fromkeys(df["quantity"]))
+        unknown = [q for q in wanted if q not in known]
+        if unknown:
+            raise OptionError(f"--quantities: no total called {', '.join(unknown)} in this run; "
+                              f"there are: {', '.join(known) or 'none'}")
+        return df[df["quantity"].isin(wanted)]
+    keep = np.zeros(len(df), dtype=bool)
+    for q, who in DEFAULT_CHECK.items():
+        m = df["quantity"].to_numpy() == q
+        if who == ALL:
+            m &= df["species"].to_numpy() == ALL
+        keep |= m
+    return df[keep]
+
+
+def _pct(x: float) -> str:
+    if not np.isfinite(x):
+        return "n/a"
+    if x == 0:
+        return "0 %"
+    return f"{x:+.3g} %" if abs(x) < 1 else f"{x:+.1f} %"
+
+
+def check(ctx: AuditContext, rtol: float, quantities=None) -> CheckResult:
+    """Does every checked total stay within ``rtol`` of the first snapshot?
+
+    Judged: ``|value - reference| <= rtol * scale`` where the scale is
+    ``|reference|``; for momentum components the reference Σ|momentum|; for
+    a zero reference Σ|w q| (charge) or the largest value in the run. A
+    non-finite total, or non-finite particle values, leave the band too.
+    Default quantities: count, weight and charge of every species and of
+    ``all``; momentum and total_energy of ``all``.
+    """
+    try:
+        rtol = float(rtol)
+    except (TypeError, ValueError):
+        raise OptionError(f"--rtol takes a positive number, got '{rtol}'") from None
+    if not (rtol > 0 and math.isfinite(rtol)):
+        raise OptionError(f"--rtol takes a positive number, got '{rtol}'")
+    if isinstance(quantities, str):
+        quantities = quantities.split(",")
+    df = drift_details(ctx)
+    sel = _select(df, quantities).reset_index(drop=True)
+    nsnap = len(ctx.run)
+    if sel.empty:
+        return CheckResult(True, [], ["ok: nothing to check (no totals could be formed)"], sel)
+    out = _drift.violations(sel, rtol).to_numpy()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        judged = ((sel["value"] - sel["reference"]) / sel["scale"]).to_numpy(dtype=np.float64) * 100
+    sel = sel.assign(judged_pct=judged, out=out)
+    summary, failures = [], []
+    for (s, q), g in sel.groupby(["species", "quantity"], sort=False):
+        worst_i = int(np.nanargmax(np.abs(g["judged_pct"].to_numpy()))) if np.isfinite(
+            g["judged_pct"].to_numpy()).any() else 0
+        worst = g.iloc[worst_i]
+        bad = g[g["out"]]
+        row = {"quantity": q, "species": s, "worst": float(worst["judged_pct"]),
+               "at": int(worst["snapshot"]), "first_out": int(bad.iloc[0]["snapshot"]) if len(bad) else None}
+        summary.append(row)
+        if len(bad):
+            b = bad.iloc[0]
+            reason = "non-finite" if (not np.isfinite(b["value"]) or b["nonfinite"] > 0) else "drift"
+            failures.append({"quantity": q, "species": s, "snapshot": int(b["snapshot"]),
+                             "step": None if pd.isna(b["step"]) else int(b["step"]),
+                             "time": float(b["time"]), "value": float(b["value"]),
+                             "reference": float(b["reference"]), "drift_pct": float(b["judged_pct"]),
+                             "reference_snapshot": int(b["reference_snapshot"]),
+                             "nonfinite": int(b["nonfinite"]), "reason": reason})
+    order = {q: k for k, q in enumerate(dict.fromkeys(sel["quantity"]))}
+    # earliest first; a named species before 'all', which only echoes it
+    failures.sort(key=lambda f: (f["snapshot"], order[f["quantity"]], f["species"] == ALL))
+    band = f"±{rtol * 100:.3g} %"
+    lines = []
+    if failures:
+        f = failures[0]
+        step = f" (step {f['step']})" if f["step"] is not None else ""
+        if f["reason"] == "non-finite":
+            what = (f"has {f['nonfinite']} non-finite particle value(s)" if f["nonfinite"]
+                    else "is not a finite number")
+            lines.append(f"FAIL: {f['quantity']} of species {f['species']} {what} at snapshot "
+                         f"{f['snapshot']}{step}")
+        else:
+            lines.append(f"FAIL: {f['quantity']} of species {f['species']} left the {band} band at "
+                         f"snapshot {f['snapshot']}{step}: {f['value']:.9g} against {f['reference']:.9g} "
+                         f"at snapshot {f['reference_snapshot']} ({_pct(f['drift_pct'])})")
+        if len(failures) > 1:
+            lines.append(f"{len(failures) - 1} more total(s) left the band too (see the table)")
+    else:
+        worst = max(summary, key=lambda r: abs(r["worst"]) if np.isfinite(r["worst"]) else -1)
+        lines.append(f"ok: {len(summary)} total(s) over {nsnap} snapshot(s) stay within {band} of the "
+                     f"first snapshot (largest: {worst['quantity']} of {worst['species']}, "
+                     f"{_pct(worst['worst'])} at snapshot {worst['at']})")
+    table = pd.DataFrame(summary)
+    table["status"] = np.where(table["first_out"].isna(), "ok", "FAIL")
+    table = table.sort_values(["status", "first_out"], ascending=[True, True], kind="stable",
+                              key=lambda c: c.map({"FAIL": 0, "ok": 1}) if c.name == "status" else c)
+    lines.extend(_format_table(table, limit=20))
+    return CheckResult(not failures, failures, lines, table.reset_index(drop=True))
+
+
+def _format_table(table: pd.DataFrame, limit: int) -> list[str]:
+    head = f"{'quantity':<18} {'species':<14} {'largest drift':>14} {'at':>5} {'first out':>9}  status"
+    lines = [head]
+    for _, r in table.head(limit).iterrows():
+        first = "-" if pd.isna(r["first_out"]) else str(int(r["first_out"]))
+        lines.append(f"{r['quantity']:<18} {str(r['species']):<14} {_pct(r['worst']):>14} "
+                     f"{int(r['at']):>5} {first:>9}  {r['status']}")
+    if len(table) > limit:
+        lines.append(f"... {len(table) - limit} more (all within the band)"
+                     if (table["status"].iloc[limit:] == "ok").all() else f"... {len(table) - limit} more")
+    return lines

@@ -1,0 +1,264 @@
+"""Conserved totals of a snapshot and their drift against the first snapshot.
+
+Totals are weighted: a macro-particle of weight w stands for w physical
+particles, so charge is Σ w q, momentum Σ w m v (or Σ w m u, or Σ w p) and
+kinetic energy Σ w ½ m v² (relativistic Σ w (γ−1) m c²). Non-finite particle
+values are left out of a total and counted, never propagated silently.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+
+#: quantities of one species of one snapshot, in table order
+PARTICLE_QUANTITIES = ("count", "weight", "charge", "momentum_x", "momentum_y", "momentum_z",
+                       "kinetic_energy")
+#: helper totals used as scales, not reported as drift rows
+SCALE_QUANTITIES = ("abs_momentum", "abs_charge")
+MOMENTUM_QUANTITIES = ("momentum_x", "momentum_y", "momentum_z")
+
+DRIFT_COLUMNS = ["snapshot", "step", "time", "species", "quantity", "value", "reference",
+                 "relative_drift"]
+
+
+def _speed_of_light(c):
+    if c is None:
+        from scipy.constants import c as c_si
+        return float(c_si)
+    c = float(c)
+    if not (c > 0 and math.isfinite(c)):
+        raise ValueError("the speed of light must be a positive number")
+    return c
+
+
+def finite_sum(values) -> tuple[float, int]:
+    """Σ of the finite entries and how many entries were not finite."""
+    v = np.asarray(values, dtype=np.float64)
+    if v.ndim == 0:
+        return (float(v), 0) if np.isfinite(v) else (0.0, 1)
+    ok = np.isfinite(v)
+    bad = int(v.size - np.count_nonzero(ok))
+    if bad:
+        return float(np.sum(v, where=ok)), bad
+    return float(v.sum()), 0
+
+
+def _squared_norm(components) -> np.ndarray:
+    s = None
+    for comp in components:
+        c = np.asarray(comp, dtype=np.float64)
+        s = c * c if s is None else s + c * c
+    return s
+
+
+def kinetic_energy_terms(mass, weight, components, kind: str = "v", relativistic: bool = False,
+                         c=None) -> np.ndarray:
+    """Per-particle w × kinetic energy (see :func:`kinetic_energy`)."""
+    if kind not in ("v", "u", "p"):
+        raise ValueError(f"kind must be 'v', 'u' or 'p', not {kind!r}")
+    m = np.asarray(mass, dtype=np.float64)
+    w = np.asarray(1.0 if weight is None else weight, dtype=np.float64)
+    q2 = _squared_norm(components)   # v², u² or p²
+    if q2 is None:
+        return np.zeros(0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if not relativistic:
+            if kind == "p":
+                e = 0.5 * q2 / m           # p²/2m
+            else:
+                e = 0.5 * m * q2           # ½ m v² (u taken as v)
+        else:
+            cc = _speed_of_light(c)
+            if kind == "v":
+                # u² = γ² v²; v >= c gives NaN/inf, reported as non-finite
+                u2 = q2 / (1.0 - q2 / (cc * cc))
+            elif kind == "u":
+                u2 = q2
+            else:
+                u2 = q2 / (m * m)
+            gamma = np.sqrt(1.0 + u2 / (cc * cc))
+            # (γ-1) m c² = m u² / (γ+1): no cancellation for small u
+            e = m * u2 / (gamma + 1.0)
+            if kind == "p":
+                # p²/(m(γ+1)) for massive particles; a massless one carries E = |p| c
+                e = np.where(m == 0, np.sqrt(q2) * cc, q2 / (m * (gamma + 1.0)))
+    return w * e
+
+
+def kinetic_energy(mass, weight, components, kind: str = "v", relativistic: bool = False, c=None,
+                   return_nonfinite: bool = False):
+    """Σ w × kinetic energy of the particles.
+
+    ``components`` are the 1-3 arrays of velocity (``kind='v'``), momentum per
+    unit mass u = γv (``'u'``) or momentum (``'p'``). Non-relativistic:
+    Σ w ½ m v² (u is taken as v; p gives p²/2m). Relativistic:
+    Σ w (γ−1) m c² with γ = sqrt(1 + u²/c²), evaluated as m u²/(γ+1) so that
+    small u loses no digits; ``c`` defaults to ``scipy.constants.c``. Non-
+    finite terms are left out (their number is returned too with
+    ``return_nonfinite``).
+    """
+    total, bad = finite_sum(kinetic_energy_terms(mass, weight, components, kind, relativistic, c))
+    return (total, bad) if return_nonfinite else total
+
+
+def _frame_mass(frame):
+    return frame.per_particle("mass", None)
+
+
+def snapshot_totals(frame, relativistic: bool = False, c=None, with_nonfinite: bool = False):
+    """Totals of one frame: count, weight, charge, momentum_x/y/z, kinetic_energy, scales.
+
+    Quantities that cannot be formed (no charge, no mass, no momentum column)
+    are absent. ``abs_momentum`` is Σ |w m v| (the momentum scale) and
+    ``abs_charge`` Σ |w q| (the charge scale when the net charge is zero).
+    With ``with_nonfinite`` returns ``(values, nonfinite)`` dicts.
+    """
+    values: dict[str, float] = {}
+    bad: dict[str, int] = {}
+
+    def put(name, arr_or_value):
+        v, b = finite_sum(arr_or_value)
+        values[name] = v
+        bad[name] = b
+
+    n = len(frame)
+    values["count"] = float(n)
+    bad["count"] = 0
+    w = frame.per_particle("weight", 1.0)
+    w_arr = np.asarray(w, dtype=np.float64)
+    put("weight", w_arr if w_arr.ndim else np.full(n, float(w_arr)) if n else np.zeros(0))
+    q = frame.per_particle("charge", None)
+    if q is not None:
+        wq = w_arr * np.asarray(q, dtype=np.float64)
+        if wq.ndim == 0:
+            wq = np.full(n, float(wq))
+        put("charge", wq)
+        put("abs_charge", np.abs(wq))
+    kind = frame.momentum_kind()
+    names = frame.momentum_names() if kind else []
+    m = _frame_mass(frame)
+    if names and (kind == "p" or m is not None):
+        comps = [np.asarray(frame[nm], dtype=np.float64) for nm in names]
+        roles = {"v": ("vx", "vy", "vz"), "u": ("ux", "uy", "uz"), "p": ("px", "py", "pz")}[kind]
+        factor = w_arr if kind == "p" else w_arr * np.asarray(m, dtype=np.float64)
+        present = {r: frame.column_for(r) for r in roles}
+        mag2 = None
+        for axis, r in zip("xyz", roles):
+            col = present.get(r)
+            if col is None:
+                continue
+            p = factor * np.asarray(frame[col], dtype=np.float64)
+            if p.ndim == 0:
+                p = np.full(n, float(p))
+            put(f"momentum_{axis}", p)
+            mag2 = p * p if mag2 is None else mag2 + p * p
+        if mag2 is not None:
+            put("abs_momentum", np.sqrt(mag2))
+        if m is not None:
+            terms = kinetic_energy_terms(m, w_arr, comps, kind, relativistic, c)
+            if terms.ndim == 0:
+                terms = np.full(n, float(terms))
+            put("kinetic_energy", terms)
+    return (values, bad) if with_nonfinite else values
+
+
+def _scale_for(quantity: str, ref_row: dict, run_max: float) -> tuple[float, str | None]:
+    """The scale a change is judged against, and a note when it is not |reference|."""
+    ref = ref_row.get("value", np.nan)
+    if quantity in MOMENTUM_QUANTITIES:
+        s = ref_row.get("abs_momentum", np.nan)
+        if s and np.isfinite(s) and s > 0:
+            return float(s), None
+        return (run_max, "no momentum in the first snapshot: judged against the largest "
+                         "momentum total of the run")
+    if ref and np.isfinite(ref) and ref != 0:
+        return abs(float(ref)), None
+    if quantity == "charge":
+        s = ref_row.get("abs_charge", np.nan)
+        if s and np.isfinite(s) and s > 0:
+            return float(s), "net charge is zero at the first snapshot: change judged against Σ|w q|"
+    return (run_max, f"{quantity} is zero at the first snapshot: change judged against its "
+                     "largest value in the run")
+
+
+def drift_table(rows) -> pd.DataFrame:
+    """Drift of each (species, quantity) against its first snapshot.
+
+    ``rows`` are dicts with ``snapshot, step, time, species, quantity, value``
+    and optionally ``nonfinite`` and the scale totals ``abs_momentum`` /
+    ``abs_charge`` of the same species and snapshot. ``relative_drift`` is
+    (value − reference)/|reference|, for momentum components divided by the
+    reference Σ|momentum| instead; a zero reference gives NaN and a note.
+    Extra columns: ``nonfinite`` (values left out), ``scale`` (what
+    :func:`first_violation` judges the change against) and ``note``.
+    """
+    df = pd.DataFrame(list(rows))
+    extra = ["nonfinite", "scale", "reference_snapshot", "note"]
+    if df.empty:
+        return pd.DataFrame(columns=DRIFT_COLUMNS + extra)
+    for col in ("nonfinite", "abs_momentum", "abs_charge"):
+        if col not in df:
+            df[col] = 0 if col == "nonfinite" else np.nan
+    df["nonfinite"] = df["nonfinite"].fillna(0).astype(np.int64)
+    # keep the callers' row order within a snapshot (species, then quantities as given)
+    df = df.sort_values("snapshot", kind="stable").reset_index(drop=True)
+    n = len(df)
+    ref = np.full(n, np.nan)
+    rel = np.full(n, np.nan)
+    scale = np.full(n, np.nan)
+    ref_snap = np.zeros(n, dtype=np.int64)
+    note = np.full(n, "", dtype=object)
+    for (_, quantity), idx in df.groupby(["species", "quantity"], sort=False).indices.items():
+        g = df.iloc[idx]
+        first = g.iloc[0].to_dict()
+        r = float(first["value"])
+        vals = g["value"].to_numpy(dtype=np.float64)
+        finite = np.isfinite(vals)
+        run_max = float(np.max(np.abs(vals[finite]))) if finite.any() else np.nan
+        sc, why = _scale_for(quantity, first, run_max)
+        denom = first.get("abs_momentum", np.nan) if quantity in MOMENTUM_QUANTITIES else abs(r)
+        if not (denom and np.isfinite(denom) and denom > 0):
+            denom = np.nan
+            why = why or f"{quantity} is zero at the first snapshot: no relative drift"
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rel[idx] = (vals - r) / denom
+        ref[idx] = r
+        scale[idx] = sc if (sc and np.isfinite(sc) and sc > 0) else np.nan
+        ref_snap[idx] = int(first["snapshot"])
+        note[idx] = why or ""
+    df["reference"] = ref
+    df["relative_drift"] = rel
+    df["scale"] = scale
+    df["reference_snapshot"] = ref_snap
+    df["note"] = note.astype(str)
+    return df[DRIFT_COLUMNS + extra]
+
+
+def violations(drift_df: pd.DataFrame, rtol: float) -> pd.Series:
+    """True where a row leaves the band: |value − reference| > rtol × scale, or non-finite."""
+    if not (rtol > 0):
+        raise ValueError("rtol must be positive")
+    change = (drift_df["value"] - drift_df["reference"]).abs().to_numpy(dtype=np.float64)
+    scale = drift_df["scale"].to_numpy(dtype=np.float64)
+    with np.errstate(invalid="ignore"):
+        out = change > rtol * scale
+        # a zero scale means the quantity was zero all run long: any change is a change
+        out |= (~np.isfinite(scale)) & (change > 0)
+    bad = ~np.isfinite(drift_df["value"].to_numpy(dtype=np.float64))
+    if "nonfinite" in drift_df:
+        bad |= drift_df["nonfinite"].to_numpy() > 0
+    return pd.Series(out | bad, index=drift_df.index)
+
+
+def first_violation(drift_df: pd.DataFrame, rtol: float):
+    """The earliest row (lowest snapshot, then table order) outside the band, or None."""
+    if drift_df.empty:
+        return None
+    mask = violations(drift_df, rtol)
+    if not mask.any():
+        return None
+    hit = drift_df[mask].sort_values("snapshot", kind="stable")
+    return hit.iloc[0]

@@ -1,0 +1,380 @@
+"""Migration between two snapshots: match particles by id, then count who moved where.
+
+Matching is the expensive part. Simulation ids are usually a permutation of
+a dense range (``0..N-1`` plus a few created), so the usual path scatters the
+second snapshot's row numbers into an array indexed by id (O(N), no sort);
+sparse or huge ids and composite keys that do not pack into one integer fall
+back to sorting.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from ..core.errors import SwarmAuditError
+from ..core.layout import BlockLayout
+from . import _kernels
+
+
+class DuplicateKeyError(SwarmAuditError):
+    """Particle ids repeat within one snapshot, so particles cannot be matched."""
+
+    def __init__(self, count: int, side: str):
+        self.count = int(count)
+        self.side = side
+        super().__init__(f"{self.count} particle(s) of the {side} snapshot repeat an id already "
+                         "used by another particle, so particles cannot be matched "
+                         "(give --id with the columns that together identify a particle)")
+
+
+@dataclass
+class KeyMatch:
+    """Rows of matched particles in each snapshot, and the unmatched ones."""
+
+    ia: np.ndarray        # row in snapshot a of each matched particle
+    ib: np.ndarray        # row in snapshot b of the same particle
+    lost: np.ndarray      # rows of a whose key is not in b
+    created: np.ndarray   # rows of b whose key is not in a
+
+
+# keys --------------------------------------------------------------------------
+def _as_int(arr: np.ndarray):
+    """The key as int64 when that is exact, else None."""
+    a = np.asarray(arr)
+    if a.dtype.kind == "i":
+        return a.astype(np.int64, copy=False)
+    if a.dtype.kind == "u":
+        if a.size and int(a.max()) > np.iinfo(np.int64).max:
+            return None
+        return a.astype(np.int64, copy=False)
+    if a.dtype.kind == "b":
+        return a.astype(np.int64)
+    if a.dtype.kind == "f":
+        with np.errstate(invalid="ignore"):
+            ok = a.size == 0 or (np.all(np.isfinite(a)) and np.all(np.abs(a) < 2.0 ** 53)
+                                 and np.all(a == np.floor(a)))
+        return a.astype(np.int64) if ok else None
+    return None
+
+
+def _components(keys):
+    if isinstance(keys, (tuple, list)):
+        comps = [np.asarray(k) for k in keys]
+    else:
+        comps = [np.asarray(keys)]
+    if not comps:
+        raise ValueError("a key needs at least one column")
+    n = comps[0].shape[0]
+    for c in comps:
+        if c.ndim != 1 or c.shape[0] != n:
+            raise ValueError("key columns must be 1-D and of equal length")
+    return comps
+
+
+def _pack(comps_a, comps_b):
+    """One int64 key per particle for both snapshots, or None when that is impossible."""
+    ints_a = [_as_int(c) for c in comps_a]
+    ints_b = [_as_int(c) for c in comps_b]
+    if any(x is None for x in ints_a + ints_b):
+        return None
+    if len(ints_a) == 1:
+        return ints_a[0], ints_b[0]
+    # mixed radix over the joint range of each column
+    ka = np.zeros(ints_a[0].shape[0], dtype=np.int64)
+    kb = np.zeros(ints_b[0].shape[0], dtype=np.int64)
+    stride = 1
+    for xa, xb in zip(ints_a, ints_b):
+        lo = min(int(xa.min(initial=2 ** 62)), int(xb.min(initial=2 ** 62)))
+        hi = max(int(xa.max(initial=-2 ** 62)), int(xb.max(initial=-2 ** 62)))
+        if hi < lo:   # both empty
+            lo = hi = 0
+        span = hi - lo + 1
+        if stride * span >= 2 ** 62:
+            return None
+        ka += (xa - lo) * stride
+        kb += (xb - lo) * stride
+        stride *= span
+    return ka, kb
+
+
+def _codes_by_sorting(comps_a, comps_b):
+    """Dense codes for arbitrary (composite, float, huge) keys; NaN keys get -1 (never match)."""
+    na = comps_a[0].shape[0]
+    joint = []
+    bad = np.zeros(na + comps_b[0].shape[0], dtype=bool)
+    for ca, cb in zip(comps_a, comps_b):
+        c = np.concatenate([ca, cb])
+        if c.dtype.kind == "f":
+            bad |= ~np.isfinite(c)
+        joint.append(c)
+    if len(joint) == 1:
+        _, inv = np.unique(joint[0], return_inverse=True)
+    else:
+        rec = np.rec.fromarrays(joint)
+        _, inv = np.unique(rec, return_inverse=True)
+    inv = inv.astype(np.int64).reshape(-1)
+    inv[bad] = -1
+    return inv[:na], inv[na:]
+
+
+def _dense_match(ka, kb, span):
+    """Matching by scatter into an id-indexed array (keys already in [0, span), -1 = unmatched)."""
+    na, nb = ka.shape[0], kb.shape[0]
+    idx_t = np.int32 if max(na, nb) < 2 ** 31 - 1 else np.int64
+    valid_a = ka >= 0
+    valid_b = kb >= 0
+    all_a, all_b = bool(valid_a.all()), bool(valid_b.all())
+    if all_a and all_b and _kernels.available and max(na, nb) >= _kernels.MIN_SIZE:
+        got = _kernels.dense_match(ka, kb, span)
+        if isinstance(got[0], str):
+            raise DuplicateKeyError(got[2], got[1])
+        return KeyMatch(*got)
+    pos_b = np.full(span, -1, dtype=idx_t)
+    rows_b = np.arange(nb, dtype=idx_t)
+    if all_b:
+        pos_b[kb] = rows_b
+    else:
+        pos_b[kb[valid_b]] = rows_b[valid_b]
+    nvalid_b = nb if all_b else int(valid_b.sum())
+    dup_b = nvalid_b - int(np.count_nonzero(pos_b >= 0))
+    if dup_b:
+        raise DuplicateKeyError(dup_b, "second")
+    seen_a = np.zeros(span, dtype=bool)
+    seen_a[ka if all_a else ka[valid_a]] = True
+    nvalid_a = na if all_a else int(valid_a.sum())
+    dup_a = nvalid_a - int(np.count_nonzero(seen_a))
+    if dup_a:
+        raise DuplicateKeyError(dup_a, "first")
+    look = pos_b[np.where(valid_a, ka, 0)] if not all_a else pos_b[ka]
+    if not all_a:
+        look = np.where(valid_a, look, -1)
+    hit = look >= 0
+    ia = np.flatnonzero(hit)
+    ib = look[ia].astype(np.int64)
+    lost = np.flatnonzero(~hit)
+    in_a = seen_a[np.where(valid_b, kb, 0)] if not all_b else seen_a[kb]
+    if not all_b:
+        in_a &= valid_b
+    created = np.flatnonzero(~in_a)
+    return KeyMatch(ia, ib, lost, created)
+
+
+def _sorted_match(ka, kb):
+    """Matching by sorting, for sparse or huge integer keys."""
+    ob = np.argsort(kb, kind="stable")
+    sb = kb[ob]
+    dup_b = int(np.count_nonzero(sb[1:] == sb[:-1]))
+    if dup_b:
+        raise DuplicateKeyError(dup_b, "second")
+    oa = np.argsort(ka, kind="stable")
+    sa = ka[oa]
+    dup_a = int(np.count_nonzero(sa[1:] == sa[:-1]))
+    if dup_a:
+        raise DuplicateKeyError(dup_a, "first")
+    if sb.size:
+        pos = np.minimum(np.searchsorted(sb, ka), sb.size - 1)
+        hit = sb[pos] == ka
+    else:
+        pos = np.zeros(ka.shape[0], dtype=np.int64)
+        hit = np.zeros(ka.shape[0], dtype=bool)
+    ia = np.flatnonzero(hit)
+    ib = ob[pos[ia]]
+    lost = np.flatnonzero(~hit)
+    if sa.size:
+        posb = np.minimum(np.searchsorted(sa, kb), sa.size - 1)
+        in_a = sa[posb] == kb
+    else:
+        in_a = np.zeros(kb.shape[0], dtype=bool)
+    created = np.flatnonzero(~in_a)
+    return KeyMatch(ia, ib.astype(np.int64), lost, created)
+
+
+def match_keys(keys_a, keys_b) -> KeyMatch:
+    """Match particles of two snapshots by key (any order on either side).
+
+    A key is one array or a tuple of arrays (a composite key such as
+    ``(id, creator_rank)``). Keys that are NaN never match. Raises
+    :class:`DuplicateKeyError` when a key repeats within a snapshot.
+    """
+    comps_a, comps_b = _components(keys_a), _components(keys_b)
+    if len(comps_a) != len(comps_b):
+        raise ValueError("both snapshots need the same number of key columns")
+    packed = _pack(comps_a, comps_b)
+    if packed is None:
+        ca, cb = _codes_by_sorting(comps_a, comps_b)
+        span = int(max(ca.max(initial=-1), cb.max(initial=-1))) + 1
+        return _dense_match(ca, cb, max(span, 1))
+    ka, kb = packed
+    if ka.size == 0 and kb.size == 0:
+        e = np.zeros(0, dtype=np.int64)
+        return KeyMatch(e, e, e, e)
+    lo = min(int(ka.min(initial=2 ** 62)), int(kb.min(initial=2 ** 62)))
+    hi = max(int(ka.max(initial=-2 ** 62)), int(kb.max(initial=-2 ** 62)))
+    span = hi - lo + 1
+    if span <= 2 * (ka.size + kb.size) + 4096:
+        if lo != 0:
+            ka, kb = ka - lo, kb - lo
+        return _dense_match(ka, kb, span)
+    return _sorted_match(ka, kb)
+
+
+# block-to-block moves ----------------------------------------------------------------
+def transfer_matrix(from_block, to_block, sparse: bool = False):
+    """Particles moving from each block to each block (only non-zero pairs).
+
+    Returns a DataFrame ``from_block, to_block, count`` sorted by both; with
+    ``sparse=True`` a ``(scipy.sparse.coo_array, labels)`` pair where entry
+    ``(i, j)`` counts moves from block ``labels[i]`` to block ``labels[j]``.
+    """
+    f = np.asarray(from_block).astype(np.int64, copy=False)
+    t = np.asarray(to_block).astype(np.int64, copy=False)
+    if f.shape != t.shape:
+        raise ValueError("from_block and to_block must have the same length")
+    if f.size == 0:
+        pairs = np.zeros((0, 2), dtype=np.int64)
+        counts = np.zeros(0, dtype=np.int64)
+    else:
+        lo = int(min(f.min(), t.min()))
+        hi = int(max(f.max(), t.max()))
+        span = hi - lo + 1
+        # most particles stay: count those with one bincount, sort only the movers
+        stay = f == t
+        diag = np.bincount(f[stay] - lo, minlength=span) if stay.any() else np.zeros(span, np.int64)
+        dblk = np.flatnonzero(diag) + lo
+        dcnt = diag[dblk - lo]
+        fm, tm = f[~stay], t[~stay]
+        if span < 2 ** 31:
+            code = (fm - lo) * span + (tm - lo)
+            u, c = np.unique(code, return_counts=True)
+            mf, mt = u // span + lo, u % span + lo
+        else:
+            uu, c = np.unique(np.stack([fm, tm], axis=1), axis=0, return_counts=True)
+            mf, mt = uu[:, 0], uu[:, 1]
+        pairs = np.concatenate([np.stack([dblk, dblk], axis=1), np.stack([mf, mt], axis=1)])
+        counts = np.concatenate([dcnt, c]).astype(np.int64)
+        order = np.lexsort((pairs[:, 1], pairs[:, 0]))
+        pairs, counts = pairs[order], counts[order]
+    if sparse:
+        from scipy import sparse as sp
+        labels = np.unique(pairs.reshape(-1)) if pairs.size else np.zeros(0, dtype=np.int64)
+        i = np.searchsorted(labels, pairs[:, 0])
+        j = np.searchsorted(labels, pairs[:, 1])
+        m = sp.coo_array((counts, (i, j)), shape=(labels.size, labels.size))
+        return m, labels
+    return pd.DataFrame({"from_block": pairs[:, 0], "to_block": pairs[:, 1], "count": counts})
+
+
+def displacement_cells(pos_a, pos_b, layout: BlockLayout) -> np.ndarray:
+    """Chebyshev (max-axis) displacement in level-0 cells; minimum image on periodic axes.
+
+    ``pos_a`` and ``pos_b`` are sequences of coordinate arrays of matched
+    particles (same order). NaN in a coordinate gives NaN.
+    """
+    if len(pos_a) != layout.ndim or len(pos_b) != layout.ndim:
+        raise ValueError(f"positions need {layout.ndim} axes for this layout")
+    h = layout.cell_size
+    out = None
+    for a in range(layout.ndim):
+        d = (np.asarray(pos_b[a], dtype=np.float64) - np.asarray(pos_a[a], dtype=np.float64)) / h[a]
+        if layout.periodic[a]:
+            n = float(layout.cells[a])
+            d -= n * np.round(d / n)
+        d = np.abs(d)
+        # fmax would hide a NaN on one axis behind the other axis; keep it visible
+        out = d if out is None else np.where(np.isnan(out) | np.isnan(d), np.nan, np.maximum(out, d))
+    return out if out is not None else np.zeros(0)
+
+
+def _owner(layout: BlockLayout, blocks: np.ndarray) -> np.ndarray:
+    rows = layout.block_index(blocks)
+    owner = np.append(layout.rank.astype(np.int64), -1)
+    return owner[rows]
+
+
+@dataclass
+class MigrationResult:
+    """Everything about one pair of snapshots of one species."""
+
+    matched: int
+    migrated: int
+    created: int
+    lost: int
+    max_displacement_cells: float
+    over_one_cell: int
+    steps: int
+    transfer: pd.DataFrame                          # from_block, to_block, count
+    traffic: pd.DataFrame                           # rank, send, receive
+    nonfinite_displacement: int = 0
+    notes: list[str] = field(default_factory=list)
+
+    def summary(self) -> dict:
+        return {"matched": self.matched, "migrated": self.migrated, "created": self.created,
+                "lost": self.lost, "max_displacement_cells": self.max_displacement_cells,
+                "over_one_cell": self.over_one_cell}
+
+
+def rank_traffic(rank_from, rank_to) -> pd.DataFrame:
+    """Per rank: matched particles that left it (``send``) and arrived at it (``receive``)."""
+    ra = np.asarray(rank_from).astype(np.int64, copy=False)
+    rb = np.asarray(rank_to).astype(np.int64, copy=False)
+    moved = ra != rb
+    sa, sb = ra[moved], rb[moved]
+    top = int(max(ra.max(initial=-1), rb.max(initial=-1)))
+    send = np.bincount(sa + 1, minlength=top + 2)
+    recv = np.bincount(sb + 1, minlength=top + 2)
+    ranks = np.arange(-1, top + 1, dtype=np.int64)
+    keep = (ranks >= 0) | (send > 0) | (recv > 0)
+    return pd.DataFrame({"rank": ranks[keep], "send": send[keep].astype(np.int64),
+                         "receive": recv[keep].astype(np.int64)})
+
+
+def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: BlockLayout | None = None,
+            steps=None, rank_a=None, rank_b=None, layout_b: BlockLayout | None = None) -> MigrationResult:
+    """Match two snapshots of one species and summarise the moves.
+
+    ``block_a``/``block_b`` are block ids per particle; ``pos_a``/``pos_b``
+    coordinate arrays for the displacement (in level-0 cells of ``layout``);
+    ``steps`` the simulation steps between the snapshots (None or < 1: 1);
+    ``rank_a``/``rank_b`` rank columns, else ranks are the blocks' owners.
+    ``over_one_cell`` counts matched particles whose displacement per step
+    exceeds one cell: an explicit pusher should keep them below.
+    """
+    m = match_keys(keys_a, keys_b)
+    block_a = np.asarray(block_a)
+    block_b = np.asarray(block_b)
+    fb = block_a[m.ia]
+    tb = block_b[m.ib]
+    migrated = int(np.count_nonzero(fb != tb))
+    transfer = transfer_matrix(fb, tb)
+    nsteps = int(steps) if steps is not None and np.isfinite(steps) and steps >= 1 else 1
+    notes = []
+    max_disp, over, nonfinite = np.nan, 0, 0
+    if pos_a is not None and pos_b is not None and layout is not None:
+        disp = displacement_cells([np.asarray(p)[m.ia] for p in pos_a],
+                                  [np.asarray(p)[m.ib] for p in pos_b], layout)
+        finite = np.isfinite(disp)
+        nonfinite = int(disp.size - np.count_nonzero(finite))
+        if nonfinite:
+            notes.append(f"{nonfinite} matched particle(s) have a non-finite position; "
+                         "their displacement is left out")
+        if disp.size - nonfinite:
+            max_disp = float(np.max(disp, where=finite, initial=0.0))
+        elif disp.size == 0:
+            max_disp = np.nan
+        over = int(np.count_nonzero(disp[finite] / nsteps > 1.0))
+    if rank_a is not None:
+        ra = np.asarray(rank_a)[m.ia]
+    else:
+        ra = _owner(layout, fb) if layout is not None else np.full(fb.shape, -1, dtype=np.int64)
+    if rank_b is not None:
+        rb = np.asarray(rank_b)[m.ib]
+    else:
+        lb = layout_b if layout_b is not None else layout
+        rb = _owner(lb, tb) if lb is not None else np.full(tb.shape, -1, dtype=np.int64)
+    return MigrationResult(matched=int(m.ia.size), migrated=migrated, created=int(m.created.size),
+                           lost=int(m.lost.size), max_displacement_cells=max_disp, over_one_cell=over,
+                           steps=nsteps, transfer=transfer, traffic=rank_traffic(ra, rb),
+                           nonfinite_displacement=nonfinite, notes=notes)

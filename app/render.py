@@ -29,9 +29,12 @@ _BACKENDS = ("bokeh", "matplotlib")
 
 def _ensure_backends():
     # Options are declared per backend; both registries must exist for that,
-    # and loading them does not change which backend the caller renders with.
+    # and loading them must not change which backend the caller renders with.
+    current = hv.Store.current_backend if hv.Store.renderers else None
     import holoviews.plotting.bokeh  # noqa: F401
     import holoviews.plotting.mpl  # noqa: F401
+    if current is not None and current in hv.Store.renderers and hv.Store.current_backend != current:
+        hv.Store.set_current_backend(current)
 
 
 # ---------------------------------------------------------------------------
@@ -242,11 +245,8 @@ def density_image(agg: xr.DataArray, *, cmap="viridis", scaling: str = "eq_hist"
     ky = hv.Dimension(yname, label=yl)
     kv = hv.Dimension(vname, label=cl)
     img = hv.Image((xs, ys, data), kdims=[kx, ky], vdims=[kv], bounds=bounds)
-    finite = data[np.isfinite(data)]
-    clim = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
-    if clim[0] == clim[1]:
-        clim = (clim[0], clim[0] + 1.0)
-    common = dict(cmap=cmap, cnorm=scaling, colorbar=True, title=title, clim=clim)
+    # no fixed clim: a dynamic view recomputes the colour range for every frame
+    common = dict(cmap=cmap, cnorm=scaling, colorbar=True, title=title)
     bokeh_opts = dict(common, tools=["hover"], clipping_colors={"NaN": (0, 0, 0, 0)},
                       colorbar_position="right", active_tools=["wheel_zoom"])
     if width:
@@ -320,3 +320,24 @@ def block_overlay(layout, counts=None, labels: bool = False, *, axes=(0, 1), sla
         backend="bokeh", text_color=line_color, text_font_size="8pt").opts(
         backend="matplotlib", color=line_color, size=6)
     return rects * lab
+
+
+# ---------------------------------------------------------------------------
+# the selection layer: a box in one view picks the same particles in every view
+def box_mask(frame, xcol: str, ycol: str, box) -> np.ndarray:
+    """Particles with ``x0 <= xcol <= x1`` and ``y0 <= ycol <= y1`` (box = (x0, y0, x1, y1))."""
+    x0, y0, x1, y1 = (float(v) for v in box)
+    x = _column(frame, xcol)
+    y = _column(frame, ycol)
+    with np.errstate(invalid="ignore"):
+        return (x >= x0) & (x <= x1) & (y >= y0) & (y <= y1)
+
+
+def selection_summary(frame, mask) -> tuple[int, float]:
+    """Number of selected particles and their summed weight (a missing weight is 1)."""
+    mask = np.asarray(mask, dtype=bool)
+    n = int(np.count_nonzero(mask))
+    w = frame.per_particle("weight", 1.0)
+    if np.ndim(w) == 0:
+        return n, float(w) * n
+    return n, float(np.sum(np.asarray(w, dtype=np.float64)[mask]))

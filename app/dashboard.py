@@ -1,0 +1,467 @@
+"""The dashboard page: two particle views (space, phase) and the audit side panels.
+
+Every view is a function of one :class:`~.state.ViewState`; the images come
+from :func:`.render.aggregate_points`, the same code the export uses, and
+are re-aggregated at full resolution on every zoom and pan (a DynamicMap fed
+by a RangeXY stream). Only the image reaches the browser.
+"""
+
+from __future__ import annotations
+
+import os
+
+import numpy as np
+import panel as pn
+import param
+
+import holoviews as hv
+
+from ..core.errors import SwarmAuditError
+from . import render
+from .state import (BLOCK_MODES, CMAPS, COLOR_BY, SCALINGS, SERVED, SIDE_PANELS, ServedRuns,
+                    ViewState)
+
+#: pixels of each particle view (aggregates are binned at exactly this size)
+VIEW_W, VIEW_H = 600, 470
+#: the page's own colours
+INK = "#1d2433"
+ACCENT = "#0f8b8d"
+HIGHLIGHT = ["#7ff3ff", "#00c2e0"]
+BLOCK_LINE = "#0f8b8d"
+PAPER = "#fbfaf7"
+
+# Panel components each live in their own shadow root: a page stylesheet stops at the first
+# one, so boxes are styled through their own ``styles`` (inherited text styles pass through).
+PAGE_STYLE = {"background": PAPER, "color": INK,
+              "font-family": '"Inter", "Segoe UI", "Helvetica Neue", Arial, sans-serif'}
+HEADER_STYLE = {"background": "linear-gradient(90deg, #17324d 0%, #1d4e5f 62%, #0f8b8d 100%)",
+                "border-bottom": "3px solid #e9c46a", "color": "#f7f4ec"}
+CONTROLS_STYLE = {"background": "#ffffff", "border-right": "1px solid #e4e0d8",
+                  "padding-bottom": "14px", "min-height": "100vh"}
+VIEW_STYLE = {"background": "#ffffff", "border": "1px solid #e4e0d8", "border-radius": "6px"}
+STATUS_STYLE = {"font-size": "12px", "color": "#5b6473"}
+
+_CSS_PATH = os.path.join(os.path.dirname(__file__), "assets", "dashboard.css")
+
+
+def _css() -> str:
+    try:
+        with open(_CSS_PATH, encoding="utf-8") as fh:
+            return fh.read()
+    except OSError:
+        return ""
+
+
+def _message_element(text: str, x_range=(0, 1), y_range=(0, 1)):
+    x = 0.5 * (x_range[0] + x_range[1])
+    y = 0.5 * (y_range[0] + y_range[1])
+    return hv.Text(x, y, text).opts(backend="bokeh", text_color="#9a3412", text_font_size="11pt")
+
+
+def _highlight(img):
+    # 1 = selected pixel, 0 = none; below the colour range is transparent, so no NaN is needed
+    return img.opts(backend="bokeh", cmap=HIGHLIGHT, colorbar=False, alpha=0.9, clim=(0.5, 1.5),
+                    clipping_colors={"min": (0, 0, 0, 0), "NaN": (0, 0, 0, 0)}, tools=[])
+
+
+class Dashboard(param.Parameterized):
+    """One session's page, built around its ViewState."""
+
+    reset_count = param.Integer(0, doc="bumped by 'whole view' to rebuild the views at full extent")
+
+    def __init__(self, state: ViewState, runs: ServedRuns | None = None, **params):
+        super().__init__(**params)
+        self.state = state
+        self.runs = runs if runs is not None else SERVED
+        self._status = {"space": pn.pane.Markdown("", styles=STATUS_STYLE, margin=(0, 8)),
+                        "phase": pn.pane.Markdown("", styles=STATUS_STYLE, margin=(0, 8))}
+        self.problem = pn.pane.Alert("", alert_type="warning", visible=False, margin=(4, 8))
+        self.selection_info = pn.pane.Markdown("", styles={"font-size": "12.5px"}, margin=(0, 10),
+                                               width=300)
+        self.link_text = pn.widgets.TextInput(name="", value="", sizing_mode="stretch_width",
+                                              styles={"font-size": "12px"})
+        self._base_url = ""
+        state.param.watch(self._update_link, list(state.param))
+        state.param.watch(self._check_snapshot, ["snapshot", "run", "species"])
+        state.param.watch(self._update_selection_info,
+                          ["select_box", "select_view", "snapshot", "species", "run"])
+        self._check_snapshot()
+        self._update_selection_info()
+        from .panels import SidePanels
+        self.side = SidePanels(state)
+
+    # URL / link -------------------------------------------------------------------
+    def set_base_url(self, base: str):
+        self._base_url = base
+        self._update_link()
+
+    def _update_link(self, *events):
+        self.link_text.value = self.state.link(self._base_url)
+
+    # messages ---------------------------------------------------------------------
+    def _check_snapshot(self, *events):
+        s = self.state
+        try:
+            s.frame()
+        except SwarmAuditError as exc:
+            self.problem.object = f"**Snapshot {s.snapshot} cannot be shown.** {exc}"
+            self.problem.visible = True
+            return
+        self.problem.visible = False
+
+    def _update_selection_info(self, *events):
+        s = self.state
+        if not s.select_box or not s.select_view:
+            self.selection_info.object = ("Draw a box with the **box select** tool in either "
+                                          "view to pick particles.")
+            return
+        try:
+            frame = s.frame()
+            xcol, ycol = self._axes(s.select_view)
+            mask = render.box_mask(frame, xcol, ycol, s.select_box)
+            n, w = render.selection_summary(frame, mask)
+        except SwarmAuditError as exc:
+            self.selection_info.object = f"Selection unavailable: {exc}"
+            return
+        total = max(frame.length, 1)
+        self.selection_info.object = (f"**Selected** in {s.select_view}: **{n:,}** particles "
+                                      f"({100.0 * n / total:.2f} %), summed weight **{w:.6g}**")
+
+    # the two particle views ---------------------------------------------------------
+    def _axes(self, which):
+        s = self.state
+        return (s.space_x, s.space_y) if which == "space" else (s.phase_x, s.phase_y)
+
+    def _ranges(self, which):
+        s = self.state
+        return (s.space_xr, s.space_yr) if which == "space" else (s.phase_xr, s.phase_yr)
+
+    def _store_ranges(self, which, xr_, yr_):
+        s = self.state
+        xr_ = tuple(float(v) for v in xr_) if xr_ is not None else None
+        yr_ = tuple(float(v) for v in yr_) if yr_ is not None else None
+        if which == "space":
+            s.param.update(space_xr=xr_, space_yr=yr_)
+        else:
+            s.param.update(phase_xr=xr_, phase_yr=yr_)
+
+    def _block_axes(self, frame, xcol, ycol, layout):
+        """Layout axis numbers of the two columns, when both are position axes."""
+        pos = frame.position_names
+        if xcol in pos and ycol in pos:
+            a, b = pos.index(xcol), pos.index(ycol)
+            if max(a, b) < layout.ndim and a != b:
+                return a, b
+        return None
+
+    def render_view(self, which, x_range=None, y_range=None, snapshot=None, slab_range=None,
+                    select_box=None, select_view=None, **_):
+        """One frame of a particle view (the DynamicMap callback)."""
+        s = self.state
+        xcol, ycol = self._axes(which)
+        status = self._status[which]
+        try:
+            frame = s.frame(snapshot)
+            if x_range is None or y_range is None:
+                sx, sy = self._ranges(which)
+                x_range = x_range or sx or render.padded_range(*render.data_range(frame, xcol))
+                y_range = y_range or sy or render.padded_range(*render.data_range(frame, ycol))
+            else:
+                self._store_ranges(which, x_range, y_range)
+            slab = None
+            if s.slab_axis and slab_range:
+                slab = (s.slab_axis, slab_range[0], slab_range[1])
+            reduction, value = {"count": ("count", None),
+                                "weight": ("sum", frame.column_for("weight")),
+                                "mean": ("mean", s.color_column)}[s.color_by]
+            if reduction == "sum" and value is None:
+                reduction = "count"   # no weight column: every weight is 1
+            agg = render.aggregate_points(frame, xcol, ycol, width=VIEW_W, height=VIEW_H,
+                                          x_range=x_range, y_range=y_range, reduction=reduction,
+                                          value=value, slab=slab)
+        except SwarmAuditError as exc:
+            status.object = f"⚠ {exc}"
+            xr_ = tuple(x_range) if x_range else (0, 1)
+            yr_ = tuple(y_range) if y_range else (0, 1)
+            return self._empty_overlay(which, xr_, yr_, str(exc))
+        title = f"{'Space' if which == 'space' else 'Phase space'}: {s.species}"
+        img = render.density_image(agg, cmap=s.cmap, scaling=s.scaling, title=title)
+        img = img.opts(backend="bokeh", width=VIEW_W, height=VIEW_H,
+                       tools=["hover", "box_select"], active_tools=["wheel_zoom"],
+                       bgcolor=PAPER, toolbar="above")
+        # selection layer: the same particles, wherever the box was drawn
+        sel_img, box = self._selection_layer(frame, which, xcol, ycol, x_range, y_range, slab,
+                                             select_box, select_view)
+        blocks = self._blocks_layer(frame, which, xcol, ycol, snapshot)
+        extra = ""
+        if agg.attrs["nonfinite"]:
+            extra = f" · **{agg.attrs['nonfinite']:,} with NaN/inf coordinates left out**"
+        status.object = (f"{agg.attrs['particles']:,} particles binned on {VIEW_W}×{VIEW_H} "
+                         f"pixels{extra}")
+        return img * sel_img * blocks * box
+
+    def _empty_overlay(self, which, xr_, yr_, text):
+        empty = hv.Image(np.full((2, 2), np.nan), bounds=(xr_[0], yr_[0], xr_[1], yr_[1]))
+        empty = empty.opts(backend="bokeh", width=VIEW_W, height=VIEW_H, bgcolor=PAPER,
+                           toolbar="above", tools=["box_select"])
+        return (empty * hv.Image(np.full((2, 2), np.nan), bounds=(xr_[0], yr_[0], xr_[1], yr_[1]))
+                * hv.Rectangles([]) * _message_element(text[:90], xr_, yr_))
+
+    def _selection_layer(self, frame, which, xcol, ycol, x_range, y_range, slab, select_box,
+                         select_view):
+        empty_box = hv.Rectangles([]).opts(backend="bokeh", fill_alpha=0, line_color="#e11d48")
+        if not select_box or not select_view:
+            nothing = hv.Image(np.zeros((2, 2)),
+                               bounds=(x_range[0], y_range[0], x_range[1], y_range[1]))
+            return _highlight(nothing), empty_box
+        sx, sy = self._axes(select_view)
+        mask = render.box_mask(frame, sx, sy, select_box)
+        agg = render.aggregate_points(frame, xcol, ycol, width=VIEW_W, height=VIEW_H,
+                                      x_range=x_range, y_range=y_range, mask=mask, slab=slab)
+        data = (np.asarray(agg.values) > 0).astype(np.float64)
+        sel = _highlight(hv.Image((agg.coords[agg.dims[1]].values, agg.coords[agg.dims[0]].values,
+                                   data), bounds=(x_range[0], y_range[0], x_range[1], y_range[1])))
+        if select_view == which:
+            x0, y0, x1, y1 = select_box
+            box = hv.Rectangles([(x0, y0, x1, y1)]).opts(
+                backend="bokeh", fill_alpha=0.0, line_color="#e11d48", line_width=2,
+                line_dash="dashed")
+        else:
+            box = empty_box
+        return sel, box
+
+    def _blocks_layer(self, frame, which, xcol, ycol, snapshot):
+        s = self.state
+        none = hv.Rectangles([]).opts(backend="bokeh", fill_alpha=0)
+        if which != "space" or s.blocks == "off":
+            return none
+        try:
+            layout = s.served.layout(s.snapshot if snapshot is None else snapshot)
+        except SwarmAuditError:
+            return none
+        axes = self._block_axes(frame, xcol, ycol, layout)
+        if axes is None:
+            return none
+        slab = None
+        if s.slab_axis and s.slab_range and s.slab_axis in frame.position_names:
+            k = frame.position_names.index(s.slab_axis)
+            slab = (k, s.slab_range[0], s.slab_range[1])
+        counts = None
+        if s.blocks in ("tinted", "labelled"):
+            counts = self.side.block_counts(s.snapshot if snapshot is None else snapshot)
+        return render.block_overlay(layout, counts=counts, labels=(s.blocks == "labelled"),
+                                    axes=axes, slab=slab, line_color=BLOCK_LINE)
+
+    @param.depends("state.run", "state.species", "state.space_x", "state.space_y",
+                   "state.blocks", "state.cmap", "state.scaling", "state.color_by",
+                   "state.color_column", "state.slab_axis", "reset_count")
+    def space_view(self):
+        return self._view("space")
+
+    @param.depends("state.run", "state.species", "state.phase_x", "state.phase_y",
+                   "state.cmap", "state.scaling", "state.color_by", "state.color_column",
+                   "state.slab_axis", "reset_count")
+    def phase_view(self):
+        return self._view("phase")
+
+    def _view(self, which):
+        s = self.state
+        streams = [hv.streams.RangeXY(),
+                   hv.streams.Params(s, ["snapshot", "slab_range", "select_box", "select_view"])]
+        dmap = hv.DynamicMap(lambda **kw: self.render_view(which, **kw), streams=streams)
+        bounds = hv.streams.BoundsXY(source=dmap, bounds=None)
+        bounds.add_subscriber(lambda bounds: self._selected(which, bounds))
+        return pn.pane.HoloViews(dmap, backend="bokeh", linked_axes=False, styles=VIEW_STYLE,
+                                 margin=(0, 4))
+
+    def _selected(self, which, bounds):
+        if bounds is None:
+            return
+        x0, y0, x1, y1 = (float(v) for v in bounds)
+        if not (x1 > x0 and y1 > y0):
+            return
+        self.state.param.update(select_view=which, select_box=(x0, y0, x1, y1))
+
+    def whole_view(self, *_):
+        s = self.state
+        s.param.update(space_xr=None, space_yr=None, phase_xr=None, phase_yr=None)
+        self.reset_count += 1
+
+    def clear_selection(self, *_):
+        self.state.param.update(select_box=None, select_view="")
+
+    # navigation and controls --------------------------------------------------------
+    def snapshot_label(self):
+        return pn.bind(lambda i, run: f"<div class='sa-snaplabel'>{_html(self.state.served.describe(i))}"
+                       f" <span class='sa-of'>of {self.state.nsnapshots}</span></div>",
+                       self.state.param.snapshot, self.state.param.run)
+
+    def controls(self):
+        s = self.state
+        n = s.nsnapshots
+        player = pn.widgets.Player(name="", start=0, end=max(n - 1, 1), value=s.snapshot,
+                                   interval=900, loop_policy="once", show_loop_controls=False,
+                                   disabled=n < 2, sizing_mode="stretch_width",
+                                   scale_buttons=0.85,
+                                   visible_buttons=["first", "previous", "pause", "play", "next",
+                                                    "last"], margin=(0, 10))
+
+        def to_state(e):
+            if s.snapshot != e.new and 0 <= e.new < s.nsnapshots:
+                s.snapshot = e.new
+        player.param.watch(to_state, "value")
+        s.param.watch(lambda e: setattr(player, "value", e.new) if player.value != e.new else None,
+                      "snapshot")
+
+        def on_run(e):
+            m = s.nsnapshots
+            player.param.update(end=max(m - 1, 1), disabled=m < 2, value=s.snapshot)
+        s.param.watch(on_run, "run")
+
+        run_select = pn.widgets.Select.from_param(s.param.run, name="Run",
+                                                  sizing_mode="stretch_width")
+        run_select.visible = len(self.runs) > 1
+        w = {}
+        for p, label in (("species", "Species"), ("space_x", "Space: across"),
+                         ("space_y", "Space: up"), ("phase_x", "Phase: across"),
+                         ("phase_y", "Phase: up"), ("color_column", "Mean of column")):
+            w[p] = pn.widgets.Select.from_param(s.param[p], name=label, sizing_mode="stretch_width")
+        color = pn.widgets.RadioButtonGroup.from_param(
+            s.param.color_by, options={"count": "count", "weight": "weight", "mean": "mean"},
+            button_type="light", sizing_mode="stretch_width")
+        scale = pn.widgets.RadioButtonGroup.from_param(
+            s.param.scaling, options={"eq. hist": "eq_hist", "log": "log", "linear": "linear"},
+            button_type="light", sizing_mode="stretch_width")
+        cmap = pn.widgets.Select.from_param(s.param.cmap, name="Colours", options=list(CMAPS),
+                                            sizing_mode="stretch_width")
+        blocks = pn.widgets.RadioButtonGroup.from_param(s.param.blocks, options=list(BLOCK_MODES),
+                                                        button_type="light",
+                                                        sizing_mode="stretch_width")
+        w["color_column"].visible = s.color_by == "mean"
+        s.param.watch(lambda e: setattr(w["color_column"], "visible", e.new == "mean"), "color_by")
+        slab_box = self._slab_controls()
+        whole = pn.widgets.Button(name="Whole view", button_type="default",
+                                  sizing_mode="stretch_width")
+        whole.on_click(self.whole_view)
+        clear = pn.widgets.Button(name="Clear selection", button_type="default",
+                                  sizing_mode="stretch_width")
+        clear.on_click(self.clear_selection)
+        return pn.Column(
+            run_select,
+            pn.pane.HTML(self.snapshot_label(), stylesheets=[_PANE_CSS], margin=(6, 10, 0, 10)),
+            player,
+            w["species"],
+            _section("Axes"),
+            pn.Row(w["space_x"], w["space_y"], sizing_mode="stretch_width"),
+            pn.Row(w["phase_x"], w["phase_y"], sizing_mode="stretch_width"),
+            slab_box,
+            _section("Colour"),
+            color, w["color_column"], scale, cmap,
+            _section("Blocks on the space view"),
+            blocks,
+            _section("Selection"),
+            self.selection_info,
+            pn.Row(whole, clear, sizing_mode="stretch_width"),
+            width=330, styles=CONTROLS_STYLE, margin=0,
+        )
+
+    def _slab_controls(self):
+        s = self.state
+        box = pn.Column(sizing_mode="stretch_width", margin=0)
+
+        def rebuild(*_):
+            if not s.slab_axis:
+                box.objects = []
+                return
+            try:
+                lo, hi = render.data_range(s.frame(), s.slab_axis)
+            except SwarmAuditError:
+                box.objects = []
+                return
+            lo, hi = render.padded_range(lo, hi)
+            hi = hi + (hi - lo) * 1e-9
+            value = s.slab_range or (lo, hi)
+            slider = pn.widgets.RangeSlider(name=f"Slab of {s.slab_axis}", start=lo, end=hi,
+                                            value=(max(lo, value[0]), min(hi, value[1])),
+                                            step=(hi - lo) / 200, sizing_mode="stretch_width")
+            slider.param.watch(lambda e: s.param.update(slab_range=tuple(e.new)), "value_throttled")
+            box.objects = [slider]
+        s.param.watch(rebuild, ["slab_axis", "run", "species"])
+        rebuild()
+        return box
+
+    def header(self):
+        s = self.state
+        copy = pn.widgets.Button(name="Copy link", button_type="warning", width=120,
+                                 margin=(14, 12, 8, 4))
+        copy.js_on_click(args={"box": self.link_text}, code="""
+const url = window.location.href;
+function fallback() {
+  const ta = document.createElement('textarea');
+  ta.value = url; document.body.appendChild(ta); ta.select();
+  try { document.execCommand('copy'); } catch (e) {}
+  ta.remove();
+}
+if (navigator.clipboard && window.isSecureContext) {
+  navigator.clipboard.writeText(url).catch(fallback);
+} else { fallback(); }
+box.value = url;
+""")
+        title = pn.bind(lambda run: f"<div class='sa-brand'><span class='sa-mark'>◆</span> "
+                        f"swarmaudit</div><div class='sa-run'>run: {_html(run)}</div>",
+                        s.param.run)
+        return pn.Row(pn.pane.HTML(title, stylesheets=[_PANE_CSS], margin=(4, 12)),
+                      pn.layout.HSpacer(),
+                      pn.Column(pn.pane.HTML("<span style='color:#cfe3e3;font-size:11px'>link to "
+                                             "this view</span>", margin=(2, 10, 0, 10)),
+                                self.link_text, width=560, margin=(0, 4)), copy,
+                      styles=HEADER_STYLE, sizing_mode="stretch_width", margin=0)
+
+    def views(self):
+        return pn.Row(
+            pn.Column(pn.panel(self.space_view, defer_load=False), self._status["space"],
+                      margin=(0, 6)),
+            pn.Column(pn.panel(self.phase_view), self._status["phase"], margin=(0, 6)),
+            margin=(4, 0))
+
+    def page(self):
+        body = pn.Column(self.problem, self.views(), self.side.tabs(), margin=(0, 8))
+        return pn.Column(
+            self.header(),
+            pn.Row(self.controls(), body, margin=0),
+            stylesheets=[_css()], styles=PAGE_STYLE, margin=0, sizing_mode="stretch_width",
+        )
+
+
+#: styles inside HTML panes (each pane has its own shadow root, the page's sheet stops at it)
+_PANE_CSS = """
+.sa-brand { font-size: 21px; font-weight: 700; letter-spacing: 0.04em; color: #f7f4ec; }
+.sa-mark { color: #e9c46a; }
+.sa-run { font-size: 12.5px; color: #cfe3e3; font-family: "DejaVu Sans Mono", monospace; }
+.sa-section { font-size: 11px; font-weight: 700; text-transform: uppercase;
+  letter-spacing: 0.09em; color: #0b6668; border-bottom: 1px solid #e4e0d8; padding-bottom: 2px;
+  width: 300px; }
+.sa-snaplabel { font-size: 14px; font-weight: 600; color: #1d2433;
+  font-family: "DejaVu Sans Mono", monospace; }
+.sa-of { font-weight: 400; color: #5b6473; font-size: 12px; }
+"""
+
+
+def _section(text: str):
+    return pn.pane.HTML(f"<div class='sa-section'>{_html(text)}</div>", stylesheets=[_PANE_CSS],
+                        margin=(10, 10, 0, 10))
+
+
+def _html(text) -> str:
+    import html
+    return html.escape(str(text))
+
+
+def build_page(runs: ServedRuns | None = None, query: dict | None = None, base_url: str = ""):
+    """The page of one session; ``query`` is the URL query (validated key by key)."""
+    state = ViewState(runs)
+    if query:
+        state.apply_query(query)
+    dash = Dashboard(state, runs)
+    dash.set_base_url(base_url)
+    return dash, dash.page()

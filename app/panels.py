@@ -1,0 +1,301 @@
+"""The side panels of the dashboard: Blocks, Moves, Totals, Histogram.
+
+Numbers come from ``core.audit`` / ``diagnostics`` and figures from
+``app.figures`` (the builders the export uses). Work over a whole run (drift)
+or between two snapshots (migration) runs in a worker thread with a
+progress bar; its result is kept per process, so every viewer and every
+revisit gets it at once.
+"""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import pandas as pd
+import panel as pn
+import param
+
+from ..core.errors import SwarmAuditError
+from . import figures
+from .state import ALL_SPECIES, RESULTS, SIDE_PANELS, ViewState
+
+TAB_TITLES = {"blocks": "Blocks", "moves": "Moves", "totals": "Totals", "histogram": "Histogram"}
+
+_small_cache: dict = {}
+_small_lock = threading.Lock()
+
+
+def _cached(key, compute):
+    with _small_lock:
+        if key in _small_cache:
+            return _small_cache[key]
+    value = compute()
+    with _small_lock:
+        if len(_small_cache) > 512:
+            _small_cache.clear()
+        _small_cache[key] = value
+    return value
+
+
+def _note(text: str, kind: str = "info"):
+    return pn.pane.Alert(text, alert_type=kind, margin=(8, 4))
+
+
+def _species_list(state: ViewState, i: int) -> list[str]:
+    names = state.served.species_names(i)
+    if state.species == ALL_SPECIES:
+        return [s for s in names if s != ALL_SPECIES]
+    return [state.species]
+
+
+class SidePanels(param.Parameterized):
+    """The tabs under the particle views; each tab is a view of the same state."""
+
+    def __init__(self, state: ViewState, **params):
+        super().__init__(**params)
+        self.state = state
+        self._moves = pn.Column(sizing_mode="stretch_width", min_height=200)
+        self._totals = pn.Column(sizing_mode="stretch_width", min_height=200)
+        self._watchers: dict[str, object] = {}
+        self._token = {"moves": 0, "totals": 0}
+
+    # tabs ------------------------------------------------------------------------------
+    def tabs(self):
+        s = self.state
+        tabs = pn.Tabs(
+            (TAB_TITLES["blocks"], pn.panel(self.blocks_panel, loading_indicator=True)),
+            (TAB_TITLES["moves"], pn.Column(pn.panel(self.moves_panel), self._moves)),
+            (TAB_TITLES["totals"], pn.Column(pn.panel(self.totals_panel), self._totals)),
+            (TAB_TITLES["histogram"], pn.panel(self.histogram_panel, loading_indicator=True)),
+            active=SIDE_PANELS.index(s.side), dynamic=True,
+            styles={"background": "#ffffff", "border": "1px solid #e4e0d8", "border-radius": "6px"},
+            sizing_mode="stretch_width", margin=(8, 4))
+        tabs.param.watch(lambda e: s.param.update(side=SIDE_PANELS[e.new]), "active")
+        s.param.watch(lambda e: setattr(tabs, "active", SIDE_PANELS.index(e.new)), "side")
+        return tabs
+
+    # census ----------------------------------------------------------------------------
+    def census(self, i: int):
+        """(block table, rank table, imbalance) of snapshot ``i`` for the species in view."""
+        s = self.state
+        key = ("census", s.run, int(i), s.species)
+
+        def compute():
+            from ..core import audit
+            return audit.snapshot_census(s.served.ctx, int(i), _species_list(s, i))
+        return _cached(key, compute)
+
+    def block_counts(self, i: int):
+        """Particles per layout row of snapshot ``i`` (for tinting the block overlay)."""
+        try:
+            blocks, _, _ = self.census(i)
+            layout = self.state.served.layout(i)
+        except (SwarmAuditError, ImportError, AttributeError):
+            return None
+        per = blocks.groupby("block")["count"].sum()
+        rows = layout.block_index(per.index.to_numpy(dtype=np.int64))
+        counts = np.zeros(layout.nblocks)
+        ok = rows >= 0
+        counts[rows[ok]] = per.to_numpy(dtype=float)[ok]
+        return counts
+
+    @param.depends("state.run", "state.snapshot", "state.species")
+    def blocks_panel(self):
+        s = self.state
+        i = s.snapshot
+        try:
+            blocks, ranks, imb = self.census(i)
+            layout = s.served.layout(i)
+            from ..core import audit
+            whatif = audit.snapshot_rebalance(s.served.ctx, i, _species_list(s, i))
+        except (ImportError, AttributeError):
+            return _note("The block census is not available in this build.")
+        except SwarmAuditError as exc:
+            return _note(f"No census for snapshot {i}: {exc}", "warning")
+        cmap = figures.census_map(blocks, layout, title="particles per block")
+        bars = figures.rank_bars(ranks, imb, title="particles per rank")
+        facts = _imbalance_facts(imb, blocks, layout)
+        table = pn.widgets.Tabulator(whatif, disabled=True, show_index=False, height=180,
+                                     sizing_mode="stretch_width", layout="fit_data_stretch") \
+            if whatif is not None and len(whatif) else pn.pane.Markdown("")
+        return pn.Column(
+            pn.Row(pn.pane.HoloViews(cmap, backend="bokeh"), pn.pane.HoloViews(bars, backend="bokeh")),
+            pn.pane.Markdown(facts, styles={"font-size": "13px"}),
+            pn.pane.Markdown("**What if the blocks were dealt out again?** Load per rank under "
+                             "other assignments of the same blocks:", margin=(4, 8, 0, 8)),
+            table, sizing_mode="stretch_width")
+
+    # migration -------------------------------------------------------------------------
+    @param.depends("state.run", "state.snapshot", "state.species", "state.compare_to")
+    def moves_panel(self):
+        s = self.state
+        n = s.nsnapshots
+        if n < 2:
+            self._moves.objects = []
+            return _note("This run has one snapshot: there is nothing to compare it with, so "
+                         "migration is not shown.")
+        i = s.snapshot
+        ref = s.compare_to if s.compare_to >= 0 else i - 1
+        options = {"previous snapshot": -1}
+        options.update({s.served.describe(k): k for k in range(n)})
+        pick = pn.widgets.Select(name="Compare with", options=options, value=s.compare_to,
+                                 width=320)
+        pick.param.watch(lambda e: s.param.update(compare_to=e.new), "value")
+        if ref < 0 or ref == i:
+            self._moves.objects = [_note("Pick another snapshot to compare with (the first "
+                                         "snapshot has no previous one).")]
+            return pick
+        a, b = (ref, i) if ref < i else (i, ref)
+        key = ("moves", s.run, a, b, s.species)
+
+        def work(progress=None):
+            from ..core import audit
+            return audit.snapshot_migration(s.served.ctx, a, b, _species_list(s, i), progress=progress)
+        self._start(self._moves, "moves", key, work, lambda res: self._show_moves(res, a, b))
+        return pick
+
+    def _show_moves(self, res, a, b):
+        table, summary, disp, steps = res
+        s = self.state
+        heat = figures.transfer_heatmap(table, title=f"block to block, {a} → {b}")
+        hist = figures.displacement_histogram(disp, steps, title="displacement")
+        facts = _moves_facts(summary)
+        return pn.Column(pn.pane.Markdown(facts, styles={"font-size": "13px"}),
+                         pn.Row(pn.pane.HoloViews(heat, backend="bokeh"),
+                                pn.pane.HoloViews(hist, backend="bokeh")),
+                         sizing_mode="stretch_width")
+
+    # drift -----------------------------------------------------------------------------
+    @param.depends("state.run", "state.species", "state.rtol")
+    def totals_panel(self):
+        s = self.state
+        n = s.nsnapshots
+        if n < 2:
+            self._totals.objects = []
+            return _note("This run has one snapshot: a drift needs at least two, so totals are "
+                         "not shown.")
+        rtol = pn.widgets.FloatInput(name="Tolerance (relative)", value=s.rtol, start=1e-15,
+                                     step=1e-4, width=200)
+        rtol.param.watch(lambda e: s.param.update(rtol=float(e.new)) if e.new and e.new > 0 else None,
+                         "value")
+        key = ("totals", s.run, s.species)
+
+        def work(progress=None):
+            from ..core import audit
+            return audit.run_drift(s.served.ctx, _species_list(s, 0), progress=progress)
+        self._start(self._totals, "totals", key, work, self._show_totals)
+        return rtol
+
+    def _show_totals(self, drift):
+        s = self.state
+        fig = figures.drift_curves(drift, s.rtol, title="drift against the first snapshot")
+        exits = figures.first_exits(drift, s.rtol)
+        if len(exits):
+            lines = [f"- **{r.quantity}** ({r.species}) first leaves ±{s.rtol:g} at snapshot "
+                     f"{int(r.snapshot)}" for r in exits.itertuples()]
+            facts = "\n".join(lines)
+        else:
+            facts = f"Every total stays within ±{s.rtol:g} of the first snapshot."
+        return pn.Column(pn.pane.Markdown(facts, styles={"font-size": "13px"}),
+                         pn.pane.HoloViews(fig, backend="bokeh"), sizing_mode="stretch_width")
+
+    # histogram -------------------------------------------------------------------------
+    @param.depends("state.run", "state.snapshot", "state.species", "state.hist_column")
+    def histogram_panel(self):
+        s = self.state
+        col = s.hist_column
+        pick = pn.widgets.Select.from_param(s.param.hist_column, name="Column", width=240)
+        try:
+            frame = s.frame()
+            values = frame[col]
+        except SwarmAuditError as exc:
+            return pn.Column(pick, _note(str(exc), "warning"))
+        if values.dtype.kind not in "fiub":
+            return pn.Column(pick, _note(f"Column '{col}' is not numeric.", "warning"))
+        w = frame.per_particle("weight", None)
+        from .render import axis_label
+        bad = int(np.count_nonzero(~np.isfinite(values))) if values.dtype.kind == "f" else 0
+        fig = figures.histogram_1d(values, weights=w, bins=80,
+                                   title=f"{col} of {s.species} (snapshot {s.snapshot})",
+                                   xlabel=axis_label(frame, col))
+        note = pn.pane.Markdown(f"{bad:,} NaN/inf values left out." if bad else "",
+                                styles={"font-size": "13px"})
+        return pn.Column(pick, pn.pane.HoloViews(fig, backend="bokeh"), note)
+
+    # background work -------------------------------------------------------------------
+    def _start(self, holder, name, key, work, show):
+        """Show ``show(result)`` in ``holder`` when ``work`` is done; a progress bar meanwhile."""
+        self._token[name] += 1
+        token = self._token[name]
+        fut = RESULTS.submit(key, work)
+        if fut.done():
+            holder.objects = [self._outcome(fut, show)]
+            return
+        bar = pn.indicators.Progress(value=0, max=100, width=320, bar_color="info")
+        label = pn.pane.Markdown("Working through the run…", margin=(0, 8))
+        holder.objects = [pn.Row(pn.indicators.LoadingSpinner(value=True, size=24), label, bar)]
+
+        def poll():
+            if self._token[name] != token:
+                cb.stop()
+                return
+            bar.value = int(100 * RESULTS.progress(key))
+            if fut.done():
+                cb.stop()
+                holder.objects = [self._outcome(fut, show)]
+        try:
+            cb = pn.state.add_periodic_callback(poll, period=300, start=True)
+        except Exception:     # no event loop (a script): wait for the result instead
+            fut.result()
+            holder.objects = [self._outcome(fut, show)]
+
+    @staticmethod
+    def _outcome(fut, show):
+        exc = fut.exception()
+        if exc is None:
+            try:
+                return show(fut.result())
+            except SwarmAuditError as err:
+                return _note(str(err), "warning")
+        if isinstance(exc, SwarmAuditError):
+            return _note(str(exc), "warning")
+        return _note(f"This could not be computed ({type(exc).__name__}: {exc}).", "danger")
+
+
+def _imbalance_facts(imb, blocks, layout) -> str:
+    def get(k):
+        try:
+            return imb[k]
+        except (KeyError, TypeError, IndexError):
+            return getattr(imb, k, None)
+    parts = []
+    ratio = get("max_over_mean")
+    if ratio is not None:
+        parts.append(f"max/mean load over ranks **{float(ratio):.3f}**")
+    for k, label in (("max", "busiest rank"), ("mean", "mean"), ("min", "idlest rank")):
+        v = get(k)
+        if v is not None:
+            parts.append(f"{label} {float(v):,.0f}")
+    outside = blocks.loc[blocks["block"] == -1, "count"].sum() if "block" in blocks else 0
+    if outside:
+        parts.append(f"**{int(outside):,} particles in no block**")
+    parts.append(f"{layout.nblocks} blocks on {len(layout.levels)} level(s), "
+                 f"{layout.nranks} rank(s)")
+    return " · ".join(parts)
+
+
+def _moves_facts(summary: pd.DataFrame) -> str:
+    if summary is None or not len(summary):
+        return "No particles to match."
+    row = summary.sum(numeric_only=True)
+    bits = []
+    for k, label in (("matched", "matched"), ("migrated", "changed block"), ("created", "created"),
+                     ("lost", "lost")):
+        if k in row:
+            bits.append(f"{label} **{int(row[k]):,}**")
+    if "max_displacement_cells" in summary:
+        bits.append(f"largest move **{float(summary['max_displacement_cells'].max()):.3g}** cells")
+    if "over_one_cell" in summary:
+        bits.append(f"beyond one cell per step **{int(row['over_one_cell']):,}**")
+    return " · ".join(bits)

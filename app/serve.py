@@ -1,0 +1,237 @@
+"""``swarmaudit serve`` / ``swarmaudit demo``: the dashboard behind a local (or shared) server.
+
+Safety model: the server shows only the runs it was started with. A page
+picks a run by *name* from that list; no URL value or widget can name a
+file, nothing is unpickled or evaluated. By default it listens on
+127.0.0.1 only; ``--share`` listens on every interface, behind a password
+(printed at start when not given), with websocket connections accepted only
+from this host's own names and addresses.
+"""
+
+from __future__ import annotations
+
+import os
+import secrets
+import socket
+import sys
+from urllib.parse import urlencode
+
+from ..core.context import AuditContext
+from ..core.errors import OptionError
+from ..core.run import Run
+from .state import SERVED, URL_KEYS, ServedRuns
+
+_ASSETS = os.path.join(os.path.dirname(__file__), "assets")
+
+
+def run_name(ctx: AuditContext) -> str:
+    """A short name for a run: its folder name (what the run menu and links show)."""
+    src = (ctx.run.source or "run").split(",")[0].strip()
+    name = os.path.basename(os.path.normpath(src)) or "run"
+    return name.replace("*", "").replace("?", "") or "run"
+
+
+def confine(ctx: AuditContext, roots: list[str]) -> list[str]:
+    """Leave out snapshots whose files resolve outside the run folders given.
+
+    A symlink inside a run folder that points elsewhere would otherwise let
+    the server read (and draw) a file its user never named. Returns notes.
+    """
+    real_roots = [os.path.realpath(r) for r in roots if os.path.isdir(r)]
+    if not real_roots:
+        return []
+    run = ctx.run
+
+    def inside(p):
+        rp = os.path.realpath(p)
+        return any(rp == r or rp.startswith(r.rstrip(os.sep) + os.sep) for r in real_roots)
+
+    keep, notes = [], []
+    for i, ref in enumerate(run.refs):
+        if all(inside(p) for p in ref.paths):
+            keep.append(i)
+        else:
+            notes.append(f"{ref.label}: left out, it points outside the run folder")
+    if len(keep) == len(run.refs):
+        return []
+    if not keep:
+        raise OptionError("every snapshot of the run points outside its folder; nothing to serve")
+    new = Run([run.refs[i] for i in keep], run.opener, run.role_map, run.source,
+              list(run.skipped) + notes)
+    for j, i in enumerate(keep):
+        if i in run._open:
+            new._open[j] = run._open[i]
+    ctx.run = new
+    ctx.notes.extend(notes)
+    return notes
+
+
+def _free_port(address: str) -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind((address, 0))
+        return s.getsockname()[1]
+
+
+def host_names() -> list[str]:
+    """Names and addresses this host answers to (what a colleague's browser may call it)."""
+    names = {"localhost", "127.0.0.1"}
+    try:
+        names.add(socket.gethostname())
+        names.add(socket.getfqdn())
+    except OSError:
+        pass
+    try:
+        import psutil
+        for addrs in psutil.net_if_addrs().values():
+            for a in addrs:
+                if a.family == socket.AF_INET:
+                    names.add(a.address)
+    except Exception:   # psutil missing or no permission: the names above still work
+        pass
+    try:
+        for info in socket.getaddrinfo(socket.gethostname(), None, socket.AF_INET):
+            names.add(info[4][0])
+    except OSError:
+        pass
+    return sorted(n for n in names if n)
+
+
+def _session_page(runs: ServedRuns):
+    """The panel app of one browser session."""
+    import panel as pn
+
+    from .dashboard import build_page
+    loc = pn.state.location
+    query = dict(loc.query_params) if loc is not None else {}
+    base = ""
+    if loc is not None:
+        port = f":{loc.port}" if loc.port else ""
+        base = f"{loc.protocol}//{loc.hostname}{port}{loc.pathname}"
+    dash, page = build_page(runs, query, base)
+    if loc is not None:
+        # the state already holds the validated query; what sync cannot apply is dropped
+        loc.sync(dash.state, URL_KEYS, on_error=lambda refused: None)
+        state = dash.state
+
+        def write_url(*_):
+            # the whole query every time: sync alone merges changed keys into the old query,
+            # which keeps keys whose value went back to None (a stale zoom after an axis change)
+            search = "?" + urlencode(state.query())
+            if loc.search != search:
+                loc.search = search
+        state.param.watch(write_url, list(URL_KEYS))
+        # the browser reports its own address once it connects; write ours after that
+        pn.state.onload(write_url)
+    return page
+
+
+def _login_template() -> str | None:
+    path = os.path.join(_ASSETS, "login.html")
+    return path if os.path.isfile(path) else None
+
+
+def serve_runs(paths_or_contexts, args, *, ready=None) -> int:
+    """Serve several runs (contexts, (name, context) pairs, or run folders) until interrupted.
+
+    ``args`` carries ``port``, ``share``, ``password``, ``no_browser``.
+    ``ready(url)`` is called once the server listens (tests, the demo).
+    """
+    import panel as pn
+
+    from ..core.roles import RoleMap
+    runs = SERVED
+    for item in paths_or_contexts:
+        if isinstance(item, AuditContext):
+            runs.add(run_name(item), item)
+        elif isinstance(item, tuple):
+            runs.add(item[0], item[1])
+        else:
+            from ..readers.discover import open_run
+            ctx = AuditContext(open_run(os.fspath(item), RoleMap()))
+            confine(ctx, [os.fspath(item)])
+            runs.add(run_name(ctx), ctx)
+    if not len(runs):
+        raise OptionError("nothing to serve")
+
+    share = bool(getattr(args, "share", False))
+    password = getattr(args, "password", None)
+    if password is not None and not share:
+        raise OptionError("--password only makes sense with --share")
+    if share:
+        if password is None:
+            password = secrets.token_urlsafe(12)
+            generated = True
+        else:
+            generated = False
+            if len(password) < 8:
+                raise OptionError("--password needs at least 8 characters")
+            if os.path.exists(password):
+                # the login check would read a file of that name as a table of users
+                raise OptionError("--password must not be the name of an existing file")
+    address = "0.0.0.0" if share else "127.0.0.1"
+    port = int(getattr(args, "port", 5006) or 0)
+    if port < 0 or port > 65535:
+        raise OptionError("--port takes 0..65535")
+    if port == 0:
+        port = _free_port(address)
+    hosts = host_names() if share else ["127.0.0.1", "localhost"]
+    origins = [f"{h}:{port}" for h in hosts]
+
+    kwargs = dict(port=port, address=address, websocket_origin=origins, show=False, start=False,
+                  title="swarmaudit", verbose=False, cookie_secret=secrets.token_urlsafe(32))
+    if share:
+        kwargs.update(basic_auth=password)
+        tmpl = _login_template()
+        if tmpl:
+            kwargs.update(login_template=tmpl)
+    # the served runs are fixed here, once per process: every session shares them
+    app = {"/": lambda: _session_page(runs)}
+    try:
+        server = pn.serve(app, **kwargs)
+    except OSError as exc:
+        raise OptionError(f"cannot listen on {address}:{port} ({exc.strerror or exc}); "
+                          f"try another --port") from None
+    local = f"http://127.0.0.1:{port}/"
+    print(f"swarmaudit: serving {', '.join(runs.names)} at {local}", flush=True)
+    if share:
+        lan = [h for h in hosts if h not in ("127.0.0.1", "localhost")]
+        for h in lan[:4]:
+            print(f"swarmaudit: on the network: http://{h}:{port}/", flush=True)
+        if generated:
+            print(f"swarmaudit: password: {password}", flush=True)
+        else:
+            print("swarmaudit: password: the one given with --password", flush=True)
+    for ctx_name in runs.names:
+        for note in runs[ctx_name].ctx.notes:
+            print(f"swarmaudit: {ctx_name}: {note}", file=sys.stderr, flush=True)
+    print("swarmaudit: press Ctrl-C to stop", flush=True)
+    server.start()
+    if ready is not None:
+        server.io_loop.add_callback(ready, local)
+    if not getattr(args, "no_browser", False):
+        server.io_loop.add_callback(lambda: _open_browser(local + ("login" if share else "")))
+    try:
+        server.io_loop.start()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        try:
+            server.stop()
+        except Exception:
+            pass
+    return 0
+
+
+def _open_browser(url: str) -> None:
+    import webbrowser
+    try:
+        webbrowser.open(url)
+    except Exception:   # no browser on this machine: the printed address is enough
+        pass
+
+
+def run_serve(ctx: AuditContext, args) -> int:
+    """``swarmaudit serve RUN``: one run."""
+    roots = [r for r in getattr(args, "run", []) if os.path.isdir(r)]
+    confine(ctx, roots)
+    return serve_runs([ctx], args)

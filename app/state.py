@@ -1,0 +1,463 @@
+"""What the dashboard shows, as one parameterized object, and the runs it may show.
+
+:class:`ViewState` holds the whole view (run, snapshot, species, axes, ranges,
+colouring, overlays, side panel, selection). A shared link is that state
+written into the URL query; :meth:`ViewState.apply_query` reads it back one
+key at a time and refuses what it does not know, so no URL can name a file.
+
+:class:`ServedRuns` is the per-process registry of the runs a server was
+started with. Sessions share it: a run's columns are read once per process,
+whatever the number of viewers.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import threading
+from collections import OrderedDict
+from concurrent.futures import Future, ThreadPoolExecutor
+from urllib.parse import urlencode
+
+import param
+
+from ..core.errors import InputError, SwarmAuditError
+from ..core.frame import concat_frames
+
+ALL_SPECIES = "all"
+
+COLOR_BY = ("count", "weight", "mean")
+SCALINGS = ("eq_hist", "log", "linear")
+#: colour maps offered; names both bokeh and matplotlib resolve through holoviews
+CMAPS = ("magma", "viridis", "cividis", "inferno", "fire", "kbc", "bmy", "gray")
+BLOCK_MODES = ("off", "outline", "tinted", "labelled")
+#: side panels, in the order of their tabs
+SIDE_PANELS = ("blocks", "moves", "totals", "histogram")
+SELECT_VIEWS = ("", "space", "phase")
+
+#: state parameter -> URL query key (short, stable: these are what links carry)
+URL_KEYS = {
+    "run": "run",
+    "snapshot": "snap",
+    "species": "sp",
+    "space_x": "sx", "space_y": "sy",
+    "phase_x": "px", "phase_y": "py",
+    "space_xr": "sxr", "space_yr": "syr",
+    "phase_xr": "pxr", "phase_yr": "pyr",
+    "color_by": "color", "color_column": "ccol",
+    "scaling": "scale", "cmap": "cmap",
+    "slab_axis": "slab", "slab_range": "slabr",
+    "blocks": "blocks",
+    "side": "tab",
+    "compare_to": "cmp",
+    "rtol": "rtol",
+    "hist_column": "hcol",
+    "select_view": "selv", "select_box": "sel",
+}
+
+# Order in which a query is applied: what decides the choices of later keys first.
+_APPLY_ORDER = ("run", "snapshot", "species", "space_x", "space_y", "phase_x", "phase_y",
+                "space_xr", "space_yr", "phase_xr", "phase_yr", "color_by", "color_column",
+                "scaling", "cmap", "slab_axis", "slab_range", "blocks", "side", "compare_to",
+                "rtol", "hist_column", "select_view", "select_box")
+
+
+# ---------------------------------------------------------------------------
+class ServedRun:
+    """One run a server shows: its context plus a small window of opened snapshots."""
+
+    def __init__(self, name: str, ctx, keep_open: int = 6):
+        self.name = name
+        self.ctx = ctx
+        self.run = ctx.run
+        self.keep_open = max(2, int(keep_open))
+        self._lock = threading.RLock()
+        self._recent: OrderedDict[int, None] = OrderedDict()
+        self._all: dict[int, object] = {}
+        self._errors: dict[int, str] = {}
+
+    def __len__(self) -> int:
+        return len(self.run)
+
+    @property
+    def labels(self) -> list[str]:
+        return self.run.labels
+
+    def snapshot(self, i: int):
+        """Snapshot ``i`` (read once); a snapshot that cannot be read raises InputError."""
+        i = int(i)
+        if not 0 <= i < len(self.run):
+            raise InputError(self.run.source, f"has no snapshot {i} (it has {len(self.run)})")
+        with self._lock:
+            if i in self._errors:
+                raise InputError(self.run.refs[i].path, self._errors[i])
+            try:
+                snap = self.run[i]
+            except SwarmAuditError as exc:
+                self._errors[i] = getattr(exc, "problem", None) or str(exc)
+                raise
+            except (OSError, ValueError, KeyError) as exc:
+                self._errors[i] = f"cannot be read ({type(exc).__name__}: {exc})"
+                raise InputError(self.run.refs[i].path, self._errors[i]) from None
+            self._recent[i] = None
+            self._recent.move_to_end(i)
+            # keep memory flat over a long run: older snapshots drop their columns
+            while len(self._recent) > self.keep_open:
+                old, _ = self._recent.popitem(last=False)
+                self._all.pop(old, None)
+                self.run.forget(old)
+            return snap
+
+    def species_names(self, i: int) -> list[str]:
+        names = list(self.snapshot(i).species)
+        if self.ctx.species:
+            names = [s for s in names if s in self.ctx.species]
+        return names + ([ALL_SPECIES] if len(names) > 1 else [])
+
+    def frame(self, i: int, species: str):
+        """The frame of one species, or every species joined (``all``)."""
+        snap = self.snapshot(i)
+        if species != ALL_SPECIES:
+            return snap.frame(species)
+        with self._lock:
+            if i not in self._all:
+                names = [s for s in self.species_names(i) if s != ALL_SPECIES]
+                parts = [snap.frame(s) for s in names]
+                self._all[i] = concat_frames(parts, species=ALL_SPECIES, source=snap.path)
+            return self._all[i]
+
+    def layout(self, i: int):
+        with self._lock:
+            return self.ctx.layout(int(i))
+
+    def describe(self, i: int) -> str:
+        """Label of a snapshot for the slider: position, step, time."""
+        try:
+            snap = self.snapshot(i)
+        except SwarmAuditError:
+            return f"#{i} {self.labels[i]} (unreadable)"
+        bits = [f"#{i}"]
+        if snap.step is not None:
+            bits.append(f"step {snap.step}")
+        if snap.time is not None:
+            bits.append(f"t = {snap.time:.4g}{(' ' + snap.time_unit) if snap.time_unit else ''}")
+        return "  ·  ".join(bits)
+
+
+class ServedRuns:
+    """The runs one server process shows, by name; unknown names are refused."""
+
+    def __init__(self, runs: "OrderedDict[str, ServedRun] | None" = None):
+        self._runs: OrderedDict[str, ServedRun] = OrderedDict(runs or {})
+
+    def add(self, name: str, ctx) -> ServedRun:
+        base, k = name, 2
+        while name in self._runs:
+            name, k = f"{base}-{k}", k + 1
+        self._runs[name] = ServedRun(name, ctx)
+        return self._runs[name]
+
+    @property
+    def names(self) -> list[str]:
+        return list(self._runs)
+
+    def __getitem__(self, name: str) -> ServedRun:
+        if name not in self._runs:
+            raise KeyError(name)
+        return self._runs[name]
+
+    def __len__(self) -> int:
+        return len(self._runs)
+
+
+class Results:
+    """Results of slow work (drift over a run, migration between two snapshots), shared by sessions.
+
+    ``submit(key, fn)`` starts ``fn`` in a worker thread once per key; every
+    session asking for the same key gets the same future, and a revisit is
+    instant.
+    """
+
+    def __init__(self, workers: int = 2):
+        self._pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="swarmaudit")
+        self._futures: dict[tuple, Future] = {}
+        self._progress: dict[tuple, float] = {}
+        self._lock = threading.Lock()
+
+    def submit(self, key: tuple, fn, *args) -> Future:
+        with self._lock:
+            fut = self._futures.get(key)
+            if fut is None or (fut.done() and fut.exception() is not None and _retry(fut)):
+                self._progress[key] = 0.0
+                fut = self._pool.submit(self._run, key, fn, *args)
+                self._futures[key] = fut
+            return fut
+
+    def _run(self, key, fn, *args):
+        def progress(done, total):
+            self._progress[key] = (done / total) if total else 1.0
+        return fn(*args, progress=progress)
+
+    def progress(self, key) -> float:
+        return self._progress.get(key, 0.0)
+
+    def get(self, key):
+        fut = self._futures.get(key)
+        return fut.result() if fut is not None and fut.done() else None
+
+    def clear(self) -> None:
+        with self._lock:
+            self._futures.clear()
+            self._progress.clear()
+
+
+def _retry(fut: Future) -> bool:
+    # a user error (bad snapshot) will not heal; anything else may have been transient
+    return not isinstance(fut.exception(), SwarmAuditError)
+
+
+#: the registry of this server process (filled by serve.serve_runs)
+SERVED = ServedRuns()
+RESULTS = Results()
+
+
+# ---------------------------------------------------------------------------
+class ViewState(param.Parameterized):
+    """The whole view of one dashboard session; what a shared link encodes."""
+
+    run = param.Selector(objects=[], doc="name of the run shown (one of the served runs)")
+    snapshot = param.Integer(0, bounds=(0, 0), doc="position of the snapshot in the run")
+    species = param.Selector(objects=[], doc="species shown, or 'all'")
+    space_x = param.Selector(objects=[], doc="horizontal axis of the spatial view")
+    space_y = param.Selector(objects=[], doc="vertical axis of the spatial view")
+    phase_x = param.Selector(objects=[], doc="horizontal axis of the phase-space view")
+    phase_y = param.Selector(objects=[], doc="vertical axis of the phase-space view")
+    space_xr = param.Range(None, allow_None=True, doc="visible range of space_x (None: all)")
+    space_yr = param.Range(None, allow_None=True)
+    phase_xr = param.Range(None, allow_None=True)
+    phase_yr = param.Range(None, allow_None=True)
+    color_by = param.Selector(default="count", objects=list(COLOR_BY),
+                              doc="count per pixel, summed weight, or mean of color_column")
+    color_column = param.Selector(objects=[], doc="column averaged when color_by is 'mean'")
+    scaling = param.Selector(default="eq_hist", objects=list(SCALINGS))
+    cmap = param.Selector(default="magma", objects=list(CMAPS))
+    slab_axis = param.Selector(default="", objects=[""], doc="third axis cut into a slab (3-D runs)")
+    slab_range = param.Range(None, allow_None=True, doc="lo <= slab_axis < hi")
+    blocks = param.Selector(default="outline", objects=list(BLOCK_MODES))
+    side = param.Selector(default="blocks", objects=list(SIDE_PANELS))
+    compare_to = param.Integer(-1, bounds=(-1, None), doc="migration reference snapshot (-1: previous)")
+    rtol = param.Number(1e-3, bounds=(0, None), inclusive_bounds=(False, True),
+                        doc="tolerance band of the drift panel")
+    hist_column = param.Selector(objects=[], doc="column of the 1-D histogram")
+    select_view = param.Selector(default="", objects=list(SELECT_VIEWS))
+    select_box = param.NumericTuple(None, length=4, allow_None=True,
+                                    doc="(x0, y0, x1, y1) of the selection in select_view's axes")
+
+    def __init__(self, runs: ServedRuns | None = None, **params):
+        self._runs = runs if runs is not None else SERVED
+        names = self._runs.names
+        if not names:
+            raise SwarmAuditError("no run to show")
+        self.param.run.objects = names
+        params.setdefault("run", names[0])
+        self._adjusting = False
+        super().__init__(run=params.pop("run"))
+        self._refresh_choices(reset_axes=True)
+        if params:
+            self.param.update(**params)
+
+    # the run and frame in view ----------------------------------------------------
+    @property
+    def served(self) -> ServedRun:
+        return self._runs[self.run]
+
+    @property
+    def nsnapshots(self) -> int:
+        return len(self.served)
+
+    def frame(self, snapshot: int | None = None):
+        """The frame in view (raises InputError when the snapshot cannot be read)."""
+        i = self.snapshot if snapshot is None else snapshot
+        return self.served.frame(i, self.species)
+
+    def columns(self) -> list[str]:
+        try:
+            f = self.frame()
+        except SwarmAuditError:
+            return []
+        # every column is offered without reading it (a view must only read what it shows);
+        # a column that cannot be drawn says so when it is chosen
+        return list(f.columns)
+
+    # choices that depend on the data ----------------------------------------------
+    @param.depends("run", watch=True)
+    def _on_run(self):
+        self._refresh_choices(reset_axes=True)
+
+    @param.depends("snapshot", "species", watch=True)
+    def _on_data(self):
+        self._refresh_choices(reset_axes=False)
+
+    @param.depends("space_x", "space_y", watch=True)
+    def _on_space_axes(self):
+        if not self._adjusting:
+            self.param.update(space_xr=None, space_yr=None, **self._drop_selection("space"))
+
+    @param.depends("phase_x", "phase_y", watch=True)
+    def _on_phase_axes(self):
+        if not self._adjusting:
+            self.param.update(phase_xr=None, phase_yr=None, **self._drop_selection("phase"))
+
+    def _drop_selection(self, view):
+        return {"select_box": None, "select_view": ""} if self.select_view == view else {}
+
+    def _refresh_choices(self, reset_axes: bool):
+        """Species, column and snapshot choices for the current run and snapshot."""
+        if self._adjusting:
+            return
+        self._adjusting = True
+        try:
+            served = self.served
+            n = len(served)
+            self.param.snapshot.bounds = (0, max(n - 1, 0))
+            if self.snapshot > n - 1:
+                self.snapshot = max(n - 1, 0)
+            self.param.compare_to.bounds = (-1, max(n - 1, 0))
+            if self.compare_to > n - 1:
+                self.compare_to = -1
+            try:
+                species = served.species_names(self.snapshot)
+            except SwarmAuditError:
+                species = [self.species] if self.species else []
+            if not species:
+                species = [""]
+            self.param.species.objects = species
+            if self.species not in species:
+                self.species = species[0]
+            cols = self.columns()
+            try:
+                frame = self.frame()
+            except SwarmAuditError:
+                frame = None
+            if not cols:
+                # an unreadable snapshot keeps the previous choices for when it comes back
+                return
+            for p in ("space_x", "space_y", "phase_x", "phase_y", "color_column", "hist_column"):
+                self.param[p].objects = cols
+            space, phase = default_axes(frame, cols)
+            updates = {}
+            for p, default in (("space_x", space[0]), ("space_y", space[1]),
+                               ("phase_x", phase[0]), ("phase_y", phase[1])):
+                if reset_axes or getattr(self, p) not in cols:
+                    updates[p] = default
+            weight = frame.column_for("weight") if frame is not None else None
+            mom = frame.momentum_names() if frame is not None else []
+            if reset_axes or self.color_column not in cols:
+                updates["color_column"] = mom[0] if mom else cols[0]
+            if reset_axes or self.hist_column not in cols:
+                updates["hist_column"] = (mom[0] if mom else (weight or cols[0]))
+            pos = frame.position_names if frame is not None else []
+            slabs = [""] + (pos[2:] if len(pos) > 2 else [])
+            self.param.slab_axis.objects = slabs
+            if reset_axes or self.slab_axis not in slabs:
+                updates["slab_axis"] = slabs[1] if len(slabs) > 1 else ""
+                updates["slab_range"] = None
+            if reset_axes:
+                updates.update(space_xr=None, space_yr=None, phase_xr=None, phase_yr=None,
+                               select_box=None, select_view="")
+            if updates:
+                self.param.update(**updates)
+        finally:
+            self._adjusting = False
+
+    # links --------------------------------------------------------------------------
+    def query(self) -> dict[str, str]:
+        """The URL query of this view (values as the page writes them)."""
+        out = {}
+        for p, key in URL_KEYS.items():
+            v = getattr(self, p)
+            if v is None:
+                continue
+            out[key] = v if isinstance(v, str) else json.dumps(list(v) if isinstance(v, tuple) else v)
+        return out
+
+    def link(self, base: str) -> str:
+        return f"{base}?{urlencode(self.query())}"
+
+    def apply_query(self, query: dict) -> list[str]:
+        """Set the state from a URL query, key by key; returns the keys refused.
+
+        Values are checked against the choices the server offers (run names,
+        column names, fixed option lists) and numeric bounds; anything else is
+        refused and the view keeps its default. Nothing in a query is ever
+        used as a path or evaluated.
+        """
+        inverse = {v: k for k, v in URL_KEYS.items()}
+        refused = [k for k in query if k not in inverse]
+        wanted = {inverse[k]: v for k, v in query.items() if k in inverse}
+        # axis changes clear the view range and the selection; a link sets all of them at once
+        for p in _APPLY_ORDER:
+            if p not in wanted:
+                continue
+            try:
+                value = _coerce(self.param[p], wanted[p])
+                if p in ("space_x", "space_y", "phase_x", "phase_y"):
+                    self._adjusting = True
+                    try:
+                        setattr(self, p, value)
+                    finally:
+                        self._adjusting = False
+                else:
+                    setattr(self, p, value)
+            except (ValueError, TypeError):
+                refused.append(URL_KEYS[p])
+        return refused
+
+
+def default_axes(frame, cols):
+    """Spatial view: first two position axes. Phase view: x against its momentum component."""
+    pos = frame.position_names if frame is not None else []
+    mom = frame.momentum_names() if frame is not None else []
+    space = (pos + [c for c in cols if c not in pos])[:2]
+    if len(space) < 2:
+        space = (space + cols + cols)[:2]
+    first = pos[0] if pos else cols[0]
+    partner = mom[0] if mom else next((c for c in cols if c != first), first)
+    return tuple(space), (first, partner)
+
+
+def _coerce(p: param.Parameter, value):
+    """A query value as the parameter's type, strictly (json numbers/lists only, no eval)."""
+    if isinstance(value, str) and isinstance(p, (param.Range, param.NumericTuple, param.Number,
+                                                 param.Integer)):
+        if value in ("", "null", "None"):
+            value = None
+        else:
+            value = json.loads(value)
+    if isinstance(p, param.Selector):
+        if value is None:
+            raise ValueError("empty")
+        value = str(value) if not isinstance(value, str) else value
+        if value not in p.objects:
+            raise ValueError(f"not a choice: {value!r}")
+        return value
+    if isinstance(p, param.Integer):
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or value != int(value):
+            raise ValueError("not a whole number")
+        return int(value)
+    if isinstance(p, (param.Range, param.NumericTuple)):
+        if value is None:
+            return None
+        if not isinstance(value, (list, tuple)):
+            raise ValueError("not a list")
+        vals = tuple(float(v) for v in value if not isinstance(v, bool))
+        if len(vals) != len(value) or not all(math.isfinite(v) for v in vals):
+            raise ValueError("not finite numbers")
+        if isinstance(p, param.Range) and (len(vals) != 2 or vals[1] <= vals[0]):
+            raise ValueError("not an increasing pair")
+        return vals
+    if isinstance(p, param.Number):
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise ValueError("not a number")
+        return float(value)
+    raise ValueError("not settable from a link")

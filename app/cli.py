@@ -37,6 +37,9 @@ def build_parser() -> argparse.ArgumentParser:
     q = sub.add_parser("inspect", help="what is in a run: snapshots, species, columns and roles, layout")
     add_run_options(q)
     q.add_argument("--json", action="store_true", help="machine-readable output")
+    q.add_argument("--health", choices=("auto", "all", "none"), default="auto",
+                   help="which snapshots to read for NaN/outside/duplicate-id counts "
+                        "(auto: all unless the run is very large)")
 
     e = sub.add_parser("export", help="figures (PNG), tables (CSV) and report.html, headless")
     add_run_options(e)
@@ -118,7 +121,7 @@ def _dispatch(args) -> int:
     ctx = context_from_options(args)
     if args.command == "inspect":
         from .inspect_cmd import run_inspect
-        return run_inspect(ctx, as_json=args.json)
+        return run_inspect(ctx, as_json=args.json, health=args.health)
     if args.command == "export":
         from .export import run_export
         return run_export(ctx, args)

@@ -7,7 +7,18 @@ import math
 
 from ..core.context import AuditContext
 from ..core.errors import SwarmAuditError
-from ..core.roles import ROLES
+
+
+#: particles (summed over the run) up to which inspect checks every snapshot's health
+HEALTH_BUDGET = 50_000_000
+
+#: the counts of readers.checks.frame_health that mean something is off, and how to say them
+HEALTH_COUNTS = {
+    "nonfinite_positions": "particles with a NaN or infinite position",
+    "nonfinite_momenta": "particles with a NaN or infinite velocity/momentum",
+    "outside_domain": "particles outside the domain",
+    "duplicate_keys": "particles whose id repeats another's",
+}
 
 
 def describe(ctx: AuditContext, health_snapshots=None) -> dict:
@@ -46,7 +57,14 @@ def describe(ctx: AuditContext, health_snapshots=None) -> dict:
         })
     layout = ctx.layout(0)
     health = []
-    which = health_snapshots if health_snapshots is not None else sorted({0, len(run) - 1})
+    which = health_snapshots
+    if which is None:
+        # the health counts read positions and ids; past a budget only the ends are read
+        total = sum(sum(f.length for f in s.species.values()) for s in run)
+        which = list(range(len(run))) if total <= HEALTH_BUDGET else sorted({0, len(run) - 1})
+        if len(which) < len(run):
+            ctx.notes.append(f"data health checked on the first and last snapshot only "
+                             f"({total:,} particles in the run; use --health all to check every one)")
     from ..readers.checks import frame_health
     for i in which:
         s = run[i]
@@ -93,8 +111,13 @@ def _fmt(v) -> str:
     return str(v)
 
 
-def run_inspect(ctx: AuditContext, as_json: bool = False) -> int:
-    info = describe(ctx)
+def run_inspect(ctx: AuditContext, as_json: bool = False, health: str = "auto") -> int:
+    which = None
+    if health == "all":
+        which = list(range(len(ctx.run)))
+    elif health == "none":
+        which = []
+    info = describe(ctx, which)
     if as_json:
         print(json.dumps(info, indent=2, default=_plain))
         return 0
@@ -133,10 +156,12 @@ def run_inspect(ctx: AuditContext, as_json: bool = False) -> int:
         print("  ".join(v.ljust(w) for v, w in zip(r, widths)))
     problems = []
     for h in info["health"]:
-        for k, v in h.items():
-            if k in ("snapshot", "species") or not v:
-                continue
-            problems.append(f"snapshot {h['snapshot']} {h['species']}: {k.replace('_', ' ')} {v}")
+        if h.get("error"):
+            problems.append(f"snapshot {h['snapshot']} {h['species']}: {h['error']}")
+        for k in HEALTH_COUNTS:
+            v = h.get(k)
+            if v:
+                problems.append(f"snapshot {h['snapshot']} {h['species']}: {v:,} {HEALTH_COUNTS[k]}")
     for s in snaps:
         for w in s["warnings"]:
             problems.append(f"snapshot {s['snapshot']}: {w}")

@@ -1,0 +1,689 @@
+"""The partitioned engine: dask frames, a scheduler, and per-piece reductions.
+
+A frame is read piece by piece (:mod:`core.partitions`): one piece per
+per-rank file, and row ranges of a huge file. Images go through datashader,
+which aggregates a dask frame natively. Census, totals and migration reduce
+each piece to a few small arrays and combine those; the combined answer is the
+one the in-memory diagnostics give for the whole frame (tests compare them).
+
+Which engine: ``--engine memory`` or ``dask``, or ``auto`` (default), which
+goes partitioned when a scheduler address is given or when the columns a
+command needs, times the working-set factor of the in-memory path, would not
+fit in half of the memory available now (psutil).
+
+Where: ``--scheduler ADDRESS`` connects to a running dask.distributed
+scheduler (the workers must see the same files at the same paths). Without
+one a local pool runs in this process: threads by default, since the
+compiled kernels (datashader's, block assignment) release the GIL and
+threads need no copies between processes; ``SWARMAUDIT_DASK_LOCAL=processes``
+starts a LocalCluster of one single-threaded worker process per core.
+"""
+
+from __future__ import annotations
+
+import atexit
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from .errors import OptionError
+from .frame import Frame
+from .layout import BlockLayout, assign_blocks
+from .partitions import (Piece, column_bytes, column_dtype, frame_pieces,
+                         frame_template, piece_frame, read_column, row_reader)
+
+ENGINES = ("auto", "memory", "dask")
+
+#: the in-memory path holds the columns plus temporaries (block ids, masks) of about this size
+WORKING_SET_FACTOR = 3.0
+#: share of the available memory the in-memory path may plan to use
+MEMORY_SHARE = 0.5
+
+
+# which engine ------------------------------------------------------------------------
+def memory_needed(frame: Frame, columns) -> int:
+    """Bytes the in-memory path would hold to work on ``columns`` of ``frame``."""
+    return int(column_bytes(frame, [c for c in columns if c in frame]) * WORKING_SET_FACTOR)
+
+
+def use_dask(ctx, frame: Frame, columns) -> bool:
+    """Whether ``frame`` should go through the partitioned engine for these columns."""
+    engine = getattr(ctx, "engine", "auto") or "auto"
+    if engine not in ENGINES:
+        raise OptionError(f"--engine takes one of {', '.join(ENGINES)}, got '{engine}'")
+    if engine == "memory":
+        return False
+    if engine == "dask" or getattr(ctx, "scheduler", None):
+        return True
+    import psutil
+    return memory_needed(frame, columns) > MEMORY_SHARE * psutil.virtual_memory().available
+
+
+# where it runs -------------------------------------------------------------------------
+@dataclass
+class DaskEngine:
+    """A place to run pieces: local threads, a local process cluster, or a remote scheduler."""
+
+    kind: str                     # "threads", "processes" or "distributed"
+    workers: int
+    client: object | None = None
+    address: str | None = None
+    _pool: ThreadPoolExecutor | None = field(default=None, repr=False)
+
+    @property
+    def scheduler(self):
+        """What ``dask.compute(scheduler=...)`` and ``dask.config.set(scheduler=...)`` take."""
+        return self.client if self.client is not None else "threads"
+
+    def active(self):
+        """Context in which dask collections (and datashader) compute on this engine."""
+        import dask
+        cfg = {"scheduler": self.scheduler}
+        if self.client is None:
+            cfg["num_workers"] = self.workers
+        return dask.config.set(cfg)
+
+    def map(self, fn, items, *args):
+        """``[fn(item, *args) for item in items]`` in parallel; results should be small."""
+        items = list(items)
+        if not items:
+            return []
+        if self.client is not None:
+            futures = self.client.map(fn, items, *[[a] * len(items) for a in args], pure=False)
+            return self.client.gather(futures)
+        if self.workers <= 1 or len(items) == 1:
+            return [fn(it, *args) for it in items]
+        return list(self._threads().map(lambda it: fn(it, *args), items))
+
+    def imap_unordered(self, fn, items, *args, window: int | None = None):
+        """Results of ``fn(item, *args)`` as they finish, at most ``window`` in flight.
+
+        For reductions whose per-piece results are large (a key and its block
+        of every particle): the caller folds each into its running state and
+        lets it go, so memory stays at ``window`` pieces.
+        """
+        items = list(items)
+        window = window or max(2, 2 * self.workers)
+        if self.client is not None:
+            from distributed import as_completed
+            it = iter(items)
+            first = [self.client.submit(fn, x, *args, pure=False) for x in _take(it, window)]
+            ac = as_completed(first)
+            for fut in ac:
+                res = fut.result()
+                fut.release()
+                for x in _take(it, 1):
+                    ac.add(self.client.submit(fn, x, *args, pure=False))
+                yield res
+            return
+        if self.workers <= 1:
+            for x in items:
+                yield fn(x, *args)
+            return
+        from concurrent.futures import FIRST_COMPLETED, wait
+        pool = self._threads()
+        it = iter(items)
+        pending = {pool.submit(fn, x, *args) for x in _take(it, window)}
+        while pending:
+            done, pending = wait(pending, return_when=FIRST_COMPLETED)
+            for fut in done:
+                for x in _take(it, 1):
+                    pending.add(pool.submit(fn, x, *args))
+                yield fut.result()
+
+    def _threads(self) -> ThreadPoolExecutor:
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(self.workers, thread_name_prefix="swarmaudit-piece")
+        return self._pool
+
+    def close(self) -> None:
+        if self._pool is not None:
+            self._pool.shutdown(wait=False)
+            self._pool = None
+
+
+def _take(it, n):
+    out = []
+    for _ in range(n):
+        try:
+            out.append(next(it))
+        except StopIteration:
+            break
+    return out
+
+
+_engines: dict[str, DaskEngine] = {}
+_engines_lock = threading.Lock()
+
+
+def local_kind() -> str:
+    kind = os.environ.get("SWARMAUDIT_DASK_LOCAL", "threads").strip().lower() or "threads"
+    if kind not in ("threads", "processes"):
+        raise OptionError(f"SWARMAUDIT_DASK_LOCAL takes 'threads' or 'processes', got '{kind}'")
+    return kind
+
+
+def client_for(ctx=None, address: str | None = None) -> DaskEngine:
+    """The engine for a context: its ``--scheduler``, else one local engine per process."""
+    address = address or (getattr(ctx, "scheduler", None) if ctx is not None else None)
+    key = address or f"local:{local_kind()}"
+    with _engines_lock:
+        eng = _engines.get(key)
+        if eng is not None:
+            return eng
+        eng = _connect(address) if address else _local(local_kind())
+        _engines[key] = eng
+        return eng
+
+
+def _cores() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:   # not Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def _local(kind: str) -> DaskEngine:
+    n = _cores()
+    if kind == "threads":
+        return DaskEngine("threads", n)
+    from distributed import Client, LocalCluster
+    cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
+                           dashboard_address=None, silence_logs=40)
+    client = Client(cluster, set_as_default=False)
+    return DaskEngine("processes", n, client, cluster.scheduler_address)
+
+
+def _connect(address: str) -> DaskEngine:
+    from distributed import Client
+    try:
+        client = Client(address, timeout=os.environ.get("SWARMAUDIT_DASK_TIMEOUT", "10s"),
+                        set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise OptionError(f"--scheduler {address}: no dask scheduler answers there ({exc})") from None
+    workers = max(1, sum(w.get("nthreads", 1)
+                         for w in client.scheduler_info().get("workers", {}).values()))
+    return DaskEngine("distributed", workers, client, address)
+
+
+@atexit.register
+def _close_engines():
+    for eng in list(_engines.values()):
+        try:
+            eng.close()
+            if eng.client is not None and eng.kind == "processes":
+                cluster = getattr(eng.client, "cluster", None)
+                eng.client.close()
+                if cluster is not None:
+                    cluster.close()
+        except Exception:   # shutting down: nothing useful to report
+            pass
+    _engines.clear()
+
+
+# dask frames ---------------------------------------------------------------------------
+def _read_partition(piece: Piece, names: dict, columns=None) -> pd.DataFrame:
+    wanted = list(names) if columns is None else [n for n in names if n in columns]
+    cols = {n: read_column(piece, names[n]) for n in wanted}
+    index = pd.RangeIndex(piece.offset, piece.offset + piece.length)
+    # copy=False: each array becomes its own block, no consolidation copy
+    return pd.DataFrame(cols, index=index, copy=False)
+
+
+def _meta(frame: Frame, pieces: list[Piece], names: dict) -> pd.DataFrame:
+    dtypes = {}
+    for out, col in names.items():
+        dt = column_dtype(frame, col)
+        if dt is None and pieces:
+            p = pieces[0]
+            if col in p.constants:
+                dt = np.dtype(p.constants[col][1])
+            else:
+                rows = row_reader(p.loaders[col])
+                # a zero-row read says the dtype for free; else read the first piece once
+                dt = (np.asarray(rows(0, 0)) if rows is not None else read_column(p, col)).dtype
+        dtypes[out] = np.empty(0, dtype=dt if dt is not None else np.float64)
+    return pd.DataFrame(dtypes, index=pd.RangeIndex(0, 0))
+
+
+def frame_to_dask(frame: Frame, columns, *, names=None, target_bytes: int | None = None):
+    """A dask DataFrame of ``columns`` of ``frame``: one partition per piece, no data read yet.
+
+    ``names`` renames the columns (``{"_x": "position/x"}`` order kept); the
+    index is the global row number, so divisions are known.
+    """
+    import dask.dataframe as dd
+    columns = list(columns)
+    if names is None:
+        names = {c: c for c in dict.fromkeys(columns)}
+    missing = [c for c in names.values() if c not in frame]
+    if missing:
+        frame[missing[0]]   # raises the frame's own InputError naming the columns it has
+    pieces = frame_pieces(frame, list(names.values()), target_bytes)
+    meta = _meta(frame, pieces, names)
+    divisions = [p.offset for p in pieces] + [pieces[-1].offset + pieces[-1].length - 1]
+    if len(frame) == 0 or any(p.length == 0 for p in pieces):
+        divisions = None   # empty parts repeat an offset; dask wants divisions increasing
+    return dd.from_map(_read_partition, pieces, args=(names,), meta=meta,
+                       divisions=tuple(divisions) if divisions else None,
+                       label="swarmaudit-read", enforce_metadata=False)
+
+
+# images --------------------------------------------------------------------------------
+def _stats_piece(piece: Piece, xcol, ycol, slab):
+    x, y = read_column(piece, xcol), read_column(piece, ycol)
+    keep = None
+    if slab is not None:
+        s = read_column(piece, slab[0])
+        with np.errstate(invalid="ignore"):
+            keep = (s >= slab[1]) & (s < slab[2])
+    out = {}
+    bad = None
+    for name, arr in (("x", x), ("y", y)):
+        if arr.dtype.kind == "f":
+            fin = np.isfinite(arr)
+            b = None if fin.all() else ~fin
+            good = arr if b is None else arr[fin]
+            bad = b if bad is None else (bad if b is None else bad | b)
+        else:
+            good = arr
+        out[name] = (float(good.min()), float(good.max())) if good.size else None
+    out["bad"] = 0 if bad is None else int(np.count_nonzero(bad if keep is None else bad & keep))
+    out["kept"] = piece.length if keep is None else int(np.count_nonzero(keep))
+    return out
+
+
+def column_stats(frame: Frame, xcol: str, ycol: str, *, slab=None, engine: DaskEngine | None = None):
+    """Finite (min, max) of two columns over all rows, and rows with a non-finite one (in the slab)."""
+    engine = engine or client_for()
+    res = engine.map(_stats_piece, frame_pieces(frame, [xcol, ycol]), xcol, ycol, slab)
+
+    def span(key):
+        got = [r[key] for r in res if r[key] is not None]
+        return (min(g[0] for g in got), max(g[1] for g in got)) if got else (0.0, 1.0)
+    return {"x_range": span("x"), "y_range": span("y"), "nonfinite": sum(r["bad"] for r in res),
+            "kept": sum(r["kept"] for r in res)}
+
+
+def aggregate_dask(frame: Frame, xcol: str, ycol: str, *, width: int = 800, height: int = 600,
+                   x_range=None, y_range=None, reduction: str = "count", value=None, slab=None,
+                   engine: DaskEngine | None = None):
+    """Bin ``frame`` onto a pixel grid piece by piece (datashader over a dask frame).
+
+    Returns the datashader aggregate with dims named after the columns and
+    ``attrs`` ``nonfinite``, ``particles``, ``x_range``, ``y_range``: the
+    same grid as the in-memory aggregation of the whole frame.
+    """
+    import datashader as ds
+    engine = engine or client_for()
+    if reduction not in ("count", "sum", "mean"):
+        raise OptionError(f"colour-by takes one of count, sum, mean, got '{reduction}'")
+    if reduction != "count" and not value:
+        raise OptionError(f"colour-by '{reduction}' needs a column to {reduction}")
+    stats = column_stats(frame, xcol, ycol, slab=slab, engine=engine)
+    x_range = _padded(x_range if x_range is not None else stats["x_range"])
+    y_range = _padded(y_range if y_range is not None else stats["y_range"])
+    names = {"_x": xcol, "_y": ycol}
+    if reduction != "count":
+        names["_v"] = value
+    if slab is not None:
+        names["_s"] = slab[0]
+    ddf = frame_to_dask(frame, list(names.values()), names=names)
+    if slab is not None:
+        ddf = ddf[(ddf["_s"] >= slab[1]) & (ddf["_s"] < slab[2])]
+    agg_fn = {"count": ds.count(), "sum": ds.sum("_v"), "mean": ds.mean("_v")}[reduction]
+    cv = ds.Canvas(plot_width=int(width), plot_height=int(height), x_range=x_range, y_range=y_range)
+    with engine.active():
+        agg = cv.points(ddf, "_x", "_y", agg=agg_fn)
+    agg = agg.rename({"_x": xcol, "_y": ycol}) if xcol != ycol else agg
+    agg.attrs.update({"nonfinite": stats["nonfinite"], "particles": stats["kept"] - stats["nonfinite"],
+                      "x_range": tuple(x_range), "y_range": tuple(y_range)})
+    return agg
+
+
+def _padded(r):
+    lo, hi = float(r[0]), float(r[1])
+    if hi > lo:
+        return (lo, hi)
+    pad = abs(lo) * 1e-6 if lo != 0 else 0.5
+    return (lo - pad, hi + pad)
+
+
+# census --------------------------------------------------------------------------------
+def _census_piece(piece: Piece, template: Frame, layout: BlockLayout, weight_default, use_rank):
+    f = piece_frame(piece, template)
+    rows = layout.block_index(assign_blocks(f.positions(), layout))
+    w = f.per_particle("weight", weight_default)
+    w = None if w is None else (float(w) if np.ndim(w) == 0 else np.asarray(w, dtype=np.float64))
+    shifted = rows + 1
+    counts = np.bincount(shifted, minlength=layout.nblocks + 1)
+    if w is None:
+        wsum = counts.astype(np.float64)
+    elif isinstance(w, float):
+        wsum = counts * w
+    else:
+        wsum = np.bincount(shifted, weights=w, minlength=layout.nblocks + 1)
+    out = {"counts": counts, "wsum": wsum}
+    if use_rank and "rank" in f.roles:
+        r = np.asarray(f.role("rank")).astype(np.int64, copy=False)
+        r = np.where(r < 0, -1, r) + 1
+        out["rank_counts"] = np.bincount(r)
+        out["rank_wsum"] = (out["rank_counts"].astype(np.float64) if w is None else
+                            out["rank_counts"] * w if isinstance(w, float) else
+                            np.bincount(r, weights=w))
+    return out
+
+
+def _sum_ragged(arrays):
+    arrays = list(arrays)
+    n = max(a.shape[0] for a in arrays)
+    out = np.zeros(n, dtype=np.result_type(*arrays))
+    for a in arrays:
+        out[:a.shape[0]] += a
+    return out
+
+
+def census_dask(frame: Frame, layout: BlockLayout, *, weight_default=None, particle_rank: bool = True,
+                engine: DaskEngine | None = None) -> dict[str, pd.DataFrame]:
+    """Block, rank and level census of ``frame`` reduced piece by piece.
+
+    Returns ``{"block", "rank", "level"}`` tables equal to
+    ``diagnostics.census.block_census / rank_census / level_census`` of the
+    whole frame with weights ``frame.per_particle("weight", weight_default)``
+    (and the rank column as ``particle_rank`` when the frame has one).
+    """
+    engine = engine or client_for()
+    cols = list(frame.position_names)
+    for role in ("weight", "rank"):
+        if frame.column_for(role):
+            cols.append(frame.column_for(role))
+    res = engine.map(_census_piece, frame_pieces(frame, cols), frame_template(frame), layout,
+                     weight_default, particle_rank)
+    if not res:
+        res = [{"counts": np.zeros(layout.nblocks + 1, np.int64),
+                "wsum": np.zeros(layout.nblocks + 1)}]
+    counts = sum(r["counts"] for r in res).astype(np.int64)
+    wsum = sum(r["wsum"] for r in res)
+    rank_counts = rank_wsum = None
+    if particle_rank and any("rank_counts" in r for r in res):
+        rank_counts = _sum_ragged(r["rank_counts"] for r in res if "rank_counts" in r).astype(np.int64)
+        rank_wsum = _sum_ragged(r["rank_wsum"] for r in res if "rank_wsum" in r).astype(np.float64)
+    return census_tables(counts, wsum, layout, rank_counts, rank_wsum)
+
+
+def census_tables(counts, wsum, layout: BlockLayout, rank_counts=None, rank_wsum=None):
+    """Census tables from per-row sums (slot 0: in no block; slot r+1: layout row r).
+
+    The tables come from :mod:`diagnostics.census` itself, fed one stand-in
+    particle per key carrying that key's summed weight, with the counts put
+    back afterwards: so rows, order and the non-additive columns (owned
+    blocks) are the in-memory ones by construction. ``rank_counts`` and
+    ``rank_wsum`` (slot 0: no rank, slot r+1: rank r) are sums over a rank
+    column.
+    """
+    from ..diagnostics.census import block_census, level_census, rank_census
+    counts = np.asarray(counts, dtype=np.int64)
+    wsum = np.asarray(wsum, dtype=np.float64)
+    reps = layout.block_id.astype(np.int64)
+    rep_counts, rep_w = counts[1:], wsum[1:]
+    if counts[0]:   # particles in no block get their own stand-in
+        reps = np.append(reps, -1)
+        rep_counts, rep_w = np.append(rep_counts, counts[0]), np.append(rep_w, wsum[0])
+    block = _put_counts(block_census(reps, layout, rep_w), "block", reps, rep_counts)
+    level_of = np.append(layout.level.astype(np.int64), -1)[layout.block_index(reps)]
+    level = _put_counts(level_census(reps, layout, rep_w), "level", level_of, rep_counts)
+    if rank_counts is None:
+        owner = np.append(layout.rank.astype(np.int64), -1)[layout.block_index(reps)]
+        rank = _put_counts(rank_census(reps, layout, rep_w), "rank", owner, rep_counts)
+    else:
+        rank_counts = np.asarray(rank_counts, dtype=np.int64)
+        keys = np.arange(-1, rank_counts.shape[0] - 1, dtype=np.int64)
+        used = (rank_counts > 0) | (keys >= 0)
+        keys, rc, rw = keys[used], rank_counts[used], np.asarray(rank_wsum, np.float64)[used]
+        rank = _put_counts(rank_census(np.full(keys.shape, -1, np.int64), layout, rw,
+                                       particle_rank=keys), "rank", keys, rc)
+    return {"block": block, "rank": rank, "level": level}
+
+
+def _put_counts(table: pd.DataFrame, key: str, rep_keys, rep_counts) -> pd.DataFrame:
+    """Replace the stand-ins' count (one each) by the true counts summed per key."""
+    true = pd.Series(rep_counts, dtype=np.int64).groupby(np.asarray(rep_keys)).sum()
+    out = table.copy()
+    out["count"] = true.reindex(out[key].to_numpy(), fill_value=0).to_numpy().astype(np.int64)
+    return out
+
+
+# totals --------------------------------------------------------------------------------
+def _apply_piece(piece: Piece, template: Frame, fn, kwargs):
+    return fn(piece_frame(piece, template), **kwargs)
+
+
+def _add(a, b):
+    if isinstance(a, dict):
+        return {k: _add(a[k], b[k]) if k in b else a[k] for k in a} | \
+               {k: v for k, v in b.items() if k not in a}
+    if isinstance(a, tuple):
+        return tuple(_add(x, y) for x, y in zip(a, b))
+    return a + b
+
+
+def totals_dask(frame: Frame, fn, *, engine: DaskEngine | None = None, **kwargs):
+    """``fn(frame, **kwargs)`` for an additive ``fn`` (sums of per-particle terms), piece by piece.
+
+    ``fn`` returns a number, a dict of numbers, or a tuple of those (like
+    ``diagnostics.drift.snapshot_totals(..., with_nonfinite=True)``); the
+    pieces' answers are added. Only sums combine this way, not means or maxima.
+    """
+    engine = engine or client_for()
+    res = engine.map(_apply_piece, frame_pieces(frame), frame_template(frame), fn, kwargs)
+    if not res:
+        return fn(frame, **kwargs)
+    out = res[0]
+    for r in res[1:]:
+        out = _add(out, r)
+    return out
+
+
+# migration -----------------------------------------------------------------------------
+def _key_piece(piece: Piece, key_col: str):
+    k = read_column(piece, key_col)
+    if k.dtype.kind not in "iu":
+        return None
+    return (int(k.min()), int(k.max())) if k.size else (None, None)
+
+
+def _migration_piece(piece: Piece, template: Frame, layout: BlockLayout, key_col: str, want_pos: bool):
+    f = piece_frame(piece, template)
+    pos = f.positions()
+    out = {"key": read_column(piece, key_col).astype(np.int64, copy=False),
+           "block": assign_blocks(pos, layout)}
+    if want_pos:
+        out["pos"] = pos
+    if "rank" in f.roles:
+        out["rank"] = np.asarray(f.role("rank"))
+    return out
+
+
+class _Side:
+    """Which keys one snapshot holds, filled piece by piece, counting repeated keys."""
+
+    def __init__(self, span: int, stamp: np.ndarray):
+        self.present = np.zeros(span, dtype=bool)
+        self.stamp = stamp    # scratch shared by both sides: last row of a piece to write a key
+        self.dup = 0
+
+    def mark(self, k: np.ndarray) -> np.ndarray:
+        # a key already present came in an earlier piece; a key written twice within
+        # this piece keeps only its last row in the stamp, so the earlier row reads back wrong
+        self.dup += int(np.count_nonzero(self.present[k]))
+        self.present[k] = True
+        if k.size > 1:
+            rows = np.arange(k.size, dtype=self.stamp.dtype)
+            self.stamp[k] = rows
+            self.dup += int(np.count_nonzero(self.stamp[k] != rows))
+        return k
+
+
+def migrate_dask(frame_a: Frame, frame_b: Frame, layout: BlockLayout, *, steps=None,
+                 layout_b: BlockLayout | None = None, positions: bool = True,
+                 engine: DaskEngine | None = None):
+    """``diagnostics.migration.migrate`` of two frames, reading them piece by piece.
+
+    Dense integer ids (a permutation of a range, plus created ones) are
+    scattered into arrays indexed by id, so memory is a few bytes per id
+    rather than both snapshots whole; other keys (composite, sparse, float)
+    fall back to the in-memory match. ``layout`` assigns the blocks of the
+    first snapshot and measures displacements; ``layout_b`` (default the
+    same) assigns the second snapshot's blocks.
+    """
+    from ..diagnostics import migration as mig
+    engine = engine or client_for()
+    layout_b = layout_b or layout
+    key_a, key_b = frame_a.key_columns(), frame_b.key_columns()
+    if not key_a or not key_b:
+        raise OptionError("migration needs particle ids: no id column found "
+                          "(give --role id=NAME or --id COLS)")
+    dense = len(key_a) == 1 and len(key_b) == 1
+    span = lo = None
+    if dense:
+        ranges = (engine.map(_key_piece, frame_pieces(frame_a, list(key_a)), key_a[0]) +
+                  engine.map(_key_piece, frame_pieces(frame_b, list(key_b)), key_b[0]))
+        if any(r is None for r in ranges):
+            dense = False
+        else:
+            got = [r for r in ranges if r[0] is not None]
+            lo = min((r[0] for r in got), default=0)
+            hi = max((r[1] for r in got), default=-1)
+            span = hi - lo + 1
+            # the in-memory matcher's own rule for when an id-indexed array pays off
+            dense = span <= 2 * (len(frame_a) + len(frame_b)) + 4096
+    if not dense:
+        return _migrate_in_memory(frame_a, frame_b, layout, layout_b, steps, positions, mig)
+
+    span = max(int(span), 1)
+    cols_a = list(frame_a.position_names) + list(key_a) + \
+        ([frame_a.column_for("rank")] if frame_a.column_for("rank") else [])
+    cols_b = list(frame_b.position_names) + list(key_b) + \
+        ([frame_b.column_for("rank")] if frame_b.column_for("rank") else [])
+    stamp = np.zeros(span, dtype=np.int32 if max(len(frame_a), len(frame_b)) < 2**31 else np.int64)
+    a = _Side(span, stamp)
+    blk_a = np.full(span, -1, dtype=np.int64)
+    pos_a = None
+    rank_a = None
+    for r in engine.imap_unordered(_migration_piece, frame_pieces(frame_a, cols_a),
+                                   frame_template(frame_a), layout,
+                                   key_a[0], positions):
+        k = a.mark(r["key"] - lo)
+        blk_a[k] = r["block"]
+        if positions:
+            if pos_a is None:
+                pos_a = [np.full(span, np.nan, dtype=np.result_type(p.dtype, np.float32))
+                         for p in r["pos"]]
+            for dst, p in zip(pos_a, r["pos"]):
+                dst[k] = p
+        if "rank" in r:
+            if rank_a is None:
+                rank_a = np.full(span, -1, dtype=np.int64)
+            rank_a[k] = r["rank"]
+    if a.dup:
+        raise mig.DuplicateKeyError(a.dup, "first")
+
+    b = _Side(span, stamp)
+    matched_a = np.zeros(span, dtype=bool)
+    nsteps = int(steps) if steps is not None and np.isfinite(steps) and steps >= 1 else 1
+    acc = {"matched": 0, "migrated": 0, "created": 0, "over": 0, "nonfinite": 0, "max": None,
+           "send": np.zeros(1, np.int64), "recv": np.zeros(1, np.int64), "top": -1,
+           "diag": {}, "moves": []}
+    for r in engine.imap_unordered(_migration_piece, frame_pieces(frame_b, cols_b),
+                                   frame_template(frame_b), layout_b,
+                                   key_b[0], positions):
+        k = b.mark(r["key"] - lo)
+        hit = a.present[k]
+        km = k[hit]
+        matched_a[km] = True
+        fb = blk_a[km]
+        tb = r["block"][hit]
+        acc["matched"] += int(km.size)
+        acc["created"] += int(k.size - km.size)
+        stay = fb == tb
+        acc["migrated"] += int(km.size - np.count_nonzero(stay))
+        if stay.any():
+            u, c = np.unique(fb[stay], return_counts=True)
+            for blk, cnt in zip(u.tolist(), c.tolist()):
+                acc["diag"][blk] = acc["diag"].get(blk, 0) + cnt
+        if not stay.all():
+            acc["moves"].append(mig.transfer_matrix(fb[~stay], tb[~stay]))
+        if positions and pos_a is not None:
+            disp = mig.displacement_cells([p[km] for p in pos_a], [np.asarray(p)[hit] for p in r["pos"]],
+                                          layout)
+            fin = np.isfinite(disp)
+            acc["nonfinite"] += int(disp.size - np.count_nonzero(fin))
+            if fin.any():
+                m = float(np.max(disp, where=fin, initial=0.0))
+                acc["max"] = m if acc["max"] is None else max(acc["max"], m)
+            acc["over"] += int(np.count_nonzero(disp[fin] / nsteps > 1.0))
+        ra = rank_a[km] if rank_a is not None else mig._owner(layout, fb)
+        rb = np.asarray(r["rank"])[hit] if "rank" in r else mig._owner(layout_b, tb)
+        _traffic_add(acc, ra.astype(np.int64, copy=False), rb.astype(np.int64, copy=False))
+    if b.dup:
+        raise mig.DuplicateKeyError(b.dup, "second")
+    lost = int(np.count_nonzero(a.present & ~matched_a))
+    return _migration_result(acc, lost, nsteps, positions and pos_a is not None, mig)
+
+
+def _traffic_add(acc, ra, rb):
+    top = int(max(ra.max(initial=-1), rb.max(initial=-1)))
+    if top > acc["top"]:
+        acc["top"] = top
+        for key in ("send", "recv"):
+            grown = np.zeros(top + 2, np.int64)
+            grown[:acc[key].shape[0]] = acc[key]
+            acc[key] = grown
+    moved = ra != rb
+    acc["send"] += np.bincount(ra[moved] + 1, minlength=acc["top"] + 2)
+    acc["recv"] += np.bincount(rb[moved] + 1, minlength=acc["top"] + 2)
+
+
+def _migration_result(acc, lost, nsteps, with_pos, mig):
+    diag = pd.DataFrame({"from_block": np.array(list(acc["diag"]), dtype=np.int64),
+                         "to_block": np.array(list(acc["diag"]), dtype=np.int64),
+                         "count": np.array(list(acc["diag"].values()), dtype=np.int64)})
+    parts = [diag] + acc["moves"]
+    transfer = pd.concat(parts, ignore_index=True)
+    transfer = (transfer.groupby(["from_block", "to_block"], sort=True)["count"].sum()
+                .reset_index().astype(np.int64))
+    top = acc["top"]
+    ranks = np.arange(-1, top + 1, dtype=np.int64)
+    send, recv = acc["send"][:top + 2], acc["recv"][:top + 2]
+    keep = (ranks >= 0) | (send > 0) | (recv > 0)
+    traffic = pd.DataFrame({"rank": ranks[keep], "send": send[keep].astype(np.int64),
+                            "receive": recv[keep].astype(np.int64)})
+    notes = []
+    max_disp = np.nan
+    if with_pos:
+        if acc["nonfinite"]:
+            notes.append(f"{acc['nonfinite']} matched particle(s) have a non-finite position; "
+                         "their displacement is left out")
+        if acc["max"] is not None:
+            max_disp = acc["max"]
+    return mig.MigrationResult(matched=acc["matched"], migrated=acc["migrated"],
+                               created=acc["created"], lost=lost, max_displacement_cells=max_disp,
+                               over_one_cell=acc["over"] if with_pos else 0, steps=nsteps,
+                               transfer=transfer, traffic=traffic,
+                               nonfinite_displacement=acc["nonfinite"], notes=notes)
+
+
+def _migrate_in_memory(frame_a, frame_b, layout, layout_b, steps, positions, mig):
+    keys_a = tuple(frame_a[c] for c in frame_a.key_columns())
+    keys_b = tuple(frame_b[c] for c in frame_b.key_columns())
+    pa, pb = frame_a.positions(), frame_b.positions()
+    res = mig.migrate(keys_a if len(keys_a) > 1 else keys_a[0], keys_b if len(keys_b) > 1 else keys_b[0],
+                      assign_blocks(pa, layout), assign_blocks(pb, layout_b),
+                      pa if positions else None, pb if positions else None, layout, steps=steps,
+                      rank_a=frame_a.role("rank"), rank_b=frame_b.role("rank"), layout_b=layout_b)
+    res.notes.append("ids are not a dense integer range: matched in memory")
+    return res

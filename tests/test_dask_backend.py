@@ -1,0 +1,291 @@
+"""The partitioned engine gives the in-memory answers, piece by piece.
+
+Each reducer is checked two ways: against the in-memory diagnostic on the
+whole frame (the same answer, row for row), and against an outside reference
+(numpy.histogram2d, pandas value_counts / merge / crosstab, numpy sums).
+Frames are split over per-rank parts and into row ranges, with a piece size
+small enough that every test runs on several partitions.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from swarmaudit.core import dask_backend as dk
+from swarmaudit.core import partitions
+from swarmaudit.core.context import AuditContext
+from swarmaudit.core.errors import OptionError
+from swarmaudit.core.frame import Frame, concat_frames
+from swarmaudit.core.layout import BlockLayout, assign_blocks, regular_layout
+
+
+def _frame(arrays, species="e", attrs=None, rows=True):
+    n = len(next(iter(arrays.values())))
+    loaders = {}
+    for c, a in arrays.items():
+        load = (lambda a=a: a.copy())
+        if rows:
+            partitions.sliceable(load, lambda s, e, a=a: a[s:e].copy(), a.dtype)
+        loaders[c] = load
+    return Frame(species, n, loaders, attrs=attrs or {})
+
+
+def _split(arrays, cuts, attrs=None, rows=True, ranks=None):
+    """The arrays as per-rank parts cut at ``cuts`` (joined like per-rank files are)."""
+    edges = [0, *cuts, len(next(iter(arrays.values())))]
+    parts = [_frame({c: a[lo:hi] for c, a in arrays.items()}, attrs=attrs, rows=rows)
+             for lo, hi in zip(edges[:-1], edges[1:])]
+    return concat_frames(parts, species="e", rank_values=ranks)
+
+
+@pytest.fixture(autouse=True)
+def small_pieces(monkeypatch):
+    # a few kB per piece: every frame below is cut into many partitions
+    monkeypatch.setattr(partitions, "TARGET_PIECE_BYTES", 4096)
+
+
+@pytest.fixture(scope="module")
+def engine():
+    return dk.client_for()
+
+
+def _particles(n=5000, seed=3, float32=False):
+    rng = np.random.default_rng(seed)
+    x = rng.uniform(0, 1, n)
+    y = rng.normal(0.5, 0.2, n)      # some fall outside [0, 1): block -1
+    if float32:
+        x, y = x.astype(np.float32), y.astype(np.float32)
+    return {"x": x, "y": y, "vx": rng.normal(0, 1, n), "vy": rng.normal(0, 2, n),
+            "weight": rng.uniform(0.5, 2.0, n), "id": rng.permutation(n).astype(np.int64)}
+
+
+def _refined():
+    # two level-0 blocks and one refined block on level 1 inside the first (not a regular grid)
+    lower = [[0.0, 0.0], [0.5, 0.0], [0.125, 0.25]]
+    upper = [[0.5, 1.0], [1.0, 1.0], [0.375, 0.5]]
+    return BlockLayout(lower, upper, [0, 0, 1], [0, 1, 1], [0, 0], [1, 1], [8, 8], (True, False),
+                       block_id=[10, 11, 20])
+
+
+def test_pieces_cover_every_row_in_order():
+    data = _particles(1000)
+    frame = _split(data, [300, 300, 650], ranks=[4, 5, 6, 7])
+    pieces = partitions.frame_pieces(frame, ["x", "y"])
+    assert len(pieces) > 4                      # parts were cut into row ranges
+    got = np.concatenate([partitions.read_column(p, "x") for p in pieces])
+    np.testing.assert_array_equal(got, data["x"])
+    ranks = np.concatenate([partitions.read_column(p, "rank") for p in pieces])
+    np.testing.assert_array_equal(ranks, np.repeat([4, 5, 6, 7], [300, 0, 350, 350]))
+    assert [p.offset for p in pieces] == sorted(p.offset for p in pieces)
+
+
+def test_whole_read_parts_are_not_cut():
+    # a loader that can only read everything would be read once per piece if cut
+    frame = _split(_particles(1000), [500], rows=False)
+    pieces = partitions.frame_pieces(frame, ["x", "y"])
+    assert len(pieces) == 2 and all(p.whole for p in pieces)
+
+
+def test_frame_to_dask_keeps_rows_and_dtypes():
+    data = _particles(2000, float32=True)
+    frame = _split(data, [700, 1500])
+    ddf = dk.frame_to_dask(frame, ["x", "y", "id"])
+    assert ddf.npartitions > 3
+    assert ddf.dtypes["x"] == np.float32            # float32 is not widened
+    got = ddf.compute(scheduler="sync")
+    pd.testing.assert_frame_equal(got, pd.DataFrame({c: data[c] for c in ("x", "y", "id")}))
+
+
+@pytest.mark.parametrize("reduction", ["count", "sum", "mean"])
+def test_aggregate_matches_histogram2d_and_in_memory(reduction, engine):
+    from swarmaudit.app.render import aggregate_points
+    data = _particles(6000)
+    data["x"][:7] = np.nan                    # counted as non-finite, not drawn
+    frame = _split(data, [2000, 4100])
+    kw = dict(width=40, height=30, reduction=reduction, value=None if reduction == "count" else "weight")
+    agg = dk.aggregate_dask(frame, "x", "y", engine=engine, **kw)
+    ref = aggregate_points(_frame(data), "x", "y", **kw)
+    np.testing.assert_allclose(np.nan_to_num(agg.values), np.nan_to_num(ref.values), rtol=1e-12)
+    assert agg.attrs["nonfinite"] == 7 == ref.attrs["nonfinite"]
+    assert agg.attrs["x_range"] == ref.attrs["x_range"]
+    if reduction == "count":
+        # numpy.histogram2d over the same closed range (top edge in the last bin)
+        ok = np.isfinite(data["x"])
+        h, _, _ = np.histogram2d(data["y"][ok], data["x"][ok], bins=(30, 40),
+                                 range=[agg.attrs["y_range"], agg.attrs["x_range"]])
+        np.testing.assert_array_equal(agg.values, h)
+
+
+def test_aggregate_slab_keeps_only_its_rows(engine):
+    data = _particles(3000)
+    frame = _split(data, [1000])
+    agg = dk.aggregate_dask(frame, "x", "y", width=10, height=10, x_range=(0, 1), y_range=(0, 1),
+                            slab=("vx", -0.5, 0.5), engine=engine)
+    keep = (data["vx"] >= -0.5) & (data["vx"] < 0.5)
+    h, _, _ = np.histogram2d(data["y"][keep], data["x"][keep], bins=10, range=[(0, 1), (0, 1)])
+    np.testing.assert_array_equal(agg.values, h)
+
+
+@pytest.mark.parametrize("layout_kind", ["regular", "refined"])
+@pytest.mark.parametrize("weights", ["column", "attribute", "none"])
+def test_census_equals_in_memory_census(layout_kind, weights, engine):
+    from swarmaudit.diagnostics.census import block_census, level_census, rank_census
+    data = _particles(5000)
+    attrs = {}
+    if weights == "attribute":
+        attrs["weight"] = 2.5
+    if weights != "column":
+        data.pop("weight")
+    layout = (regular_layout([0, 1, 0, 1], [8, 8], [4, 2], ranks=3) if layout_kind == "regular"
+              else _refined())
+    frame = _split(data, [1200, 3300], attrs=attrs)
+    got = dk.census_dask(frame, layout, engine=engine)
+    whole = _frame(data, attrs=attrs)
+    ids = assign_blocks(whole.positions(), layout)
+    w = whole.per_particle("weight", None)
+    for name, ref in (("block", block_census(ids, layout, w)), ("rank", rank_census(ids, layout, w)),
+                      ("level", level_census(ids, layout, w))):
+        pd.testing.assert_frame_equal(got[name], ref, check_exact=False, rtol=1e-12)
+    # outside reference: pandas counting the block ids directly
+    vc = pd.Series(ids).value_counts()
+    blk = got["block"].set_index("block")["count"]
+    assert blk[blk > 0].sort_index().to_dict() == vc.sort_index().to_dict()
+
+
+def test_census_with_a_rank_column_counts_where_particles_live(engine):
+    from swarmaudit.diagnostics.census import rank_census
+    data = _particles(4000)
+    layout = regular_layout([0, 1, 0, 1], [4, 4], [2, 2], ranks=2)
+    frame = _split(data, [1000, 2500], ranks=[0, 1, 5])   # rank 5 owns no block
+    got = dk.census_dask(frame, layout, engine=engine)["rank"]
+    ids = assign_blocks([data["x"], data["y"]], layout)
+    prank = np.repeat([0, 1, 5], [1000, 1500, 1500])
+    ref = rank_census(ids, layout, data["weight"], particle_rank=prank)
+    pd.testing.assert_frame_equal(got, ref, check_exact=False, rtol=1e-12)
+    assert got.set_index("rank").loc[5, "count"] == 1500   # by construction of the parts
+
+
+def test_totals_equal_snapshot_totals(engine):
+    from swarmaudit.diagnostics.drift import snapshot_totals
+    data = _particles(5000)
+    data["vx"][[5, 900]] = np.inf
+    attrs = {"mass": 2.0, "charge": -1.0}
+    frame = _split(data, [1700, 2900], attrs=attrs)
+    got_v, got_bad = dk.totals_dask(frame, snapshot_totals, with_nonfinite=True, engine=engine)
+    ref_v, ref_bad = snapshot_totals(_frame(data, attrs=attrs), with_nonfinite=True)
+    assert got_bad == ref_bad and got_bad["momentum_x"] == 2
+    assert got_v.keys() == ref_v.keys()
+    for k in ref_v:
+        assert got_v[k] == pytest.approx(ref_v[k], rel=1e-12, abs=1e-12)
+    # outside reference: numpy sums of the weighted terms
+    ok = np.isfinite(data["vx"])
+    assert got_v["momentum_x"] == pytest.approx(np.sum((data["weight"] * 2.0 * data["vx"])[ok]),
+                                                rel=1e-12)
+    assert got_v["charge"] == pytest.approx(-np.sum(data["weight"]), rel=1e-12)
+
+
+def _pair(n=4000, seed=5):
+    rng = np.random.default_rng(seed)
+    a = _particles(n, seed)
+    b = {k: v.copy() for k, v in a.items()}
+    order = rng.permutation(n)
+    b = {k: v[order] for k, v in b.items()}
+    b["x"] = (b["x"] + rng.normal(0, 0.05, n)) % 1.0     # periodic in x
+    b["y"] = b["y"] + rng.normal(0, 0.02, n)
+    keep = rng.random(n) > 0.05                            # some lost ...
+    b = {k: v[keep] for k, v in b.items()}
+    new = 300                                              # ... some created, past the old ids
+    extra = _particles(new, seed + 1)
+    extra["id"] = np.arange(n, n + new, dtype=np.int64)
+    b = {k: np.concatenate([b[k], extra[k]]) for k in b}
+    return a, b
+
+
+def test_migration_equals_in_memory_migrate(engine):
+    from swarmaudit.diagnostics.migration import migrate
+    a, b = _pair()
+    layout = regular_layout([0, 1, 0, 1], [16, 16], [4, 4], periodic=("x",), ranks=4)
+    fa, fb = _split(a, [1000, 3000]), _split(b, [500, 2000, 3500])
+    got = dk.migrate_dask(fa, fb, layout, steps=2, engine=engine)
+    ref = migrate(a["id"], b["id"], assign_blocks([a["x"], a["y"]], layout),
+                  assign_blocks([b["x"], b["y"]], layout), [a["x"], a["y"]], [b["x"], b["y"]],
+                  layout, steps=2)
+    assert got.summary() == pytest.approx(ref.summary())
+    pd.testing.assert_frame_equal(got.transfer, ref.transfer)
+    pd.testing.assert_frame_equal(got.traffic, ref.traffic)
+    # outside reference: pandas.merge on the id, crosstab of block pairs
+    ba = pd.DataFrame({"id": a["id"], "fb": assign_blocks([a["x"], a["y"]], layout)})
+    bb = pd.DataFrame({"id": b["id"], "tb": assign_blocks([b["x"], b["y"]], layout)})
+    m = ba.merge(bb, on="id", how="outer", indicator=True)
+    assert got.matched == int((m["_merge"] == "both").sum())
+    assert got.lost == int((m["_merge"] == "left_only").sum())
+    assert got.created == int((m["_merge"] == "right_only").sum()) == 300
+    both = m[m["_merge"] == "both"]
+    ct = pd.crosstab(both["fb"], both["tb"]).stack()
+    ct = ct[ct > 0]
+    assert dict(zip(zip(got.transfer["from_block"], got.transfer["to_block"]), got.transfer["count"])) \
+        == {k: int(v) for k, v in ct.items()}
+
+
+def test_migration_with_rank_columns_and_float32(engine):
+    from swarmaudit.diagnostics.migration import migrate
+    a, b = _pair(3000, seed=9)
+    for d in (a, b):
+        d["x"], d["y"] = d["x"].astype(np.float32), d["y"].astype(np.float32)
+        d["rank"] = (d["x"] * 3).astype(np.int32)
+    layout = _refined()
+    got = dk.migrate_dask(_split(a, [1000]), _split(b, [1500]), layout, engine=engine)
+    ref = migrate(a["id"], b["id"], assign_blocks([a["x"], a["y"]], layout),
+                  assign_blocks([b["x"], b["y"]], layout), [a["x"], a["y"]], [b["x"], b["y"]],
+                  layout, rank_a=a["rank"], rank_b=b["rank"])
+    assert got.summary() == pytest.approx(ref.summary())
+    pd.testing.assert_frame_equal(got.traffic, ref.traffic)
+
+
+@pytest.mark.parametrize("side", ["first", "second"])
+def test_migration_refuses_repeated_ids(side, engine):
+    from swarmaudit.diagnostics.migration import DuplicateKeyError
+    a, b = _pair(2000)
+    d = a if side == "first" else b
+    d["id"][1500] = d["id"][10]          # across pieces
+    d["id"][11] = d["id"][12]            # within one piece
+    with pytest.raises(DuplicateKeyError) as err:
+        dk.migrate_dask(_split(a, [1000]), _split(b, [1000]), regular_layout([0, 1, 0, 1], [4, 4], [2, 2]),
+                        engine=engine)
+    assert err.value.side == side and err.value.count == 2
+
+
+def test_sparse_ids_fall_back_to_the_in_memory_match(engine):
+    from swarmaudit.diagnostics.migration import migrate
+    a, b = _pair(1000)
+    a["id"] = a["id"] * 10**9
+    b["id"] = b["id"] * 10**9
+    layout = regular_layout([0, 1, 0, 1], [4, 4], [2, 2])
+    got = dk.migrate_dask(_split(a, [400]), _split(b, [400]), layout, engine=engine)
+    ref = migrate(a["id"], b["id"], assign_blocks([a["x"], a["y"]], layout),
+                  assign_blocks([b["x"], b["y"]], layout), [a["x"], a["y"]], [b["x"], b["y"]], layout)
+    assert got.summary() == pytest.approx(ref.summary())
+
+
+def test_engine_choice(monkeypatch):
+    import psutil
+    frame = _frame(_particles(1000))
+    ctx = AuditContext(run=None, engine="auto")
+    assert not dk.use_dask(ctx, frame, ["x", "y"])
+    assert dk.use_dask(AuditContext(run=None, engine="dask"), frame, ["x"])
+    assert not dk.use_dask(AuditContext(run=None, engine="memory", scheduler="tcp://h:1"), frame, ["x"])
+    assert dk.use_dask(AuditContext(run=None, scheduler="tcp://h:1"), frame, ["x"])
+
+    class Small:
+        available = 16_000 * 3       # bytes: two float64 columns of 1000 rows fit, times 3 do not
+    monkeypatch.setattr(psutil, "virtual_memory", lambda: Small)
+    assert dk.use_dask(ctx, frame, ["x", "y"])
+    assert not dk.use_dask(ctx, frame, ["x"])
+
+
+def test_unreachable_scheduler_is_an_option_error(monkeypatch):
+    monkeypatch.setenv("SWARMAUDIT_DASK_TIMEOUT", "1s")
+    with pytest.raises(OptionError, match="no dask scheduler"):
+        dk.client_for(address="tcp://127.0.0.1:9")

@@ -90,13 +90,13 @@ def write_blocks_group(h5file, layout: BlockLayout) -> None:
 def write_layout_csv(path: str, layout: BlockLayout) -> None:
     """The layout as a CSV sidecar with ``# domain``, ``# cells``, ``# periodic`` lines."""
     d = layout.ndim
-    dom = ",".join(f"{lo:.17g},{hi:.17g}" for lo, hi in zip(layout.domain_lower, layout.domain_upper))
+    dom = ",".join(f"{float(lo)!r},{float(hi)!r}" for lo, hi in zip(layout.domain_lower, layout.domain_upper))
     lines = [f"# domain = {dom}",
              "# cells = " + ",".join(str(int(c)) for c in layout.cells),
              "# periodic = " + ",".join(a for a, p in zip(layout.axes, layout.periodic) if p),
              ",".join(["block", "level", "rank"] + [f"{a}_{s}" for a in AXES[:d] for s in ("lo", "hi")])]
     for b in range(layout.nblocks):
-        bounds = [f"{v:.17g}" for a in range(d) for v in (layout.lower[b, a], layout.upper[b, a])]
+        bounds = [repr(float(v)) for a in range(d) for v in (layout.lower[b, a], layout.upper[b, a])]
         lines.append(",".join([str(int(layout.block_id[b])), str(int(layout.level[b])),
                                str(int(layout.rank[b]))] + bounds))
     with open(path, "w", encoding="utf-8") as fh:

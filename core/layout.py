@@ -211,7 +211,8 @@ def _assign_regular(cols, layout: BlockLayout) -> np.ndarray:
         f = (c - lo) * (nb[a] / (hi - lo))
         with np.errstate(invalid="ignore"):
             inside &= (c >= lo) & (c < hi)
-        i = np.floor(f, out=f).astype(np.int64) if f.dtype.kind == "f" else f.astype(np.int64)
+        with np.errstate(invalid="ignore"):   # NaN casts to garbage here; masked out below
+            i = np.floor(f, out=f).astype(np.int64) if f.dtype.kind == "f" else f.astype(np.int64)
         np.clip(i, 0, nb[a] - 1, out=i)
         flat += i * stride
         stride *= int(nb[a])

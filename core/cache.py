@@ -1,0 +1,340 @@
+"""Per-snapshot reductions (totals, census, ranges) kept between runs of the tool.
+
+Reopening a run of a hundred snapshots should not read a hundred snapshots
+again. A reduction is stored under a key made of
+
+* the snapshot's files: path, size and modification time of every part
+  (:meth:`core.run.SnapshotRef.signature`), so a rewritten file is recomputed;
+* what was computed and with which options (layout fingerprint, species,
+  relativistic, ...), as the caller names them;
+* the cache format and a fingerprint of the code that computes (the readers,
+  core and diagnostics sources), so a changed formula never serves old values.
+
+Where: ``$SWARMAUDIT_CACHE`` if set (``off`` disables it), else
+``$XDG_CACHE_HOME/swarmaudit`` or ``~/.cache/swarmaudit``: never beside the
+data, which may be read-only or shared. Each entry is one ``.npz`` file
+(arrays plus a JSON manifest; loaded with ``allow_pickle=False``), written to
+a temporary file and moved into place with ``os.replace``, so two processes
+filling the cache at once never leave a torn entry.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import importlib
+import io
+import json
+import os
+import tempfile
+import threading
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+FORMAT = 1
+ENV = "SWARMAUDIT_CACHE"
+_OFF = {"off", "0", "no", "none", "false", "disabled"}
+
+#: packages whose source decides what a cached value is (a change there invalidates it)
+_CODE_DIRS = ("core", "readers", "diagnostics")
+
+
+def default_root() -> Path | None:
+    """The cache folder, or None when the cache is switched off."""
+    env = os.environ.get(ENV)
+    if env is not None and env.strip():
+        if env.strip().lower() in _OFF:
+            return None
+        return Path(env).expanduser()
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "swarmaudit"
+
+
+_code_fp: str | None = None
+
+
+def code_fingerprint() -> str:
+    """A hash of the package sources that produce cached values."""
+    global _code_fp
+    if _code_fp is None:
+        top = Path(__file__).resolve().parent.parent
+        h = hashlib.sha256()
+        for d in _CODE_DIRS:
+            for p in sorted((top / d).glob("*.py")):
+                h.update(p.name.encode())
+                h.update(p.read_bytes())
+        _code_fp = h.hexdigest()[:16]
+    return _code_fp
+
+
+def layout_fingerprint(layout) -> str | None:
+    """A hash of everything about a block layout that changes a census (None: no layout)."""
+    if layout is None:
+        return None
+    h = hashlib.sha256()
+    for name in ("lower", "upper", "level", "rank", "block_id", "domain_lower", "domain_upper", "cells"):
+        a = np.ascontiguousarray(getattr(layout, name))
+        h.update(name.encode())
+        h.update(str(a.dtype).encode() + str(a.shape).encode())
+        h.update(a.tobytes())
+    h.update(repr((tuple(layout.periodic), getattr(layout, "ratio", 2),
+                   getattr(layout, "regular", None))).encode())
+    return h.hexdigest()[:24]
+
+
+def _plain(value):
+    """Options as canonical JSON material (layouts and arrays by fingerprint)."""
+    if value is None or isinstance(value, (bool, int, str)):
+        return value
+    if isinstance(value, float):
+        return repr(value)   # NaN and inf too, and no float formatting drift
+    if isinstance(value, np.generic):
+        return _plain(value.item())
+    if isinstance(value, np.ndarray):
+        return {"array": hashlib.sha256(np.ascontiguousarray(value).tobytes()).hexdigest()[:24],
+                "dtype": str(value.dtype), "shape": list(value.shape)}
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in sorted(value.items(), key=lambda kv: str(kv[0]))}
+    if isinstance(value, (list, tuple, set, frozenset)):
+        items = sorted(value, key=repr) if isinstance(value, (set, frozenset)) else value
+        return [_plain(v) for v in items]
+    if hasattr(value, "block_id") and hasattr(value, "lower"):
+        return {"layout": layout_fingerprint(value)}
+    if isinstance(value, os.PathLike):
+        return os.fspath(value)
+    raise TypeError(f"cannot use a {type(value).__name__} in a cache key")
+
+
+# values <-> (manifest, arrays) -------------------------------------------------------
+class _Encoder:
+    def __init__(self):
+        self.arrays: dict[str, np.ndarray] = {}
+
+    def array(self, a) -> dict:
+        a = np.asarray(a)
+        if a.dtype.kind not in "biufcUSMm":   # never objects: loading them needs pickle
+            raise TypeError(f"arrays of {a.dtype} are not cached")
+        name = f"a{len(self.arrays)}"
+        self.arrays[name] = a
+        return {"t": "a", "k": name}
+
+    def column(self, s: pd.Series) -> dict:
+        dt = s.dtype
+        if isinstance(dt, pd.CategoricalDtype):
+            raise TypeError("categorical columns are not cached")
+        if isinstance(dt, np.dtype) and dt.kind in "biufcmM":
+            return self.array(s.to_numpy())
+        if pd.api.types.is_string_dtype(dt) and not s.isna().any():
+            return {"t": "str", "k": self.array(s.to_numpy(dtype=str))["k"]}
+        raise TypeError(f"columns of {dt} are not cached")
+
+    def value(self, v):
+        if v is None or isinstance(v, (bool, int, str)):
+            return {"t": "s", "v": v}
+        if isinstance(v, float):
+            return {"t": "s", "v": v}
+        if isinstance(v, np.generic):
+            return {"t": "n", "dtype": str(v.dtype), "k": self.array(np.asarray(v))["k"]}
+        if isinstance(v, np.ndarray):
+            return self.array(v)
+        if isinstance(v, pd.DataFrame):
+            index = None
+            if not (isinstance(v.index, pd.RangeIndex) and v.index.start == 0 and v.index.step == 1):
+                index = self.column(v.index.to_series())
+            if not all(isinstance(c, str) for c in v.columns):
+                raise TypeError("only tables with text column names are cached")
+            return {"t": "f", "cols": [[c, self.column(v[c])] for c in v.columns], "index": index}
+        if isinstance(v, pd.Series):
+            return {"t": "S", "name": v.name if isinstance(v.name, (str, int)) else None,
+                    "values": self.column(v), "index": self.column(v.index.to_series())}
+        if isinstance(v, dict):
+            if not all(isinstance(k, str) for k in v):
+                raise TypeError("only dicts with text keys are cached")
+            return {"t": "d", "items": [[k, self.value(x)] for k, x in v.items()]}
+        if isinstance(v, (list, tuple)):
+            return {"t": "l" if isinstance(v, list) else "u", "items": [self.value(x) for x in v]}
+        if dataclasses.is_dataclass(v) and type(v).__module__.startswith(_package() + "."):
+            return {"t": "dc", "cls": f"{type(v).__module__}:{type(v).__qualname__}",
+                    "fields": [[f.name, self.value(getattr(v, f.name))] for f in dataclasses.fields(v)]}
+        raise TypeError(f"a {type(v).__name__} is not cached")
+
+
+def _package() -> str:
+    return __name__.split(".")[0]
+
+
+def _decode(m, arrays):
+    t = m["t"]
+    if t == "s":
+        return m["v"]
+    if t == "n":
+        return arrays[m["k"]].astype(m["dtype"])[()]
+    if t == "a":
+        return arrays[m["k"]]
+    if t == "str":
+        return pd.array(arrays[m["k"]].astype(object), dtype="str")
+    if t == "f":
+        df = pd.DataFrame({name: _decode(cm, arrays) for name, cm in m["cols"]}, copy=False)
+        if m.get("index") is not None:
+            df.index = pd.Index(_decode(m["index"], arrays))
+        return df
+    if t == "S":
+        return pd.Series(_decode(m["values"], arrays), index=pd.Index(_decode(m["index"], arrays)),
+                         name=m["name"])
+    if t == "d":
+        return {k: _decode(x, arrays) for k, x in m["items"]}
+    if t == "l":
+        return [_decode(x, arrays) for x in m["items"]]
+    if t == "u":
+        return tuple(_decode(x, arrays) for x in m["items"])
+    if t == "dc":
+        mod, qual = m["cls"].split(":")
+        if not mod.startswith(_package() + "."):
+            raise ValueError("a cached object names a class outside the package")
+        cls = importlib.import_module(mod)
+        for part in qual.split("."):
+            cls = getattr(cls, part)
+        return cls(**{k: _decode(x, arrays) for k, x in m["fields"]})
+    raise ValueError(f"unknown cache entry type {t!r}")
+
+
+# the cache -----------------------------------------------------------------------------
+class ReductionCache:
+    """Reductions by (snapshot files, what, options); ``hits``/``misses``/``writes`` count use."""
+
+    def __init__(self, root: str | os.PathLike | None = "default"):
+        self.root = default_root() if root == "default" else (Path(root) if root else None)
+        self.hits = 0
+        self.misses = 0
+        self.writes = 0
+        self.errors: list[str] = []
+        self._lock = threading.Lock()
+
+    @property
+    def enabled(self) -> bool:
+        return self.root is not None
+
+    def key_material(self, signature, what: str, params=None) -> dict:
+        return {"format": FORMAT, "code": code_fingerprint(), "what": str(what),
+                "files": [[str(p), int(s), int(t)] for p, s, t in signature],
+                "params": _plain(params or {})}
+
+    def path_for(self, material: dict) -> Path:
+        text = json.dumps(material, sort_keys=True, separators=(",", ":"))
+        digest = hashlib.sha256(text.encode()).hexdigest()
+        return self.root / f"v{FORMAT}" / digest[:2] / f"{digest}.npz"
+
+    def load(self, material: dict):
+        """The stored value, or a miss marker; a damaged entry counts as a miss."""
+        if not self.enabled:
+            return _MISS
+        path = self.path_for(material)
+        try:
+            with np.load(path, allow_pickle=False) as z:
+                manifest = json.loads(bytes(z["__manifest__"]).decode())
+                if manifest.get("key") != json.loads(json.dumps(material, sort_keys=True)):
+                    return _MISS   # a hash collision or a stale format: not ours
+                arrays = {k: z[k] for k in z.files if k != "__manifest__"}
+            return _decode(manifest["value"], arrays)
+        except FileNotFoundError:
+            return _MISS
+        except (OSError, ValueError, KeyError, TypeError, json.JSONDecodeError) as exc:
+            self.errors.append(f"{path}: {exc}")
+            return _MISS
+
+    def store(self, material: dict, value) -> bool:
+        """Write one entry atomically; False when the value cannot be cached or written."""
+        if not self.enabled:
+            return False
+        enc = _Encoder()
+        try:
+            manifest = {"key": material, "value": enc.value(value)}
+        except TypeError as exc:
+            self.errors.append(f"not cached: {exc}")
+            return False
+        path = self.path_for(material)
+        blob = np.frombuffer(json.dumps(manifest, sort_keys=True).encode(), dtype=np.uint8)
+        tmp = None
+        try:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            buf = io.BytesIO()
+            np.savez(buf, __manifest__=blob, **enc.arrays)
+            fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=".npz", dir=path.parent)
+            with os.fdopen(fd, "wb") as fh:
+                fh.write(buf.getbuffer())
+            os.replace(tmp, path)   # atomic: readers see the old entry or the new one
+            tmp = None
+        except OSError as exc:
+            self.errors.append(f"{path}: {exc}")
+            return False
+        finally:
+            if tmp is not None:
+                try:
+                    os.unlink(tmp)
+                except OSError:
+                    pass
+        with self._lock:
+            self.writes += 1
+        return True
+
+    def get_or_compute(self, signature, what: str, params, compute):
+        """The cached value for (files, what, params), else ``compute()`` stored for next time."""
+        if not self.enabled:
+            return compute()
+        material = self.key_material(signature, what, params)
+        got = self.load(material)
+        if got is not _MISS:
+            with self._lock:
+                self.hits += 1
+            return got
+        with self._lock:
+            self.misses += 1
+        value = compute()
+        self.store(material, value)
+        return value
+
+    def clear(self) -> int:
+        """Delete every entry of this cache format; returns how many."""
+        if not self.enabled:
+            return 0
+        n = 0
+        for p in (self.root / f"v{FORMAT}").glob("*/*.npz"):
+            try:
+                p.unlink()
+                n += 1
+            except OSError:
+                pass
+        return n
+
+
+class _Miss:
+    def __repr__(self):
+        return "<cache miss>"
+
+
+_MISS = _Miss()
+
+_shared: dict[str, ReductionCache] = {}
+
+
+def cache_for(ctx=None) -> ReductionCache:
+    """The cache a context uses: switched off by ``ctx.use_cache = False`` (``--no-cache``)."""
+    if ctx is not None and getattr(ctx, "use_cache", True) is False:
+        return ReductionCache(None)
+    root = default_root()
+    key = str(root)
+    if key not in _shared:
+        _shared[key] = ReductionCache(root)
+    return _shared[key]
+
+
+def cached_reduction(ctx, i: int, what: str, params, compute):
+    """``compute()`` for snapshot ``i`` of ``ctx.run``, through the cache.
+
+    ``params`` must name everything the value depends on besides the files
+    (species, layout, options); the code and the files are added here.
+    """
+    ref = ctx.run.refs[i]
+    return cache_for(ctx).get_or_compute(ref.signature(), what, params, compute)

@@ -9,8 +9,10 @@ Errors name the file, the column and the line.
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import os
+import sys
 
 import numpy as np
 
@@ -28,9 +30,10 @@ NL, CR, HASH = 10, 13, 35
 class _Layout:
     """Where the data of one CSV file starts and what its columns are called."""
 
-    def __init__(self, path, names, delimiter, offset, header_line, length):
+    def __init__(self, path, names, delimiter, offset, header_line, length, comments):
         self.path, self.names, self.delimiter = path, names, delimiter
         self.offset, self.header_line, self.length = offset, header_line, length
+        self.comments = comments      # '#' lines among the data lines
 
 
 def _number(text: str):
@@ -90,22 +93,18 @@ def _sniff(path: str):
     return names, delimiter, offset, lineno, scalars
 
 
-def _scan_lines(path: str, offset: int, row: int | None = None, comments_are_rows: bool = False) -> int:
-    """Data lines after ``offset`` (not blank, not ``#``), or how many lines precede data row ``row``.
+def _line_starts(path: str, offset: int):
+    """Per chunk: (first byte of each line starting in it, its offset in the chunk, newline offsets).
 
-    Vectorised per chunk: a line starts at ``offset`` or after a newline; its first byte says
-    whether it is blank or a comment. ``comments_are_rows`` counts ``#`` lines as rows, the way
-    pyarrow numbers rows.
+    Vectorised: a line starts at ``offset`` or after a newline.
     """
-    count = 0
-    newlines = 0
     at_start = True
     with open(path, "rb") as fh:
         fh.seek(offset)
         while True:
             buf = fh.read(CHUNK)
             if not buf:
-                break
+                return
             a = np.frombuffer(buf, np.uint8)
             nl = np.flatnonzero(a == NL)
             starts = nl + 1
@@ -113,36 +112,68 @@ def _scan_lines(path: str, offset: int, row: int | None = None, comments_are_row
                 starts = np.concatenate(([0], starts))
             at_start = a[-1] == NL
             starts = starts[starts < a.size]
-            first = a[starts]
-            keep = (first != NL) & (first != CR)
-            if not comments_are_rows:
-                keep &= first != HASH
-            data = starts[keep]
-            if row is not None and count + data.size > row:
-                return newlines + int(np.searchsorted(nl, data[row - count]))
-            count += data.size
-            newlines += nl.size
-    if row is not None:
-        raise IndexError(row)
-    return count
+            yield a[starts], starts, nl
 
 
-def read_table(lay: _Layout, include: list[str], column_types=None, use_threads: bool = True,
-               handler=None):
+def _count_lines(path: str, offset: int) -> tuple[int, int]:
+    """(data lines, comment lines) after ``offset``; blank lines are neither."""
+    data = comments = 0
+    for first, _, _ in _line_starts(path, offset):
+        hashes = np.count_nonzero(first == HASH)
+        comments += hashes
+        data += np.count_nonzero((first != NL) & (first != CR)) - hashes
+    return int(data), int(comments)
+
+
+def _lines_before(path: str, offset: int, row: int, comments_are_rows: bool = False) -> int:
+    """How many lines after ``offset`` precede data row ``row`` (``#`` lines count as rows if asked)."""
+    count = newlines = 0
+    for first, starts, nl in _line_starts(path, offset):
+        keep = (first != NL) & (first != CR)
+        if not comments_are_rows:
+            keep &= first != HASH
+        rows = starts[keep]
+        if count + rows.size > row:
+            return newlines + int(np.searchsorted(nl, rows[row - count]))
+        count += rows.size
+        newlines += nl.size
+    raise IndexError(row)
+
+
+def _skip_comments(row):
+    return "skip" if row.text.startswith("#") else "error"
+
+
+@contextlib.contextmanager
+def _quiet_handler():
+    """pyarrow decodes a bad row as UTF-8 before calling the handler; on bad bytes it treats the
+    row as an error (right) but prints the decode failure (noise): hide exactly that print."""
+    previous = sys.unraisablehook
+
+    def hook(info):
+        if not (info.object is _skip_comments and isinstance(info.exc_value, UnicodeDecodeError)):
+            previous(info)
+    sys.unraisablehook = hook
+    try:
+        yield
+    finally:
+        sys.unraisablehook = previous
+
+
+def read_table(lay: _Layout, include: list[str], column_types=None, use_threads: bool = True):
     """The one place a CSV is parsed: only ``include`` columns are converted."""
     import pyarrow as pa
     import pyarrow.csv as pacsv
 
-    def skip_comments(row):
-        return "skip" if row.text.startswith("#") else "error"
-
-    with pa.memory_map(lay.path, "r") as mm:
+    # pyarrow cannot skip comment lines by itself; the handler (a Python call per bad row)
+    # is installed only when the file has comment lines among its rows
+    handler = _skip_comments if lay.comments else None
+    with pa.memory_map(lay.path, "r") as mm, (_quiet_handler() if handler else contextlib.nullcontext()):
         mm.seek(lay.offset)
         return pacsv.read_csv(
             mm,
             read_options=pacsv.ReadOptions(column_names=lay.names, use_threads=use_threads),
-            parse_options=pacsv.ParseOptions(delimiter=lay.delimiter,
-                                             invalid_row_handler=handler or skip_comments),
+            parse_options=pacsv.ParseOptions(delimiter=lay.delimiter, invalid_row_handler=handler),
             convert_options=pacsv.ConvertOptions(include_columns=include, column_types=column_types,
                                                  strings_can_be_null=True))
 
@@ -163,29 +194,25 @@ def _first_failure(arr, convert) -> int:
 
 def _line(lay: _Layout, row: int, comments_are_rows: bool = False) -> str:
     try:
-        return f"line {lay.header_line + 1 + _scan_lines(lay.path, lay.offset, row, comments_are_rows)}"
+        return f"line {lay.header_line + 1 + _lines_before(lay.path, lay.offset, row, comments_are_rows)}"
     except IndexError:
         return f"data row {row + 1}"
 
 
 def _ragged(lay: _Layout, name: str, exc) -> InputError:
     """The error for a row with the wrong number of fields (found again, single-threaded, for its line)."""
-    import pyarrow as pa
-    found = []
+    import re
 
-    def record(row):
-        if row.text.startswith("#"):
-            return "skip"
-        found.append(row)
-        return "error"
+    import pyarrow as pa
     try:
-        read_table(lay, [name], use_threads=False, handler=record)
-    except pa.ArrowInvalid:
-        pass
-    if found and found[0].number is not None:
-        r = found[0]   # pyarrow numbers the non-blank lines after the header from 1
-        return InputError(lay.path, f"{_line(lay, r.number - 1, True)} has {r.actual_columns} fields, "
-                          f"the header has {r.expected_columns}",
+        read_table(lay, [name], use_threads=False)
+    except pa.ArrowInvalid as again:
+        exc = again
+    # "Row #N: Expected A columns, got B": pyarrow numbers the non-blank lines after the header from 1
+    m = re.search(r"Row #(\d+): Expected (\d+) columns, got (\d+)", str(exc))
+    if m:
+        row, want, got = (int(g) for g in m.groups())
+        return InputError(lay.path, f"{_line(lay, row - 1, True)} has {got} fields, the header has {want}",
                           "every row needs one value per column")
     return InputError(lay.path, f"cannot be parsed as CSV ({exc})")
 
@@ -284,10 +311,10 @@ class CSVReader:
         path = os.fspath(path)
         try:
             names, delimiter, offset, header_line, scalars = _sniff(path)
-            length = _scan_lines(path, offset)
+            length, comments = _count_lines(path, offset)
         except OSError as exc:
             raise InputError(path, f"cannot be read ({exc.strerror or exc})") from None
-        lay = _Layout(path, names, delimiter, offset, header_line, length)
+        lay = _Layout(path, names, delimiter, offset, header_line, length, comments)
         step, time, meta, time_unit = split_scalars(scalars, path)
         table = Table(path)
         for n in names:

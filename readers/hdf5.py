@@ -45,6 +45,11 @@ def _problem(exc: BaseException) -> str:
     return f"cannot be read as HDF5 ({text})"
 
 
+def _text(name) -> str:
+    """h5py gives names that are not UTF-8 as bytes; columns and messages need text."""
+    return name.decode("utf-8", "replace") if isinstance(name, bytes) else name
+
+
 def _units(obj) -> str | None:
     try:
         u = obj.attrs.get("units", obj.attrs.get("unit"))
@@ -74,14 +79,14 @@ class _Scan:
             stored = ds.id.get_storage_size()
             filtered = ds.id.get_create_plist().get_nfilters() > 0
         except H5_ERRORS as exc:
-            raise InputError(self.path, f"dataset '{ds.name}' cannot be inspected ({exc})") from None
+            raise InputError(self.path, f"dataset '{_text(ds.name)}' cannot be inspected ({exc})") from None
         if need and (stored == 0 or (not filtered and stored < need)):
-            raise InputError(self.path, f"dataset '{ds.name}' declares {ds.shape[0]} rows "
+            raise InputError(self.path, f"dataset '{_text(ds.name)}' declares {ds.shape[0]} rows "
                              f"({need} bytes) but the file stores {stored} bytes of it",
                              "the file is truncated or was not completely written")
 
     def add_dataset(self, table: Table, ds, name: str, unit: str | None) -> None:
-        where = f"dataset '{ds.name}'"
+        where = f"dataset '{_text(ds.name)}'"
         shape = ds.shape
         if shape is None or len(shape) == 0:
             return
@@ -104,7 +109,7 @@ class _Scan:
                 label = col if col not in table.loaders else f"{name}/{col}"
                 if reject_non_numeric(self.path, label, fdt, f"field '{col}' of {where}", self.warnings):
                     table.add(label, shape[0], _loader(self.path, ds.name, field=(fpath, comp)),
-                              ds.name, unit)
+                              _text(ds.name), unit)
             return
         if len(shape) > 2 or (len(shape) == 2 and not 1 <= shape[1] <= MAX_COMPONENTS):
             self.warnings.append(f"{where} has shape {shape}, not (N,) or (N, d); left out")
@@ -115,7 +120,7 @@ class _Scan:
         self._check_stored(ds)
         for k, col in enumerate(names):
             table.add(col, shape[0], _loader(self.path, ds.name, comp=None if len(shape) == 1 else k),
-                      ds.name, unit)
+                      _text(ds.name), unit)
 
     # groups -> tables ---------------------------------------------------------
     def _members(self, group):
@@ -124,15 +129,16 @@ class _Scan:
         try:
             names = list(group.keys())
         except H5_ERRORS as exc:
-            raise InputError(self.path, f"group '{group.name}' cannot be listed ({exc})") from None
+            raise InputError(self.path, f"group '{_text(group.name)}' cannot be listed ({exc})") from None
         for n in names:
             try:
                 obj = group[n]
             except H5_ERRORS as exc:
-                self.warnings.append(f"'{group.name.rstrip('/')}/{n}' cannot be opened ({exc}); left out")
+                self.warnings.append(f"'{_text(group.name).rstrip('/')}/{_text(n)}' cannot be opened "
+                                     f"({exc}); left out")
                 continue
             if isinstance(obj, (h5py.Dataset, h5py.Group)):
-                out.append((n, obj))
+                out.append((_text(n), obj))
         return out
 
     def _leading(self, group) -> set:
@@ -149,12 +155,12 @@ class _Scan:
     def walk(self, group, depth: int = 0) -> None:
         import h5py
         if depth > MAX_DEPTH:
-            self.warnings.append(f"group '{group.name}' is nested too deep; left out")
+            self.warnings.append(f"group '{_text(group.name)}' is nested too deep; left out")
             return
         members = self._members(group)
         is_root = group.name == "/"
-        label = group.name.strip("/") or "particles"
-        table = Table(group.name)
+        label = _text(group.name).strip("/") or "particles"
+        table = Table(_text(group.name))
         scalars = []
         for n, obj in members:
             if isinstance(obj, h5py.Dataset):
@@ -186,7 +192,7 @@ class _Scan:
             for k in _attr_names(group):
                 v = _attr(group, k)
                 if isinstance(v, (int, float)):
-                    table.attrs[k] = float(v)
+                    table.attrs[_text(k)] = float(v)
             for n, ds in scalars:
                 v = _read_scalar(ds)
                 if isinstance(v, (int, float)):
@@ -282,7 +288,7 @@ class HDF5Reader:
         try:
             with fh:
                 scan = _Scan(path)
-                items = [(k, _attr(fh, k)) for k in _attr_names(fh)]
+                items = [(_text(k), _attr(fh, k)) for k in _attr_names(fh)]
                 for n, obj in scan._members(fh):
                     if isinstance(obj, h5py.Dataset) and obj.shape is not None and len(obj.shape) == 0:
                         items.append((n, _read_scalar(obj)))

@@ -11,6 +11,7 @@
 from __future__ import annotations
 
 import os
+import tokenize
 import zipfile
 import zlib
 
@@ -30,6 +31,9 @@ PICKLE_HINT = ("swarmaudit never loads pickles (loading one can run any code); s
 ZIP_ERRORS = (zipfile.BadZipFile, zlib.error, EOFError, OSError, NotImplementedError, ValueError,
               KeyError, RuntimeError)
 DEFAULT_SPECIES = "particles"
+# what numpy's header parser raises on a damaged header (it tokenizes a Python literal)
+HEADER_ERRORS = (ValueError, SyntaxError, TypeError, OSError, EOFError, KeyError, OverflowError,
+                 MemoryError, RecursionError, tokenize.TokenError)
 
 
 def _read_header(fp, path, what: str):
@@ -49,7 +53,7 @@ def _read_header(fp, path, what: str):
         else:   # 3.0 is 2.0 with UTF-8 field names; numpy keeps its reader private
             from numpy.lib import _format_impl
             header = _format_impl._read_array_header(fp, version)
-    except (ValueError, SyntaxError, TypeError, OSError, EOFError, KeyError) as exc:
+    except HEADER_ERRORS as exc:
         raise InputError(path, f"{what} has a damaged .npy header ({exc})") from None
     shape, fortran, dtype = header
     if dtype.hasobject:

@@ -166,22 +166,23 @@ def snapshot_totals(frame, relativistic: bool = False, c=None, with_nonfinite: b
 
 
 def _scale_for(quantity: str, ref_row: dict, run_max: float) -> tuple[float, str | None]:
-    """The scale a change is judged against, and a note when it is not |reference|."""
+    """The scale a change is judged against, and why, when it is not |reference|."""
     ref = ref_row.get("value", np.nan)
     if quantity in MOMENTUM_QUANTITIES:
         s = ref_row.get("abs_momentum", np.nan)
         if s and np.isfinite(s) and s > 0:
             return float(s), None
-        return (run_max, "no momentum in the first snapshot: judged against the largest "
-                         "momentum total of the run")
+        return run_max, ("no momentum at the first snapshot: no relative drift; a change is "
+                         "judged against the largest momentum total of the run")
     if ref and np.isfinite(ref) and ref != 0:
         return abs(float(ref)), None
     if quantity == "charge":
         s = ref_row.get("abs_charge", np.nan)
         if s and np.isfinite(s) and s > 0:
-            return float(s), "net charge is zero at the first snapshot: change judged against Σ|w q|"
-    return (run_max, f"{quantity} is zero at the first snapshot: change judged against its "
-                     "largest value in the run")
+            return float(s), ("net charge is zero at the first snapshot: no relative drift; a "
+                              "change is judged against Σ|w q|")
+    return run_max, ("zero at the first snapshot: no relative drift; a change is judged against "
+                     "its largest value in the run")
 
 
 def drift_table(rows) -> pd.DataFrame:
@@ -211,7 +212,7 @@ def drift_table(rows) -> pd.DataFrame:
     scale = np.full(n, np.nan)
     ref_snap = np.zeros(n, dtype=np.int64)
     note = np.full(n, "", dtype=object)
-    for (_, quantity), idx in df.groupby(["species", "quantity"], sort=False).indices.items():
+    for (species, quantity), idx in df.groupby(["species", "quantity"], sort=False).indices.items():
         g = df.iloc[idx]
         first = g.iloc[0].to_dict()
         r = float(first["value"])
@@ -222,13 +223,13 @@ def drift_table(rows) -> pd.DataFrame:
         denom = first.get("abs_momentum", np.nan) if quantity in MOMENTUM_QUANTITIES else abs(r)
         if not (denom and np.isfinite(denom) and denom > 0):
             denom = np.nan
-            why = why or f"{quantity} is zero at the first snapshot: no relative drift"
+            why = why or "zero at the first snapshot: no relative drift"
         with np.errstate(invalid="ignore", divide="ignore"):
             rel[idx] = (vals - r) / denom
         ref[idx] = r
         scale[idx] = sc if (sc and np.isfinite(sc) and sc > 0) else np.nan
         ref_snap[idx] = int(first["snapshot"])
-        note[idx] = why or ""
+        note[idx] = f"{quantity} of species {species}: {why}" if why else ""
     df["reference"] = ref
     df["relative_drift"] = rel
     df["scale"] = scale

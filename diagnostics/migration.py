@@ -278,14 +278,29 @@ def displacement_cells(pos_a, pos_b, layout: BlockLayout) -> np.ndarray:
     h = layout.cell_size
     out = None
     for a in range(layout.ndim):
-        d = (np.asarray(pos_b[a], dtype=np.float64) - np.asarray(pos_a[a], dtype=np.float64)) / h[a]
+        d = np.subtract(pos_b[a], pos_a[a], dtype=np.float64)
+        d /= h[a]
         if layout.periodic[a]:
             n = float(layout.cells[a])
-            d -= n * np.round(d / n)
-        d = np.abs(d)
-        # fmax would hide a NaN on one axis behind the other axis; keep it visible
-        out = d if out is None else np.where(np.isnan(out) | np.isnan(d), np.nan, np.maximum(out, d))
+            image = d / n
+            np.rint(image, out=image)
+            image *= n
+            d -= image
+        np.abs(d, out=d)
+        # np.maximum (not fmax) so that NaN on any axis stays visible
+        out = d if out is None else np.maximum(out, d, out=out)
     return out if out is not None else np.zeros(0)
+
+
+def matched_displacement(pos_a, pos_b, ia, ib, layout: BlockLayout) -> np.ndarray:
+    """:func:`displacement_cells` of particles ``ia`` of a against ``ib`` of b, without gathering copies."""
+    if len(pos_a) != layout.ndim or len(pos_b) != layout.ndim:
+        raise ValueError(f"positions need {layout.ndim} axes for this layout")
+    if _kernels.available and ia.shape[0] >= _kernels.MIN_SIZE and layout.ndim <= 3:
+        return _kernels.displacement([np.asarray(p) for p in pos_a], [np.asarray(p) for p in pos_b],
+                                     ia, ib, layout.cell_size, layout.periodic,
+                                     layout.cells.astype(np.float64))
+    return displacement_cells([np.asarray(p)[ia] for p in pos_a], [np.asarray(p)[ib] for p in pos_b], layout)
 
 
 def _owner(layout: BlockLayout, blocks: np.ndarray) -> np.ndarray:
@@ -353,8 +368,7 @@ def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: Bl
     notes = []
     max_disp, over, nonfinite = np.nan, 0, 0
     if pos_a is not None and pos_b is not None and layout is not None:
-        disp = displacement_cells([np.asarray(p)[m.ia] for p in pos_a],
-                                  [np.asarray(p)[m.ib] for p in pos_b], layout)
+        disp = matched_displacement(pos_a, pos_b, m.ia, m.ib, layout)
         finite = np.isfinite(disp)
         nonfinite = int(disp.size - np.count_nonzero(finite))
         if nonfinite:

@@ -200,3 +200,22 @@ def test_migrate_counts_created_and_lost_and_uses_rank_columns():
     assert res.transfer.values.tolist() == [[1, 0, 1], [1, 1, 1]]
     t = res.traffic.set_index("rank")
     assert t.loc[1, "receive"] == 0 and t.loc[0, "send"] == 0   # rank column says 13 went 1 -> 1
+
+
+def test_compiled_displacement_identical(monkeypatch):
+    if not _kernels.available:
+        pytest.skip("numba not installed")
+    from swarmaudit.diagnostics.migration import matched_displacement
+    rng = np.random.default_rng(2)
+    n = _kernels.MIN_SIZE + 100
+    lay = regular_layout([0, 1, 0, 2, 0, 1], [10, 20, 5], [1, 1, 1], periodic=("x", "z"))
+    pa = [rng.random(n), rng.random(n) * 2, rng.random(n)]
+    pb = [rng.random(n).astype(np.float32), rng.random(n) * 2, rng.random(n)]
+    pa[0][5] = np.nan
+    pb[1][7] = np.nan
+    ia, ib = np.arange(n), rng.permutation(n)
+    fast = matched_displacement(pa, pb, ia, ib, lay)
+    monkeypatch.setattr(_kernels, "available", False)
+    slow = matched_displacement(pa, pb, ia, ib, lay)
+    np.testing.assert_array_equal(fast, slow)
+    assert np.isnan(fast).sum() == 2

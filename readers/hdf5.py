@@ -51,12 +51,12 @@ def _text(name) -> str:
 
 
 def _units(obj) -> str | None:
-    try:
-        u = obj.attrs.get("units", obj.attrs.get("unit"))
-    except H5_ERRORS:
-        return None
-    v = scalar_value(u) if u is not None else None
-    return v if isinstance(v, str) else None
+    # a failed attribute lookup costs HDF5 an error stack: look at the names first
+    for key in _attr_names(obj):
+        if key in ("units", "unit"):
+            v = _attr(obj, key)
+            return v if isinstance(v, str) else None
+    return None
 
 
 class _Scan:
@@ -67,6 +67,7 @@ class _Scan:
         self.tables: dict[str, Table] = {}
         self.warnings: list[str] = []
         self.layout = None
+        self._seen: dict = {}     # group name -> members (each group is listed once)
 
     # datasets -> columns ---------------------------------------------------
     def _check_stored(self, ds) -> None:
@@ -124,6 +125,12 @@ class _Scan:
 
     # groups -> tables ---------------------------------------------------------
     def _members(self, group):
+        key = group.name
+        if key not in self._seen:
+            self._seen[key] = self._list(group)
+        return self._seen[key]
+
+    def _list(self, group):
         import h5py
         out = []
         try:

@@ -27,6 +27,8 @@ from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names
 SIGNATURE = b"\x89HDF\r\n\x1a\n"
 #: names of groups whose members are the components of one vector (``position/x``)
 VECTOR_GROUPS = {k for k in _VECTOR_STEMS if k}
+#: compressed size over stored size beyond which a dataset is taken to be mostly unwritten
+MAX_RATIO = 10_000
 #: nesting deeper than this is not a particle file (and hard-link cycles must end)
 MAX_DEPTH = 8
 # what h5py and the HDF5 library raise on damaged or unusual files
@@ -81,7 +83,8 @@ class _Scan:
             filtered = ds.id.get_create_plist().get_nfilters() > 0
         except H5_ERRORS as exc:
             raise InputError(self.path, f"dataset '{_text(ds.name)}' cannot be inspected ({exc})") from None
-        if need and (stored == 0 or (not filtered and stored < need)):
+        # deflate cannot shrink data more than ~1000x; far beyond that, chunks were never written
+        if need and (stored == 0 or (not filtered and stored < need) or need > MAX_RATIO * stored):
             raise InputError(self.path, f"dataset '{_text(ds.name)}' declares {ds.shape[0]} rows "
                              f"({need} bytes) but the file stores {stored} bytes of it",
                              "the file is truncated or was not completely written")

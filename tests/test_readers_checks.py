@@ -63,3 +63,15 @@ def test_no_key_no_positions():
 def test_duplicate_count_edges():
     assert duplicate_count([np.array([], dtype=np.int64)]) == 0
     assert duplicate_count([np.array([5, 5, 5])]) == 2
+
+
+def test_suspicious_data_opens_and_is_counted(tmp_path):
+    # NaN positions and repeated ids are usable data: no error, no open-time warning; inspect counts
+    from swarmaudit.readers import registry
+    x = np.array([0.1, np.nan, 0.5, np.inf])
+    ids = np.array([1, 2, 2, 3])
+    np.savez(tmp_path / "s.npz", x=x, id=ids)
+    snap = registry.open_snapshot(str(tmp_path / "s.npz"))
+    assert snap.warnings == []
+    got = frame_health(snap.species["particles"])
+    assert (got["nonfinite_positions"], got["duplicate_keys"]) == (2, 1)   # counted by hand

@@ -250,3 +250,21 @@ def test_step_that_is_not_whole(tmp_path):
         f.attrs["step"] = 1.5
         f["x"] = np.zeros(3)
     _fails(p, "not a whole number")
+
+
+def test_hdf5_compressed_dataset_mostly_unwritten(tmp_path):
+    p = tmp_path / "sparse.h5"
+    with h5py.File(p, "w") as f:
+        ds = f.create_dataset("beam/x", shape=(10**9,), dtype="f8", chunks=(1000,), compression="gzip")
+        ds[:1000] = 1.0                     # one chunk of a million
+    _fails(p, "declares 1000000000 rows")
+
+
+def test_hdf5_compressed_dataset_reads(tmp_path):
+    # the ratio guard must not refuse honest compression (deflate tops out near 1000x)
+    p = tmp_path / "zeros.h5"
+    with h5py.File(p, "w") as f:
+        f.create_dataset("beam/x", data=np.zeros(10**6), chunks=(10**5,), compression="gzip",
+                         compression_opts=9, shuffle=True)
+    frame = registry.open_snapshot(str(p)).species["beam"]
+    assert not frame["x"].any()

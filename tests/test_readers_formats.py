@@ -214,3 +214,37 @@ def test_h5_dataset_with_shape_n_1_and_wide_vectors(tmp_path, ref):
     assert sorted(frame.columns) == ["attribs/0", "attribs/1", "attribs/2", "attribs/3", "attribs/4", "position/x"]
     np.testing.assert_array_equal(frame["attribs/3"], np.arange(64 * 5.0).reshape(64, 5)[:, 3])
     assert frame.ndim == 1
+
+
+class _PairsReader:
+    """A third-party reader as a lab would write one: 'x y' number pairs, one particle a line."""
+
+    name = "pairs"
+    suffixes = (".pairs",)
+
+    def can_open(self, path):
+        with open(path, "rb") as fh:
+            return fh.read(6) == b"PAIRS\n"
+
+    def open(self, path, columns=None):
+        from swarmaudit.core.frame import Frame, Snapshot
+        with open(path) as fh:
+            n = sum(1 for _ in fh) - 1
+
+        def column(k):
+            return lambda: np.loadtxt(path, skiprows=1, usecols=k, ndmin=1)
+        loaders = {"x": column(0), "y": column(1)}
+        if columns is not None:
+            loaders = {c: loaders[c] for c in columns}
+        return Snapshot(str(path), {"particles": Frame("particles", n, loaders, source=str(path))})
+
+
+def test_third_party_reader_plugin(tmp_path, monkeypatch):
+    from swarmaudit.readers.discover import open_run
+    monkeypatch.setattr(registry, "_READERS", list(registry.readers()))
+    registry.register(_PairsReader())
+    for k in (2, 1):
+        (tmp_path / f"p_{k}.pairs").write_text(f"PAIRS\n{k} 0.5\n{k + 1} 1.5\n")
+    run = open_run(str(tmp_path))
+    assert run.labels == ["p_1.pairs", "p_2.pairs"]
+    np.testing.assert_array_equal(run[1].species["particles"].role("x"), [2.0, 3.0])

@@ -21,7 +21,11 @@ from ..diagnostics import drift as _drift
 from ..diagnostics.halo import halo_counts
 from ..diagnostics.migration import DuplicateKeyError, MigrationResult, migrate
 from ..diagnostics.rebalance import rebalance_whatif
+from . import dask_backend as _dask
+from .cache import cached_reduction, layout_fingerprint
+from .cache import cached_reduction, layout_fingerprint
 from .context import AuditContext
+from .dask_backend import census_if_partitioned, migration_if_partitioned, totals_if_partitioned
 from .errors import OptionError
 from .layout import assign_blocks
 
@@ -130,7 +134,11 @@ def _cache(ctx: AuditContext) -> dict:
 
 
 def _reduce(ctx: AuditContext, i: int, kind: str):
-    """A per-snapshot reduction (``census`` or ``totals``), computed once per file version."""
+    """A per-snapshot reduction (``census`` or ``totals``), computed once per file version.
+
+    Kept for the life of the context and, through :func:`core.cache.cached_reduction`,
+    on disk keyed by the snapshot's files, the options and the code.
+    """
     layout = ctx.layout(i) if kind == "census" else None
     key = (kind, i, ctx.run.refs[i].signature(), tuple(ctx.species_names()),
            id(layout), bool(ctx.relativistic), ctx.c)
@@ -139,7 +147,8 @@ def _reduce(ctx: AuditContext, i: int, kind: str):
         stale = [k for k in cache if k[:2] == (kind, i)]   # an older version of the same file
         for k in stale:
             del cache[k]
-        cache[key] = _COMPUTE[kind](ctx, i, layout)
+        params = {"layout": layout_fingerprint(layout)} if layout is not None else {}
+        cache[key] = cached_reduction(ctx, i, kind, params, lambda: _COMPUTE[kind](ctx, i, layout))
     return cache[key]
 
 
@@ -148,6 +157,10 @@ def _compute_census(ctx: AuditContext, i: int, layout) -> dict:
     out = {}
     for s in _present_species(ctx, i):
         frame = snap.species[s]
+        got = census_if_partitioned(ctx, frame, layout)
+        if got is not None:
+            out[s] = tuple(got)
+            continue
         with _transient([frame]):
             bids = _block_ids(ctx, frame, layout, _where(ctx, i))
             w = frame.per_particle("weight", 1.0)
@@ -162,6 +175,10 @@ def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
     out = {}
     for s in _present_species(ctx, i):
         frame = snap.species[s]
+        got = totals_if_partitioned(ctx, frame)
+        if got is not None:
+            out[s] = tuple(got)
+            continue
         with _transient([frame]):
             out[s] = _drift.snapshot_totals(frame, ctx.relativistic, ctx.c, with_nonfinite=True)
     return out
@@ -171,9 +188,43 @@ _COMPUTE = {"census": _compute_census, "totals": _compute_totals}
 
 
 def _sum_block_tables(tables) -> pd.DataFrame:
-    df = pd.concat(tables, ignore_index=True)
-    g = df.groupby(["block", "level", "rank"], sort=False)[["count", "weight"]].sum().reset_index()
-    return pd.concat([g[g["block"] >= 0], g[g["block"] < 0]], ignore_index=True)
+    """The census of all species: per-species tables share the layout's block order."""
+    first = tables[0]
+    blocks = first["block"].to_numpy()
+    nb = int(np.count_nonzero(blocks >= 0))
+    same = all(len(t) >= nb and np.array_equal(t["block"].to_numpy()[:nb], blocks[:nb]) for t in tables)
+    if not same:   # not from one layout: fall back to matching rows by block
+        df = pd.concat(tables, ignore_index=True)
+        g = df.groupby(["block", "level", "rank"], sort=False)[["count", "weight"]].sum().reset_index()
+        return pd.concat([g[g["block"] >= 0], g[g["block"] < 0]], ignore_index=True)
+    count = np.sum([t["count"].to_numpy()[:nb] for t in tables], axis=0).astype(np.int64)
+    weight = np.sum([t["weight"].to_numpy(dtype=np.float64)[:nb] for t in tables], axis=0)
+    out_n = int(sum(t["count"].to_numpy()[nb:].sum() for t in tables))
+    out_w = float(sum(t["weight"].to_numpy(dtype=np.float64)[nb:].sum() for t in tables))
+    cols = {"block": blocks[:nb], "level": first["level"].to_numpy()[:nb],
+            "rank": first["rank"].to_numpy()[:nb], "count": count, "weight": weight}
+    if out_n:
+        cols = {k: np.append(v, x) for (k, v), x in zip(cols.items(), (-1, -1, -1, out_n, out_w))}
+    return pd.DataFrame(cols)
+
+
+def _stack(parts, columns) -> pd.DataFrame:
+    """One table from (stamp, species, table) parts, built once (pandas is slow on many small appends)."""
+    if not parts:
+        return _finish([], columns)
+    data = {}
+    sizes = [len(t) for _, _, t in parts]
+    for c in columns:
+        if c in ("snapshot", "step", "time"):
+            data[c] = np.repeat([stamp[c] for stamp, _, _ in parts], sizes)
+        elif c == "species":
+            data[c] = np.repeat(np.array([s for _, s, _ in parts], dtype=object), sizes)
+        else:
+            data[c] = np.concatenate([t[c].to_numpy() for _, _, t in parts])
+    steps = [stamp["step"] for stamp, _, _ in parts]
+    if any(x is None for x in steps):
+        data["step"] = np.repeat(np.array(steps, dtype=object), sizes)
+    return _finish([pd.DataFrame(data)], columns, frames=True)
 
 
 def _sum_rank_tables(tables) -> pd.DataFrame:
@@ -186,7 +237,7 @@ def _sum_rank_tables(tables) -> pd.DataFrame:
 # census ------------------------------------------------------------------------------
 def census_table(ctx: AuditContext, snapshots=None) -> pd.DataFrame:
     """Particles and weight per block, per snapshot, for each species and ``all``."""
-    frames = []
+    parts = []
     for i in _positions(ctx, snapshots):
         per = _reduce(ctx, i, "census")
         if not per:
@@ -194,9 +245,8 @@ def census_table(ctx: AuditContext, snapshots=None) -> pd.DataFrame:
         stamp = _stamp(ctx, i)
         tables = {s: bc for s, (bc, _) in per.items()}
         tables[ALL] = _sum_block_tables(list(tables.values()))
-        for s, bc in tables.items():
-            frames.append(bc.assign(species=s, **stamp))
-    return _finish(frames, CENSUS_COLUMNS, frames=True)
+        parts.extend((stamp, s, bc) for s, bc in tables.items())
+    return _stack(parts, CENSUS_COLUMNS)
 
 
 def rank_table(ctx: AuditContext, i: int) -> pd.DataFrame:
@@ -212,7 +262,7 @@ def rank_table(ctx: AuditContext, i: int) -> pd.DataFrame:
     stamp = _stamp(ctx, i)
     tables = {s: rc for s, (_, rc) in per.items()}
     tables[ALL] = _sum_rank_tables(list(tables.values()))
-    return _finish([t.assign(species=s, **stamp) for s, t in tables.items()], RANK_COLUMNS, frames=True)
+    return _stack([(stamp, s, t) for s, t in tables.items()], RANK_COLUMNS)
 
 
 def imbalance_table(ctx: AuditContext, snapshots=None) -> pd.DataFrame:
@@ -282,13 +332,23 @@ def _pairs(ctx: AuditContext, pairs) -> list[tuple[int, int]]:
 
 def _migration_pair(ctx: AuditContext, a: int, b: int) -> dict:
     """species -> MigrationResult for one pair (cached like the reductions)."""
-    key = ("migration", a, b, ctx.run.refs[a].signature(), ctx.run.refs[b].signature(),
-           tuple(ctx.species_names()), id(ctx.layout(a)), id(ctx.layout(b)))
-    cache = _cache(ctx)
-    if key in cache:
-        return cache[key]
-    sa, sb = ctx.run[a], ctx.run[b]
     la, lb = ctx.layout(a), ctx.layout(b)
+    sig_b = ctx.run.refs[b].signature()
+    key = ("migration", a, b, ctx.run.refs[a].signature(), sig_b,
+           tuple(ctx.species_names()), id(la), id(lb))
+    cache = _cache(ctx)
+    if key not in cache:
+        params = {"with": [list(t) for t in sig_b], "layout_a": layout_fingerprint(la),
+                  "layout_b": layout_fingerprint(lb), "periodic": [list(la.periodic), list(lb.periodic)]}
+        if any(size < 0 for _, size, _ in sig_b):
+            params = None   # the second snapshot has no file to key on
+        compute = lambda: _compute_migration(ctx, a, b, la, lb)   # noqa: E731
+        cache[key] = compute() if params is None else cached_reduction(ctx, a, f"migration-{b}", params, compute)
+    return cache[key]
+
+
+def _compute_migration(ctx: AuditContext, a: int, b: int, la, lb) -> dict:
+    sa, sb = ctx.run[a], ctx.run[b]
     steps = (sb.step - sa.step) if (sa.step is not None and sb.step is not None) else None
     results: dict[str, MigrationResult] = {}
     pair = f"snapshots {a} -> {b}"
@@ -301,9 +361,10 @@ def _migration_pair(ctx: AuditContext, a: int, b: int) -> dict:
             _note(ctx, f"species '{s}' is in only one of {pair}: counted as "
                        f"{'created' if fa is None else 'lost'}")
             n = len(fb) if fa is None else len(fa)
+            empty_t = pd.DataFrame({c: np.zeros(0, np.int64) for c in MIGRATION_COLUMNS[3:]})
+            empty_r = pd.DataFrame({c: np.zeros(0, np.int64) for c in ("rank", "send", "receive")})
             results[s] = MigrationResult(0, 0, n if fa is None else 0, n if fb is None else 0,
-                                         np.nan, 0, 1, pd.DataFrame(columns=MIGRATION_COLUMNS[3:]),
-                                         pd.DataFrame(columns=["rank", "send", "receive"]))
+                                         np.nan, 0, 1, empty_t, empty_r)
             continue
         ka_cols, kb_cols = fa.key_columns(), fb.key_columns()
         if not ka_cols or not kb_cols:
@@ -311,31 +372,34 @@ def _migration_pair(ctx: AuditContext, a: int, b: int) -> dict:
             _note(ctx, f"{_where(ctx, which)}: species '{s}' has no id column, so migration between "
                        f"{pair} is skipped for it (name one with --role id=NAME or --id COLS)")
             continue
-        with _transient([fa, fb]):
-            keys_a = tuple(fa[c] for c in ka_cols)
-            keys_b = tuple(fb[c] for c in kb_cols)
-            if len(keys_a) != len(keys_b):
-                _note(ctx, f"species '{s}': the id columns differ between {pair}; migration skipped")
-                continue
-            pos_a = fa.positions() if fa.ndim == la.ndim else None
-            pos_b = fb.positions() if fb.ndim == lb.ndim else None
-            try:
-                block_a = _block_ids(ctx, fa, la, _where(ctx, a))
-                block_b = _block_ids(ctx, fb, lb, _where(ctx, b))
-                res = migrate(keys_a if len(keys_a) > 1 else keys_a[0],
-                              keys_b if len(keys_b) > 1 else keys_b[0],
-                              block_a, block_b,
-                              pos_a if (pos_a is not None and pos_b is not None) else None,
-                              pos_b if (pos_a is not None and pos_b is not None) else None,
-                              la, steps, fa.role("rank"), fb.role("rank"), layout_b=lb)
-            except DuplicateKeyError as exc:
-                _note(ctx, f"species '{s}', {pair}: {exc}; migration skipped for it")
-                continue
+        if len(ka_cols) != len(kb_cols):
+            _note(ctx, f"species '{s}': the id columns differ between {pair}; migration skipped")
+            continue
+        try:
+            res = migration_if_partitioned(ctx, fa, fb, la, lb, steps)
+            if res is None:
+                res = _migrate_in_memory(ctx, fa, fb, a, b, la, lb, steps)
+        except DuplicateKeyError as exc:
+            _note(ctx, f"species '{s}', {pair}: {exc}; migration skipped for it")
+            continue
         for text in res.notes:
             _note(ctx, f"species '{s}', {pair}: {text}")
         results[s] = res
-    cache[key] = results
     return results
+
+
+def _migrate_in_memory(ctx, fa, fb, a, b, la, lb, steps) -> MigrationResult:
+    with _transient([fa, fb]):
+        keys_a = tuple(fa[c] for c in fa.key_columns())
+        keys_b = tuple(fb[c] for c in fb.key_columns())
+        both = fa.ndim == la.ndim and fb.ndim == lb.ndim
+        block_a = _block_ids(ctx, fa, la, _where(ctx, a))
+        block_b = _block_ids(ctx, fb, lb, _where(ctx, b))
+        return migrate(keys_a if len(keys_a) > 1 else keys_a[0],
+                       keys_b if len(keys_b) > 1 else keys_b[0],
+                       block_a, block_b,
+                       fa.positions() if both else None, fb.positions() if both else None,
+                       la, steps, fa.role("rank"), fb.role("rank"), layout_b=lb)
 
 
 def _combine(results: dict[str, MigrationResult]) -> dict:

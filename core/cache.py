@@ -281,8 +281,8 @@ class ReductionCache:
 
     def get_or_compute(self, signature, what: str, params, compute):
         """The cached value for (files, what, params), else ``compute()`` stored for next time."""
-        if not self.enabled:
-            return compute()
+        if not self.enabled or not signature or any(size < 0 for _, size, _ in signature):
+            return compute()   # no file behind it (in memory, or gone): nothing to key on
         material = self.key_material(signature, what, params)
         got = self.load(material)
         if got is not _MISS:
@@ -330,11 +330,35 @@ def cache_for(ctx=None) -> ReductionCache:
     return _shared[key]
 
 
+def context_params(ctx) -> dict:
+    """What every reduction of a context depends on besides its files: species, roles, physics."""
+    rm = getattr(ctx.run, "role_map", None)
+    return {"species": list(ctx.species_names()),
+            "roles": None if rm is None else {"overrides": dict(rm.overrides),
+                                             "key": list(rm.key) if rm.key else None},
+            "relativistic": bool(getattr(ctx, "relativistic", False)), "c": getattr(ctx, "c", None)}
+
+
 def cached_reduction(ctx, i: int, what: str, params, compute):
     """``compute()`` for snapshot ``i`` of ``ctx.run``, through the cache.
 
-    ``params`` must name everything the value depends on besides the files
-    (species, layout, options); the code and the files are added here.
+    ``params`` names what the value depends on beyond the context (a layout
+    fingerprint...); files, species, roles, physics options and code are
+    added here. Notes the computation added to ``ctx.notes`` are stored with
+    the value and given back on a hit, so a cached run says what a fresh one says.
     """
+    cache = cache_for(ctx)
+    if not cache.enabled:
+        return compute()
     ref = ctx.run.refs[i]
-    return cache_for(ctx).get_or_compute(ref.signature(), what, params, compute)
+    notes = ctx.notes
+    before = len(notes)
+
+    def run():
+        value = compute()
+        return {"value": value, "notes": [str(n) for n in notes[before:]]}
+    got = cache.get_or_compute(ref.signature(), what, {**context_params(ctx), **dict(params or {})}, run)
+    for n in got["notes"]:
+        if n not in notes:
+            notes.append(n)
+    return got["value"]

@@ -687,3 +687,45 @@ def _migrate_in_memory(frame_a, frame_b, layout, layout_b, steps, positions, mig
                       rank_a=frame_a.role("rank"), rank_b=frame_b.role("rank"), layout_b=layout_b)
     res.notes.append("ids are not a dense integer range: matched in memory")
     return res
+
+
+# the doors core/audit.py goes through -----------------------------------------------------
+def _roles_columns(frame: Frame, roles) -> list[str]:
+    return [frame.column_for(r) for r in roles if frame.column_for(r)]
+
+
+def census_if_partitioned(ctx, frame: Frame, layout: BlockLayout):
+    """(block table, rank table) through the partitioned engine, or None to stay in memory.
+
+    Weights and ranks as the in-memory census of :mod:`core.audit` takes
+    them: the weight role (else 1), the rank column where there is one.
+    """
+    if not (frame.ndim == layout.ndim > 0):
+        return None
+    cols = list(frame.position_names) + _roles_columns(frame, ("weight", "rank"))
+    if not use_dask(ctx, frame, cols):
+        return None
+    t = census_dask(frame, layout, weight_default=1.0, engine=client_for(ctx))
+    return t["block"], t["rank"]
+
+
+def totals_if_partitioned(ctx, frame: Frame):
+    """``snapshot_totals(frame, ..., with_nonfinite=True)`` piece by piece, or None to stay in memory."""
+    if not use_dask(ctx, frame, frame.columns):
+        return None
+    from ..diagnostics.drift import snapshot_totals
+    return totals_dask(frame, snapshot_totals, relativistic=bool(ctx.relativistic), c=ctx.c,
+                       with_nonfinite=True, engine=client_for(ctx))
+
+
+def migration_if_partitioned(ctx, frame_a: Frame, frame_b: Frame, layout_a: BlockLayout,
+                             layout_b: BlockLayout, steps):
+    """``migrate`` of two frames with positions, piece by piece, or None to stay in memory."""
+    if not (frame_a.ndim == layout_a.ndim > 0 and frame_b.ndim == layout_b.ndim > 0):
+        return None
+    need = [(f, list(f.position_names) + list(f.key_columns() or ()) + _roles_columns(f, ("rank",)))
+            for f in (frame_a, frame_b)]
+    if not any(use_dask(ctx, f, cols) for f, cols in need):
+        return None
+    return migrate_dask(frame_a, frame_b, layout_a, steps=steps, layout_b=layout_b,
+                        engine=client_for(ctx))

@@ -197,3 +197,41 @@ def frame_template(frame: Frame) -> Frame:
     return Frame(frame.species, frame.length, {c: _not_read for c in frame.columns},
                  units=frame.units, attrs=frame.attrs, source=frame.source,
                  role_map=frame.role_map, cache=False)
+
+
+#: bytes of records read at a time by :func:`read_record_field`
+RECORD_CHUNK_BYTES = 4 * 2**20
+
+
+def read_record_field(path, offset: int, dtype, take, start: int, stop: int) -> np.ndarray:
+    """Rows ``[start, stop)`` of one field of a file of fixed-size records, as a compact array.
+
+    ``take(records)`` picks the field out of a structured array. The file is
+    read through a small buffer with plain reads, not a memory map: pulling
+    one field out of interleaved records touches every page, and a map would
+    keep all of them (every other field too) in the process's resident memory.
+    """
+    from .errors import InputError
+    dtype = np.dtype(dtype)
+    rec = dtype.itemsize
+    n = max(0, int(stop) - int(start))
+    field_dtype = take(np.empty(0, dtype)).dtype
+    out = np.empty(n, dtype=field_dtype.newbyteorder("=") if not field_dtype.isnative else field_dtype)
+    if n == 0:
+        return out
+    chunk = max(1, RECORD_CHUNK_BYTES // max(rec, 1))
+    buf = np.empty(min(chunk, n), dtype=dtype)
+    raw = buf.view(np.uint8)
+    with open(path, "rb", buffering=0) as fh:
+        fh.seek(int(offset) + int(start) * rec)
+        for a in range(0, n, chunk):
+            m = min(chunk, n - a)
+            got = fh.readinto(memoryview(raw[: m * rec]))
+            while got < m * rec:   # short reads happen on pipes and network file systems
+                more = fh.readinto(memoryview(raw[got: m * rec]))
+                if not more:
+                    raise InputError(path, f"ends after {start + a + got // rec} of {stop} records",
+                                     "the file is truncated or still being written")
+                got += more
+            out[a:a + m] = take(buf[:m])
+    return out

@@ -103,6 +103,15 @@ def test_default_location_is_outside_the_data(monkeypatch, tmp_path):
     assert cache_mod.default_root() == cache_mod.Path(os.path.expanduser("~")) / ".cache" / "swarmaudit"
 
 
+def test_snapshots_without_files_are_never_cached(tmp_path):
+    # an in-memory run's refs name no file (size -1): two such runs must not share entries
+    c = ReductionCache(tmp_path)
+    sig = [("/nonexistent/snap_000", -1, -1)]
+    assert c.get_or_compute(sig, "t", {}, lambda: 1) == 1
+    assert c.get_or_compute(sig, "t", {}, lambda: 2) == 2
+    assert c.writes == 0
+
+
 def test_key_covers_options_layout_and_code(tmp_path, monkeypatch):
     c = ReductionCache(tmp_path)
     sig = [("/data/a.h5", 10, 20)]

@@ -41,6 +41,9 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
     e.add_argument("--engine", choices=("auto", "memory", "dask"), default="auto",
                    help="memory: numpy in this process; dask: partitioned frames (auto picks by size)")
     e.add_argument("--scheduler", metavar="ADDRESS", help="a running dask.distributed scheduler to use")
+    e.add_argument("--no-cache", action="store_true",
+                   help="compute every total and census afresh (default: reuse those kept in "
+                        "$SWARMAUDIT_CACHE or ~/.cache/swarmaudit for unchanged files)")
 
 
 def layout_from_options(args):
@@ -78,6 +81,7 @@ def context_from_options(args, follow: bool = True) -> AuditContext:
     run = open_run(args.run, role_map, follow=follow)
     species = [s.strip() for s in args.species.split(",")] if getattr(args, "species", None) else None
     ctx = AuditContext(run, fixed, species=species, engine=args.engine, scheduler=args.scheduler,
-                       relativistic=getattr(args, "relativistic", False), c=getattr(args, "c", None))
+                       relativistic=getattr(args, "relativistic", False), c=getattr(args, "c", None),
+                       use_cache=not getattr(args, "no_cache", False))
     ctx.notes.extend(run.skipped)
     return ctx

@@ -27,6 +27,7 @@ class AuditContext:
     species: list[str] | None = None        # None: every species
     engine: str = "auto"                    # auto | memory | dask
     scheduler: str | None = None
+    use_cache: bool = True                  # False (--no-cache): no persistent reduction cache
     relativistic: bool = False
     c: float | None = None                  # speed of light in the run's units (None: SI)
     notes: list[str] = field(default_factory=list)

@@ -17,6 +17,7 @@ import math
 import numpy as np
 
 import importlib.util
+import threading
 
 #: below this many particles the numpy path is fast enough and avoids a compile
 MIN_PARTICLES = 200_000
@@ -25,6 +26,7 @@ MIN_PARTICLES = 200_000
 # a large input needs it (it adds half a second to every command's start)
 available = importlib.util.find_spec("numba") is not None
 _kernels: dict = {}
+_lock = threading.Lock()   # the partitioned engine calls in from several threads at once
 
 
 def _axis(c, lo, hi, scale, last):
@@ -99,16 +101,23 @@ def _grid3(x, y, z, origin, h, shape, grid, block_id, out):
 
 def _compiled(kind: str, d: int):
     """The jitted kernel (compiled once per process, cached on disk by numba)."""
-    if not _kernels:
-        import numba
-        g = globals()
-        g["_axis"] = numba.njit(nogil=True, inline="always")(_axis)
-        g["_cell"] = numba.njit(nogil=True, inline="always")(_cell)
-        for name, fns in (("regular", (_regular1, _regular2, _regular3)),
-                          ("grid", (_grid1, _grid2, _grid3))):
-            for dim, fn in enumerate(fns, start=1):
-                _kernels[(name, dim)] = numba.njit(cache=True, nogil=True)(fn)
+    with _lock:
+        if not _kernels:
+            _build()
     return _kernels[(kind, d)]
+
+
+def _build() -> None:
+    import numba
+    g = globals()
+    g["_axis"] = numba.njit(nogil=True, inline="always")(_axis)
+    g["_cell"] = numba.njit(nogil=True, inline="always")(_cell)
+    built = {}
+    for name, fns in (("regular", (_regular1, _regular2, _regular3)),
+                      ("grid", (_grid1, _grid2, _grid3))):
+        for dim, fn in enumerate(fns, start=1):
+            built[(name, dim)] = numba.njit(cache=True, nogil=True)(fn)
+    _kernels.update(built)
 
 
 def _contiguous(cols):

@@ -8,6 +8,7 @@ Kernels compile on first use and numba caches them on disk.
 from __future__ import annotations
 
 import importlib.util
+import threading
 
 import numpy as np
 
@@ -16,19 +17,19 @@ MIN_SIZE = 200_000
 
 available = importlib.util.find_spec("numba") is not None
 _compiled: dict = {}
+_lock = threading.Lock()
 
 
 def _dense_match(ka, kb, span, pos_b, ia, ib, lost, created):
     # pos_b[key]: row of b (>= 0), -1 never seen, -2 matched by a, -3 seen only in a
     nb = kb.shape[0]
-    dup_b = 0
-    for j in range(nb):
-        k = kb[j]
-        if pos_b[k] >= 0:
-            dup_b += 1
-        pos_b[k] = j
-    if dup_b:
-        return -dup_b, 0, 0, 0
+    for j in range(nb):   # write-only scatter: no read stalls on the random access
+        pos_b[kb[j]] = j
+    filled = 0
+    for k in range(span):
+        filled += pos_b[k] >= 0
+    if filled != nb:
+        return -(nb - filled), 0, 0, 0
     m = 0
     nl = 0
     dup_a = 0
@@ -76,9 +77,10 @@ def _displacement(pa, pb, ia, ib, h, periodic, ncell, out):
 
 
 def _get(name):
-    if name not in _compiled:
-        import numba
-        _compiled[name] = numba.njit(cache=True, nogil=True)(globals()["_" + name])
+    with _lock:
+        if name not in _compiled:
+            import numba
+            _compiled[name] = numba.njit(cache=True, nogil=True)(globals()["_" + name])
     return _compiled[name]
 
 

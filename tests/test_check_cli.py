@@ -8,6 +8,12 @@ from swarmaudit.app.cli import main
 from _audit_runs import drifting_plasma, write_npz_run
 
 
+@pytest.fixture(autouse=True)
+def private_cache(tmp_path, monkeypatch):
+    # keep the reduction cache of these runs out of the user's home
+    monkeypatch.setenv("SWARMAUDIT_CACHE", str(tmp_path / "cache"))
+
+
 @pytest.fixture
 def charge_loss_run(tmp_path):
     # a constructed run: the electrons lose 1 % of their charge at snapshot 3 (step 30)
@@ -65,3 +71,14 @@ def test_energy_exchange_with_the_field_is_not_a_failure(tmp_path, capsys):
     assert main(["check", run, "--rtol", "1e-9", "--quantities", "total_energy"]) == 0
     assert main(["check", run, "--rtol", "1e-3", "--quantities", "kinetic_energy"]) == 1
     assert "kinetic_energy" in capsys.readouterr().out
+
+
+def test_second_check_is_served_from_the_cache_with_the_same_answer(charge_loss_run, capsys):
+    from swarmaudit.core.cache import cache_for
+    assert main(["check", charge_loss_run, "--rtol", "0.005"]) == 1
+    first = capsys.readouterr()
+    hits = cache_for().hits
+    assert main(["check", charge_loss_run, "--rtol", "0.005"]) == 1
+    second = capsys.readouterr()
+    assert cache_for().hits >= hits + 6          # one totals entry per snapshot
+    assert second.out == first.out and second.err == first.err

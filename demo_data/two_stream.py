@@ -86,7 +86,7 @@ def write_two_stream(folder: str, particles: int, snapshots: int, progress=print
                              x32, y32, vx32, vy32, setup.weight)
         state["done"] += 1
         if progress and (state["done"] % 10 == 0 or state["done"] == len(wanted)):
-            progress(f"  two_stream: {state['done']}/{len(wanted)} snapshots (t = {time:.1f} / ω_p)")
+            progress(f"  two_stream: {state['done']}/{len(wanted)} snapshots (t = {time:.1f}/omega_p)")
 
     history = pic2d.run_two_stream(setup, wanted, on_snapshot)
     return {

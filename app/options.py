@@ -84,4 +84,6 @@ def context_from_options(args, follow: bool = True) -> AuditContext:
                        relativistic=getattr(args, "relativistic", False), c=getattr(args, "c", None),
                        use_cache=not getattr(args, "no_cache", False))
     ctx.notes.extend(run.skipped)
+    from ..core.dask_backend import configure
+    configure(ctx.engine, ctx.scheduler)   # images follow the same engine as the tables
     return ctx

@@ -19,6 +19,7 @@ import xarray as xr
 import datashader as ds
 import holoviews as hv
 
+from ..core import dask_backend
 from ..core.errors import OptionError
 
 REDUCTIONS = ("count", "sum", "mean")
@@ -74,6 +75,8 @@ def data_range(frame, col: str) -> tuple[float, float]:
     Cached per frame and column, so moving between views costs one pass.
     """
     def compute():
+        if dask_backend.partitioned(frame, [col]):
+            return dask_backend.column_range(frame, col)
         arr = _column(frame, col)
         if arr.size == 0:
             return (0.0, 1.0)
@@ -146,6 +149,13 @@ def aggregate_points(frame, xcol: str, ycol: str, *, width: int = 800, height: i
     width, height = int(width), int(height)
     if width < 1 or height < 1:
         raise OptionError("an image needs at least one pixel each way")
+    needed = [xcol, ycol, value if reduction != "count" else None, slab[0] if slab else None]
+    if mask is None and dask_backend.partitioned(frame, needed):
+        # too big for memory (or --engine dask): datashader over a dask frame, piece by piece
+        agg = dask_backend.aggregate_dask(frame, xcol, ycol, width=width, height=height,
+                                          x_range=x_range, y_range=y_range, reduction=reduction,
+                                          value=value, slab=slab, engine=dask_backend.drawing_engine())
+        return _labelled(agg, frame, xcol, ycol, reduction, value)
     x = _column(frame, xcol)
     y = _column(frame, ycol)
     v = _column(frame, value) if (reduction != "count" and value) else None
@@ -189,14 +199,20 @@ def aggregate_points(frame, xcol: str, ycol: str, *, width: int = 800, height: i
     cv = ds.Canvas(plot_width=width, plot_height=height, x_range=x_range, y_range=y_range)
     agg = cv.points(df, "_x", "_y", agg=agg_fn)
     agg = agg.rename({"_x": xcol, "_y": ycol}) if xcol != ycol else agg
-    agg.name = reduction if reduction == "count" else f"{reduction}_{value}"
     agg.attrs.update({
         "nonfinite": nonfinite,
         "particles": int(x.size) - nonfinite,
-        "reduction": reduction,
-        "value": value or "",
         "x_range": tuple(x_range),
         "y_range": tuple(y_range),
+    })
+    return _labelled(agg, frame, xcol, ycol, reduction, value)
+
+
+def _labelled(agg: xr.DataArray, frame, xcol, ycol, reduction, value) -> xr.DataArray:
+    agg.name = reduction if reduction == "count" else f"{reduction}_{value}"
+    agg.attrs.update({
+        "reduction": reduction,
+        "value": value or "",
         "xlabel": axis_label(frame, xcol),
         "ylabel": axis_label(frame, ycol),
         "vlabel": ("particles" if reduction == "count"

@@ -729,3 +729,50 @@ def migration_if_partitioned(ctx, frame_a: Frame, frame_b: Frame, layout_a: Bloc
         return None
     return migrate_dask(frame_a, frame_b, layout_a, steps=steps, layout_b=layout_b,
                         engine=client_for(ctx))
+
+
+# the process-wide choice the drawing code follows --------------------------------------------
+@dataclass
+class _Policy:
+    engine: str = "auto"
+    scheduler: str | None = None
+
+
+_policy = _Policy()
+
+
+def configure(engine: str = "auto", scheduler: str | None = None) -> None:
+    """Set the engine the drawing code uses for frames it is handed (the CLI sets it once).
+
+    The tables of :mod:`core.audit` follow their context; images are drawn
+    from bare frames, so they follow this process-wide choice instead.
+    """
+    if engine not in ENGINES:
+        raise OptionError(f"--engine takes one of {', '.join(ENGINES)}, got '{engine}'")
+    _policy.engine, _policy.scheduler = engine, scheduler
+
+
+def partitioned(frame: Frame, columns) -> bool:
+    """Whether drawing ``columns`` of ``frame`` goes through the partitioned engine."""
+    if not isinstance(frame, Frame):
+        return False
+    return use_dask(_policy, frame, [c for c in columns if c])
+
+
+def column_range(frame: Frame, col: str) -> tuple[float, float]:
+    """Finite (min, max) of one column piece by piece; (0, 1) when it has no finite value."""
+    engine = client_for(address=_policy.scheduler)
+    res = engine.map(_range_piece, frame_pieces(frame, [col]), col)
+    got = [r for r in res if r is not None]
+    return (min(g[0] for g in got), max(g[1] for g in got)) if got else (0.0, 1.0)
+
+
+def _range_piece(piece: Piece, col: str):
+    a = read_column(piece, col)
+    if a.dtype.kind == "f":
+        a = a[np.isfinite(a)]
+    return (float(a.min()), float(a.max())) if a.size else None
+
+
+def drawing_engine() -> DaskEngine:
+    return client_for(address=_policy.scheduler)

@@ -289,3 +289,26 @@ def test_unreachable_scheduler_is_an_option_error(monkeypatch):
     monkeypatch.setenv("SWARMAUDIT_DASK_TIMEOUT", "1s")
     with pytest.raises(OptionError, match="no dask scheduler"):
         dk.client_for(address="tcp://127.0.0.1:9")
+
+
+def test_drawing_follows_the_configured_engine(engine):
+    from swarmaudit.app import render
+    data = _particles(4000)
+    whole = _frame(data)
+    ref = render.aggregate_points(whole, "x", "y", width=32, height=24, reduction="sum", value="weight")
+    frame = _split(data, [1500, 2500])
+    dk.configure("dask")
+    try:
+        assert dk.partitioned(frame, ["x", "y"])
+        agg = render.aggregate_points(frame, "x", "y", width=32, height=24, reduction="sum",
+                                      value="weight")
+        assert render.data_range(frame, "y") == render.data_range(whole, "y")
+    finally:
+        dk.configure("auto")
+    assert frame.reads == 0                    # drawn from pieces: the joined frame read nothing
+    np.testing.assert_allclose(np.nan_to_num(agg.values), np.nan_to_num(ref.values), rtol=1e-12)
+    assert {k: agg.attrs[k] for k in ref.attrs} == ref.attrs
+    assert agg.name == ref.name
+    assert not dk.partitioned(frame, ["x", "y"])
+    with pytest.raises(OptionError):
+        dk.configure("fast")

@@ -26,17 +26,25 @@ _BOKEH_SIZE = {"width": 620, "height": 460}
 _MPL_SIZE = {"fig_inches": (7.5, 5.5)}
 
 
+_BACKENDS_READY = False
+
+
 def ensure_backends() -> None:
     """Load both plotting backends without changing the one in force.
 
     Options can only be attached for a loaded backend; the first one loaded
     would otherwise become the current backend as a side effect.
     """
+    global _BACKENDS_READY
+    if _BACKENDS_READY:
+        return
     current = hv.Store.current_backend if hv.Store.renderers else None
     import holoviews.plotting.bokeh  # noqa: F401
     import holoviews.plotting.mpl  # noqa: F401
-    if current is not None and current in hv.Store.renderers:
+    # switching backends is slow (it rebuilds option trees): only when the import changed it
+    if current is not None and current in hv.Store.renderers and hv.Store.current_backend != current:
         hv.Store.set_current_backend(current)
+    _BACKENDS_READY = True
 
 
 def _style(obj, common=None, bokeh=None, mpl=None):
@@ -328,15 +336,42 @@ def displacement_histogram(displacements_cells, steps=None, title: str = "", *, 
 
 
 # drift -------------------------------------------------------------------------------------------
+def judged_drift(drift_df: pd.DataFrame) -> np.ndarray:
+    """The drift the gate judges: (value − reference) / scale, else relative_drift.
+
+    With the ``scale`` column of the detailed drift table this is what
+    ``check`` compares with rtol (a zero reference is judged against another
+    scale instead of giving NaN); a plain drift table gives relative_drift.
+    """
+    if all(c in drift_df for c in ("value", "reference", "scale")):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return ((drift_df["value"].to_numpy(dtype=float) - drift_df["reference"].to_numpy(dtype=float))
+                    / drift_df["scale"].to_numpy(dtype=float))
+    return drift_df["relative_drift"].to_numpy(dtype=float)
+
+
 def first_exits(drift_df: pd.DataFrame, rtol: float) -> pd.DataFrame:
-    """The first snapshot at which each (species, quantity) leaves ±rtol."""
+    """The first snapshot at which each (species, quantity) leaves ±rtol.
+
+    Judged like ``check`` (diagnostics.drift.violations) when the table has
+    its ``scale`` column; otherwise |relative_drift| > rtol. ``judged`` holds
+    the plotted drift of that row.
+    """
+    cols = ["species", "quantity", "snapshot", "relative_drift", "judged"]
     if drift_df is None or not len(drift_df) or rtol is None:
-        return pd.DataFrame(columns=["species", "quantity", "snapshot", "relative_drift"])
-    rel = drift_df["relative_drift"].astype(float).to_numpy()
-    with np.errstate(invalid="ignore"):
-        out = drift_df[np.abs(rel) > rtol]
-    return out.sort_values("snapshot").groupby(["species", "quantity"], as_index=False,
-                                                sort=False).first()
+        return pd.DataFrame(columns=cols)
+    df = drift_df.assign(judged=judged_drift(drift_df))
+    if all(c in df for c in ("value", "reference", "scale")):
+        from ..diagnostics.drift import violations
+        out = violations(df, float(rtol)).to_numpy()
+    else:
+        with np.errstate(invalid="ignore"):
+            out = ~(np.abs(df["judged"].to_numpy()) <= rtol)
+    hit = df[out]
+    if not len(hit):
+        return pd.DataFrame(columns=cols + [c for c in df.columns if c not in cols])
+    return hit.sort_values("snapshot", kind="stable").groupby(["species", "quantity"], as_index=False,
+                                                              sort=False).first()
 
 
 def _drift_range(values: np.ndarray, rtol):
@@ -360,6 +395,8 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
     curve per species, the first snapshot outside the band marked with a cross.
     """
     df = drift_df.copy() if drift_df is not None else pd.DataFrame()
+    if len(df):
+        df["judged"] = judged_drift(df)
     if x is None:
         x = "time" if len(df) and "time" in df and df["time"].notna().all() else "snapshot"
     xd = hv.Dimension(x, label=x)
@@ -383,7 +420,7 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
         for sp in species:
             g = sub[sub["species"].astype(str) == sp].sort_values("snapshot")
             xs = g[x].to_numpy(dtype=float)
-            ys = g["relative_drift"].to_numpy(dtype=float)
+            ys = g["judged"].to_numpy(dtype=float)
             ok = np.isfinite(xs) & np.isfinite(ys)
             if not ok.any():
                 continue
@@ -393,14 +430,15 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
                                 bokeh={"line_width": 2.2, "tools": ["hover"]}, mpl={"linewidth": 1.8}))
         ex = exits[exits["quantity"].astype(str) == q] if len(exits) else exits
         if len(ex):
-            pts = hv.Scatter((ex[x].to_numpy(dtype=float), ex["relative_drift"].to_numpy(dtype=float)),
+            ey = np.nan_to_num(ex["judged"].to_numpy(dtype=float), nan=0.0)
+            pts = hv.Scatter((ex[x].to_numpy(dtype=float), ey),
                              xd, yd, label="first outside")
             parts.append(_style(pts, common={"color": LINE_COLOUR},
                                 bokeh={"marker": "x", "size": 14, "line_width": 3},
                                 mpl={"marker": "X", "s": 110, "edgecolors": "white", "linewidth": 0.8}))
         if not parts:
             parts.append(hv.Curve([], xd, yd))
-        lo, hi = _drift_range(sub["relative_drift"].to_numpy(dtype=float), rtol)
+        lo, hi = _drift_range(sub["judged"].to_numpy(dtype=float), rtol)
         name = q.replace("_", " ")
         if not shown:
             name += " (no finite drift)"
@@ -411,7 +449,7 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
                                             "ylabel": "relative drift", "show_legend": k == 0,
                                             "legend_position": "top_left"},
                              bokeh={"width": 330, "height": 240, "legend_cols": 1},
-                             mpl={"aspect": "auto"}))
+                             mpl={"aspect": "auto", "yformatter": "%.1e"}))
     if not panels:
         panels = [_style(hv.Curve([], xd, yd), common={"title": "no totals"})]
     band_txt = f"band ±{rtol:g}" if rtol is not None else "no band given"

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import os
 
+import numpy as np
+
 
 def use_headless_matplotlib() -> None:
     """Select the Agg canvas so nothing needs a display (batch jobs, CI)."""
@@ -58,6 +60,98 @@ def _is_colorbar(ax) -> bool:
     return getattr(ax, "_colorbar", None) is not None or ax.get_label() == "<colorbar>"
 
 
+def _nice(v: float) -> float:
+    if v == 0 or not np.isfinite(v):
+        return v
+    mag = 10 ** np.floor(np.log10(abs(v)))
+    return float(np.round(v / mag, 1) * mag) if abs(v) >= 10 else float(np.round(v, 2))
+
+
+def _equalised_colorbar(fig, cax):
+    """Redraw an equalised colour bar so its labels sit where their colours are.
+
+    The bar is drawn evenly in the normalised (equalised) space, and each
+    label ``v`` is put at ``norm(v)``: the very mapping the image's pixels
+    were coloured with, so a label always names the colour beside it.
+    Returns the new colour-bar axes (or the old one when nothing is to be done).
+    """
+    cbar = getattr(cax, "_colorbar", None)
+    norm = getattr(cbar, "norm", None)
+    if norm is None or type(norm).__name__ != "EqHistNormalize":
+        return cax
+    from matplotlib.cm import ScalarMappable
+    from matplotlib.colors import Normalize
+    try:
+        probe = np.asarray(norm.inverse(np.linspace(0.0, 1.0, 7)), dtype=float).ravel()
+    except Exception:
+        return cax
+    lo, hi = float(norm.vmin), float(norm.vmax)
+    probe = np.clip(probe[np.isfinite(probe)], lo, hi)
+    whole = hi >= 10 or float(lo).is_integer() and float(hi).is_integer()
+    values = np.unique(np.concatenate([[lo, hi], np.round(probe) if whole else
+                                       [_nice(v) for v in probe]]))
+    values = values[(values >= lo) & (values <= hi)]
+    where = np.asarray(norm(values), dtype=float).ravel()
+    ok = np.isfinite(where)
+    values, where = values[ok], np.clip(where[ok], 0.0, 1.0)
+    ticks = cax.yaxis.get_ticklabels()
+    tick_size = ticks[0].get_fontsize() if ticks else None
+    label = cax.get_ylabel()
+    label_size = cax.yaxis.label.get_fontsize()
+    pos = cax.get_position()
+    cmap = cbar.cmap
+    fig.delaxes(cax)
+    new = fig.add_axes(pos)
+    bar = fig.colorbar(ScalarMappable(norm=Normalize(0.0, 1.0), cmap=cmap), cax=new)
+    bar.set_ticks(list(where))
+    bar.set_ticklabels([f"{v:g}" if not whole else f"{int(v):,}" for v in values])
+    bar.set_label(label, fontsize=label_size)
+    if tick_size:
+        new.tick_params(labelsize=tick_size)
+    return new
+
+
+def _thin_ticks(cax, renderer) -> None:
+    """Drop colour-bar ticks whose labels would overlap (an equalised scale bunches them)."""
+    axis = cax.yaxis if cax.get_position().height >= cax.get_position().width else cax.xaxis
+    cax.get_tightbbox(renderer)   # formats the tick labels
+    ticks = axis.get_major_ticks()
+    locs = list(axis.get_majorticklocs())
+    if len(ticks) < 2 or len(ticks) != len(locs):
+        return
+    vertical = axis is cax.yaxis
+    kept, last = [], None
+    spans = []
+    vlo, vhi = sorted(axis.get_view_interval())
+    for loc, tick in zip(locs, ticks):
+        if not vlo <= loc <= vhi:
+            continue
+        label = tick.label2 if (tick.label2.get_visible() and tick.label2.get_text()) else tick.label1
+        if not label.get_text():
+            continue
+        bb = label.get_window_extent(renderer)
+        if not np.all(np.isfinite([bb.x0, bb.x1, bb.y0, bb.y1])):
+            continue
+        spans.append((bb.y0, bb.y1, loc) if vertical else (bb.x0, bb.x1, loc))
+    if len(spans) < 2:
+        return
+    spans.sort()
+    pad = 2.0
+    for lo, hi, loc in spans:
+        if last is None or lo >= last + pad:
+            kept.append(loc)
+            last = hi
+    if len(kept) < len(spans):
+        axis.set_ticks(sorted(kept))
+
+
+def _content_box(fig, artists, renderer):
+    boxes = [b for b in (a.get_tightbbox(renderer) for a in artists) if b is not None]
+    fw, fh = fig.bbox.width, fig.bbox.height
+    return (min(b.x0 for b in boxes) / fw, min(b.y0 for b in boxes) / fh,
+            max(b.x1 for b in boxes) / fw, max(b.y1 for b in boxes) / fh)
+
+
 def _fit(fig) -> None:
     axes = [a for a in fig.axes if a.get_visible()]
     bars = [a for a in axes if _is_colorbar(a)]
@@ -68,23 +162,16 @@ def _fit(fig) -> None:
         _fit_grid(fig, main, bars)
         return
     ax = main[0]
-    # remember each colour bar's gap and width relative to the drawn axes box
-    fig.canvas.draw()
-    box = ax.get_position(original=False)
-    links = []
+    renderer = fig.canvas.get_renderer()
+    bars = [_equalised_colorbar(fig, cb) for cb in bars]
     for cb in bars:
-        p = cb.get_position()
-        links.append((cb, p.x0 - box.x1, p.width))
-    for _ in range(3):
-        fig.canvas.draw()
-        r = fig.canvas.get_renderer()
-        boxes = [a.get_tightbbox(r) for a in [ax, *bars]]
-        boxes = [b for b in boxes if b is not None]
-        fw, fh = fig.bbox.width, fig.bbox.height
-        x0 = min(b.x0 for b in boxes) / fw
-        x1 = max(b.x1 for b in boxes) / fw
-        y0 = min(b.y0 for b in boxes) / fh
-        y1 = max(b.y1 for b in boxes) / fh
+        _thin_ticks(cb, renderer)
+    # layout without full draws: apply the aspect by hand, measure, move (twice converges)
+    ax.apply_aspect()
+    box = ax.get_position(original=False)
+    links = [(cb, cb.get_position().x0 - box.x1, cb.get_position().width) for cb in bars]
+    for _ in range(2):
+        x0, y0, x1, y1 = _content_box(fig, [ax, *bars], renderer)
         pos = ax.get_position(original=True)
         left = pos.x0 + (_MARGIN - x0)
         right = pos.x1 + ((1 - _MARGIN) - x1)
@@ -93,31 +180,19 @@ def _fit(fig) -> None:
         if right - left < 0.2 or top - bottom < 0.2:
             break
         ax.set_position([left, bottom, right - left, top - bottom])
-        fig.canvas.draw()
+        ax.apply_aspect()
         drawn = ax.get_position(original=False)
-        # a box kept to a fixed aspect leaves free space on one side: centre it
         for cb, gap, w in links:
             cb.set_position([drawn.x1 + gap, drawn.y0, w, drawn.height])
-        if abs(x0 - _MARGIN) < 2e-3 and abs(x1 - 1 + _MARGIN) < 2e-3 and \
-                abs(y0 - _MARGIN) < 2e-3 and abs(y1 - 1 + _MARGIN) < 2e-3:
-            break
-    _centre(fig, ax, [cb for cb, _, _ in links])
-
-
-def _centre(fig, ax, bars) -> None:
-    """Shift a fixed-aspect plot (and its colour bars) to the middle of the free width."""
-    fig.canvas.draw()
-    r = fig.canvas.get_renderer()
-    boxes = [b for b in (a.get_tightbbox(r) for a in [ax, *bars]) if b is not None]
-    fw = fig.bbox.width
-    x0 = min(b.x0 for b in boxes) / fw
-    x1 = max(b.x1 for b in boxes) / fw
+    # a box held to a fixed aspect leaves free width: centre the plot in it
+    x0, _, x1, _ = _content_box(fig, [ax, *bars], renderer)
     shift = 0.5 * ((_MARGIN - x0) + ((1 - _MARGIN) - x1))
-    if abs(shift) < 1e-3:
-        return
-    for a in [ax, *bars]:
-        p = a.get_position(original=False) if a is not ax else a.get_position(original=True)
-        a.set_position([p.x0 + shift, p.y0, p.width, p.height])
+    if abs(shift) > 1e-3:
+        p = ax.get_position(original=True)
+        ax.set_position([p.x0 + shift, p.y0, p.width, p.height])
+        for cb in bars:
+            q = cb.get_position()
+            cb.set_position([q.x0 + shift, q.y0, q.width, q.height])
 
 
 def _fit_grid(fig, main, bars) -> None:
@@ -126,8 +201,14 @@ def _fit_grid(fig, main, bars) -> None:
     title = getattr(fig, "_suptitle", None)
     top = 1.0
     if title is not None and title.get_text():
-        fig.canvas.draw()
-        h = title.get_window_extent(fig.canvas.get_renderer()).height / fig.bbox.height
+        import textwrap
+        renderer = fig.canvas.get_renderer()
+        width = title.get_window_extent(renderer).width
+        room = fig.bbox.width * (1 - 2 * _MARGIN)
+        if width > room:
+            text = title.get_text()
+            title.set_text(textwrap.fill(text, max(int(len(text) * room / width), 20)))
+        h = title.get_window_extent(renderer).height / fig.bbox.height
         title.set_y(1 - _MARGIN)
         title.set_va("top")
         top = 1 - _MARGIN - h - 0.01
@@ -145,4 +226,4 @@ def _fit_grid(fig, main, bars) -> None:
         ax.set_subplotspec(new[r.start:r.stop, c.start:c.stop])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        fig.tight_layout(rect=(_MARGIN, _MARGIN, 1 - _MARGIN, top), h_pad=1.2, w_pad=1.0)
+        fig.tight_layout(rect=(_MARGIN, _MARGIN, 1 - _MARGIN, top), pad=0.4, h_pad=1.2, w_pad=1.0)

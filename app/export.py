@@ -1,0 +1,698 @@
+"""``swarmaudit export RUN --out DIR``: figures, tables and report.html, with no display.
+
+The views go through ``render.aggregate_points`` and ``render.density_image``
+and the audit figures through ``app.figures``: the same code the dashboard
+draws with. Every PNG is drawn by the holoviews matplotlib backend on the
+Agg canvas at exactly ``--width`` x ``--height`` pixels.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+import sys
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..core.errors import InputError, OptionError
+from .png import use_headless_matplotlib
+
+TABLE_NAMES = ("census.csv", "migration.csv", "migration_summary.csv", "drift.csv")
+REPORT_NAME = "report.html"
+FIGURE_DIR = "figures"
+
+#: share of the picture the density image itself covers (the rest is axes, title, colour bar)
+_IMAGE_SHARE = (0.78, 0.80)
+#: particles per pixel below which a view's grid is made coarser
+_PER_PIXEL = 2.0
+
+
+# options -------------------------------------------------------------------------------------
+@dataclass
+class ExportOptions:
+    out: str
+    snapshots: str = "first,last"
+    rtol: float | None = None
+    width: int = 900
+    height: int = 700
+    dpi: int = 100
+    cmap: str = "viridis"
+    scale: str = "eq_hist"
+    space: tuple[str, str] | None = None
+    phase: tuple[str, str] | None = None
+    ranges: dict[str, tuple[float, float]] = field(default_factory=dict)
+    quiet: bool = False
+    fontscale: float = 1.15
+
+    @classmethod
+    def from_args(cls, args) -> "ExportOptions":
+        width, height, dpi = int(args.width), int(args.height), int(args.dpi)
+        for name, v, lo, hi in (("--width", width, 120, 20000), ("--height", height, 120, 20000),
+                                ("--dpi", dpi, 20, 1200)):
+            if not lo <= v <= hi:
+                raise OptionError(f"{name} takes a whole number from {lo} to {hi}, got {v}")
+        cmap = str(args.cmap)
+        check_cmap(cmap)
+        scale = getattr(args, "scale", "eq_hist") or "eq_hist"
+        if scale not in ("linear", "log", "eq_hist"):
+            raise OptionError(f"--scale takes linear, log or eq_hist, got '{scale}'")
+        return cls(out=args.out, snapshots=args.snapshots or "first,last", rtol=args.rtol,
+                   width=width, height=height, dpi=dpi, cmap=cmap, scale=scale,
+                   space=parse_pair(args.space, "--space"), phase=parse_pair(args.phase, "--phase"),
+                   ranges=parse_ranges(getattr(args, "range", None) or []),
+                   quiet=bool(getattr(args, "quiet", False)))
+
+
+def check_cmap(name: str) -> None:
+    from holoviews.plotting.util import process_cmap
+    try:
+        process_cmap(name, ncolors=8)
+    except Exception:
+        raise OptionError(f"--cmap: no colour map named '{name}' (try viridis, magma, "
+                          "cividis, fire, kbc)") from None
+
+
+def parse_pair(text, option: str):
+    if text is None:
+        return None
+    parts = [p.strip() for p in str(text).split(",")]
+    if len(parts) != 2 or not all(parts):
+        raise OptionError(f"{option} takes two column names as A,B, got '{text}'")
+    if parts[0] == parts[1]:
+        raise OptionError(f"{option} needs two different columns, got '{text}'")
+    return (parts[0], parts[1])
+
+
+def parse_ranges(items) -> dict[str, tuple[float, float]]:
+    out: dict[str, tuple[float, float]] = {}
+    for text in items:
+        col, sep, rest = str(text).partition("=")
+        col = col.strip()
+        vals = [v.strip() for v in rest.split(",")]
+        if not sep or not col or len(vals) != 2:
+            raise OptionError(f"--range takes COL=LO,HI, got '{text}'")
+        try:
+            lo, hi = float(vals[0]), float(vals[1])
+        except ValueError:
+            raise OptionError(f"--range takes COL=LO,HI with numbers, got '{text}'") from None
+        if not (math.isfinite(lo) and math.isfinite(hi) and hi > lo):
+            raise OptionError(f"--range {col}: the upper bound must be above the lower, got '{text}'")
+        out[col] = (lo, hi)
+    return out
+
+
+def select_snapshots(spec: str, n: int) -> list[int]:
+    """Positions named by ``first,last`` / ``all`` / ``0,5,-1`` in a run of ``n``, in run order."""
+    text = (spec or "first,last").strip().lower()
+    if n <= 0:
+        return []
+    if text == "all":
+        return list(range(n))
+    picked: list[int] = []
+    for tok in (t.strip() for t in text.split(",")):
+        if not tok:
+            continue
+        if tok == "first":
+            i = 0
+        elif tok == "last":
+            i = n - 1
+        else:
+            try:
+                i = int(tok)
+            except ValueError:
+                raise OptionError(f"--snapshots takes first, last, all or positions like 0,5,-1; "
+                                  f"got '{spec}'") from None
+            if not -n <= i < n:
+                raise OptionError(f"--snapshots: position {i} is outside this run of {n} "
+                                  f"snapshot{'s' if n != 1 else ''} (0..{n - 1}, or -1 for the last)")
+            i %= n
+        if i not in picked:
+            picked.append(i)
+    if not picked:
+        raise OptionError(f"--snapshots names no snapshot: '{spec}'")
+    return sorted(picked)
+
+
+# results -------------------------------------------------------------------------------------
+@dataclass
+class FigureRecord:
+    kind: str                       # space, phase, census_map, rank_load, transfer, displacement, drift, deposit
+    path: str
+    title: str
+    snapshot: int | None = None
+    species: str | None = None
+    caption: str = ""
+    aggregate: object | None = None     # the xarray aggregate of a density view (kept on request)
+    element: object | None = None       # the holoviews object drawn
+    view: dict | None = None            # how a density view was aggregated
+
+
+@dataclass
+class ExportResult:
+    out: str
+    figures: list[FigureRecord] = field(default_factory=list)
+    tables: dict[str, str] = field(default_factory=dict)
+    report: str | None = None
+    notes: list[str] = field(default_factory=list)
+    verdict: object | None = None
+    exit_code: int = 0
+    seconds: float = 0.0
+
+
+# guards ----------------------------------------------------------------------------------
+def input_files(ctx, args=None) -> set[str]:
+    """Real paths of every file the export reads (snapshots, layout, column map)."""
+    files: set[str] = set()
+    for ref in ctx.run.refs:
+        for p in ref.paths:
+            files.add(os.path.realpath(p))
+    for name in ("layout", "map"):
+        v = getattr(args, name, None) if args is not None else None
+        if v:
+            files.add(os.path.realpath(v))
+    side = getattr(ctx, "_sidecar", None)
+    if side not in (None, False) and getattr(side, "source", None):
+        files.add(os.path.realpath(side.source))
+    return files
+
+
+def guard_outputs(paths, inputs: set[str]) -> None:
+    for p in paths:
+        for cand in (p, f"{p}.part"):
+            if os.path.realpath(cand) in inputs:
+                raise InputError(p, "is one of the run's input files; the export never "
+                                 "overwrites an input", "choose another --out folder")
+
+
+def _safe(name: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(name)).strip("_") or "species"
+
+
+def _run_name(ctx) -> str:
+    src = ctx.run.source or ""
+    if isinstance(src, (list, tuple)):
+        src = src[0] if src else ""
+    src = str(src).rstrip("/\\")
+    return os.path.basename(src) or src or "run"
+
+
+def _when(snap, i: int) -> str:
+    bits = [f"snapshot {i}"]
+    if snap.step is not None:
+        bits.append(f"step {snap.step}")
+    if snap.time is not None:
+        unit = f" {snap.time_unit}" if getattr(snap, "time_unit", "") else ""
+        bits.append(f"t = {snap.time:.4g}{unit}")
+    return ", ".join(bits)
+
+
+# views -----------------------------------------------------------------------------------
+def default_space(frame):
+    names = frame.position_names
+    if len(names) >= 2:
+        return (names[0], names[1])
+    return None
+
+
+def default_phase(frame):
+    names = frame.position_names
+    mom = frame.momentum_names()
+    if not names or not mom:
+        return None
+    # x against the momentum along x: the classic phase-space picture
+    return (names[0], mom[0])
+
+
+def _is_position(frame, col) -> bool:
+    return col in frame.position_names
+
+
+def view_ranges(ctx, frames, cols, layout, user) -> dict:
+    """One range per column for every view: the user's, the domain for positions, else the data's union."""
+    from .render import data_range
+    out = {}
+    for c in cols:
+        if c in user:
+            out[c] = user[c]
+            continue
+        f0 = next((f for f in frames if c in f), None)
+        if f0 is not None and _is_position(f0, c) and layout is not None:
+            a = f0.position_names.index(c)
+            if a < layout.ndim:
+                out[c] = (float(layout.domain_lower[a]), float(layout.domain_upper[a]))
+                continue
+        lo, hi = math.inf, -math.inf
+        for f in frames:
+            if c in f and f.length:
+                a, b = data_range(f, c)
+                lo, hi = min(lo, a), max(hi, b)
+        out[c] = (lo, hi) if hi >= lo else (0.0, 1.0)
+    return out
+
+
+def view_grid(opts: ExportOptions, xr_, yr_, equal: bool, particles: int | None = None) -> tuple[int, int]:
+    """Aggregate size: the pixels the image covers, coarser for few particles.
+
+    With fewer particles than about two per pixel a full-resolution image is
+    speckle; the grid is then made coarser (never below 64 bins a side) so
+    the density reads. Kept to the data's shape when both axes are positions.
+    """
+    w = max(int(opts.width * _IMAGE_SHARE[0]), 16)
+    h = max(int(opts.height * _IMAGE_SHARE[1]), 16)
+    if equal:
+        sx, sy = xr_[1] - xr_[0], yr_[1] - yr_[0]
+        if sx > 0 and sy > 0:
+            if sy / sx > h / w:
+                w = max(int(round(h * sx / sy)), 16)
+            else:
+                h = max(int(round(w * sy / sx)), 16)
+    if particles is not None and particles > 0:
+        shrink = math.sqrt(particles / (_PER_PIXEL * w * h))
+        if shrink < 1.0:
+            floor = min(64 / min(w, h), 1.0)
+            shrink = max(shrink, floor)
+            w, h = max(int(round(w * shrink)), 1), max(int(round(h * shrink)), 1)
+    return w, h
+
+
+def density_view(frame, xcol, ycol, *, grid, x_range, y_range, cmap, scaling, title, equal):
+    """Aggregate then shade one view of a frame (the dashboard's pipeline)."""
+    from . import render
+    agg = render.aggregate_points(frame, xcol, ycol, width=grid[0], height=grid[1],
+                                  x_range=x_range, y_range=y_range, reduction="count")
+    img = render.density_image(agg, cmap=cmap, scaling=scaling, title=title,
+                               xlabel=render.axis_label(frame, xcol),
+                               ylabel=render.axis_label(frame, ycol))
+    if equal:
+        img = img.opts(aspect="equal", backend="matplotlib")
+    else:
+        img = img.opts(aspect="auto", backend="matplotlib")
+    return agg, img
+
+
+# the export --------------------------------------------------------------------------------
+class _Plan:
+    """Every output path, known before anything is written (for the clobber guard)."""
+
+    def __init__(self, out):
+        self.out = out
+        self.figdir = os.path.join(out, FIGURE_DIR)
+        self.paths: list[str] = []
+
+    def fig(self, name) -> str:
+        p = os.path.join(self.figdir, name)
+        self.paths.append(p)
+        return p
+
+    def file(self, name) -> str:
+        p = os.path.join(self.out, name)
+        self.paths.append(p)
+        return p
+
+
+def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = False,
+               stream=None) -> ExportResult:
+    """Write figures, tables and report.html into ``opts.out``; return what was written."""
+    use_headless_matplotlib()
+    from . import figures as F
+    from .png import save_png
+    from .progress import Progress
+    from .report import FigureItem, Section, TableItem, Verdict, render_report, write_report
+    from ..core import audit
+
+    t0 = time.perf_counter()
+    out = os.path.abspath(opts.out)
+    if os.path.exists(out) and not os.path.isdir(out):
+        raise OptionError(f"--out {opts.out} is a file, not a folder")
+    run = ctx.run
+    n = len(run)
+    chosen = select_snapshots(opts.snapshots, n)
+    species = ctx.species_names()
+    name = _run_name(ctx)
+    res = ExportResult(out=out)
+    notes = res.notes
+
+    # plan ---------------------------------------------------------------------------------
+    plan = _Plan(out)
+    views = []          # (kind, i, species, xcol, ycol, path)
+    for i in chosen:
+        snap = run[i]
+        for sp in species:
+            if sp not in snap.species:
+                notes.append(f"snapshot {i} has no species '{sp}'")
+                continue
+            frame = snap.species[sp]
+            space = opts.space or default_space(frame)
+            phase = opts.phase or default_phase(frame)
+            for kind, pair in (("space", space), ("phase", phase)):
+                if pair is None:
+                    what = ("two position axes" if kind == "space"
+                            else "a position and a momentum (or velocity) column")
+                    msg = f"no {kind} view for '{sp}': it has no {what}"
+                    if msg not in notes:
+                        notes.append(msg)
+                    continue
+                for c in pair:
+                    if c not in frame:
+                        raise InputError(frame.source or snap.path,
+                                         f"species '{sp}' has no column '{c}' (asked for --{kind})",
+                                         f"columns are: {', '.join(frame.columns)}")
+                views.append((kind, i, sp, pair[0], pair[1],
+                              plan.fig(f"{kind}_{i:04d}_{_safe(sp)}.png")))
+    census_figs = [(i, plan.fig(f"census_map_{i:04d}.png"), plan.fig(f"rank_load_{i:04d}.png"))
+                   for i in chosen]
+    pairs = [(i - 1, i) for i in chosen if i > 0]
+    if n > 1 and not pairs:
+        pairs = [(0, 1)]
+    migration_figs = [(a, b, plan.fig(f"transfer_{a:04d}_{b:04d}.png"),
+                       plan.fig(f"displacement_{a:04d}_{b:04d}.png")) for a, b in pairs]
+    drift_fig = plan.fig("drift.png") if n > 1 else None
+    deposit_figs = [(i, plan.fig(f"deposit_{i:04d}.png")) for i in chosen]
+    table_paths = {t: plan.file(t) for t in TABLE_NAMES}
+    report_path = plan.file(REPORT_NAME)
+    guard_outputs(plan.paths, input_files(ctx, args))
+    os.makedirs(plan.figdir, exist_ok=True)
+
+    total = (len(views) + 2 * len(census_figs) + 2 * len(migration_figs) + (1 if drift_fig else 0)
+             + len(deposit_figs) + 4 + 1)
+    bar = Progress(total, "export", stream=stream,
+                   enabled=False if opts.quiet else None)
+    size = dict(width=opts.width, height=opts.height, dpi=opts.dpi, fontscale=opts.fontscale)
+
+    def add_figure(rec: FigureRecord, obj):
+        save_png(obj, rec.path, **size)
+        rec.element = obj if keep_aggregates else None
+        res.figures.append(rec)
+
+    with bar:
+        # tables first: the census and drift figures are drawn from them -------------------------
+        bar.draw("census table")
+        census_df = audit.census_table(ctx)
+        census_df.to_csv(table_paths["census.csv"], index=False)
+        res.tables["census.csv"] = table_paths["census.csv"]
+        bar.step("census table")
+        if n > 1:
+            migration_df, summary_df = audit.migration_tables(ctx)
+        else:
+            migration_df, summary_df = _empty_migration()
+            notes.append("the run has one snapshot: no migration between snapshots")
+        migration_df.to_csv(table_paths["migration.csv"], index=False)
+        summary_df.to_csv(table_paths["migration_summary.csv"], index=False)
+        res.tables["migration.csv"] = table_paths["migration.csv"]
+        res.tables["migration_summary.csv"] = table_paths["migration_summary.csv"]
+        bar.step("migration tables", 2)
+        drift_df = audit.drift_table(ctx, details=True)
+        drift_df[list(audit.DRIFT_COLUMNS)].to_csv(table_paths["drift.csv"], index=False)
+        res.tables["drift.csv"] = table_paths["drift.csv"]
+        bar.step("drift table")
+
+        # density views ---------------------------------------------------------------------------
+        by_cols: dict[tuple, list] = {}
+        for v in views:
+            by_cols.setdefault((v[0], v[3], v[4]), []).append(v)
+        for (kind, xcol, ycol), group in by_cols.items():
+            frames = [run[i].species[sp] for _, i, sp, *_ in group]
+            layout = ctx.layout(group[0][1])
+            # one range for a pair of columns in every snapshot and species, so views compare
+            with _forgetting(frames):
+                rng = view_ranges(ctx, frames, (xcol, ycol), layout, opts.ranges)
+            equal = all(_is_position(f, xcol) and _is_position(f, ycol) for f in frames)
+            grid = view_grid(opts, rng[xcol], rng[ycol], equal, max(f.length for f in frames))
+            for _, i, sp, _, _, path in group:
+                snap = run[i]
+                frame = snap.species[sp]
+                title = f"{name} · {sp} · {_when(snap, i)}"
+                with _forgetting([frame]):
+                    agg, img = density_view(frame, xcol, ycol, grid=grid, x_range=rng[xcol],
+                                            y_range=rng[ycol], cmap=opts.cmap, scaling=opts.scale,
+                                            title=title, equal=equal)
+                nonfinite = int(agg.attrs.get("nonfinite", 0))
+                outside = frame.length - nonfinite - int(np.nansum(agg.values))
+                cap = [f"{'space' if kind == 'space' else 'phase-space'} view: particles per bin "
+                       f"on a {grid[0]} × {grid[1]} grid, {opts.scale} colour scale"]
+                if nonfinite:
+                    cap.append(f"{nonfinite:,} with NaN/inf coordinates left out")
+                if outside > 0:
+                    cap.append(f"{outside:,} outside the drawn range")
+                rec = FigureRecord(kind, path, title, i, sp, "; ".join(cap),
+                                   agg if keep_aggregates else None,
+                                   view=dict(xcol=xcol, ycol=ycol, width=grid[0], height=grid[1],
+                                             x_range=tuple(rng[xcol]), y_range=tuple(rng[ycol])))
+                add_figure(rec, img)
+                bar.step(f"{kind} view {i} {sp}")
+
+        # census ----------------------------------------------------------------------------------
+        for i, map_path, bar_path in census_figs:
+            snap = run[i]
+            layout = ctx.layout(i)
+            blocks, ranks, imb = snapshot_census(ctx, i, census_df)
+            xl, yl = _position_labels(ctx, i, species)
+            title = f"{name} · particles per block · {_when(snap, i)}"
+            obj = F.census_map(blocks, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl)
+            add_figure(FigureRecord("census_map", map_path, title, i, "all",
+                                    "particles per block (all species); refined blocks outlined"),
+                       obj)
+            bar.step(f"census map {i}")
+            title = f"{name} · load per rank · {_when(snap, i)}"
+            obj = F.rank_bars(ranks, imb, title)
+            add_figure(FigureRecord("rank_load", bar_path, title, i, "all",
+                                    "particles per rank with the mean (dashed)"), obj)
+            bar.step(f"rank load {i}")
+
+        # migration -------------------------------------------------------------------------------
+        for a, b, heat_path, disp_path in migration_figs:
+            table = migration_df[(migration_df["from_snapshot"] == a) & (migration_df["to_snapshot"] == b)]
+            disp, steps = pair_displacements(ctx, a, b, species)
+            title = f"{name} · block to block · snapshot {a} → {b}"
+            add_figure(FigureRecord("transfer", heat_path, title, b, "all",
+                                    "matched particles that changed block (staying ones left out)"),
+                       F.transfer_heatmap(table, title, cmap=opts.cmap))
+            bar.step(f"transfer {a}-{b}")
+            title = f"{name} · displacement · snapshot {a} → {b}"
+            add_figure(FigureRecord("displacement", disp_path, title, b, "all",
+                                    f"{steps} step(s) apart; the dashed line is one level-0 cell per step"),
+                       F.displacement_histogram(disp, steps, title))
+            bar.step(f"displacement {a}-{b}")
+
+        # drift -------------------------------------------------------------------------------------
+        if drift_fig:
+            title = f"{name} · totals against the first snapshot"
+            add_figure(FigureRecord("drift", drift_fig, title, None, "all",
+                                    "relative drift of every total; band = ±rtol" if opts.rtol
+                                    else "relative drift of every total (no --rtol given)"),
+                       F.drift_curves(drift_df, opts.rtol, title))
+            bar.step("drift")
+        else:
+            notes.append("the run has one snapshot: no drift figure")
+
+        # deposition --------------------------------------------------------------------------------
+        for i, path in deposit_figs:
+            snap = run[i]
+            layout = ctx.layout(i)
+            if layout.ndim < 2:
+                notes.append(f"snapshot {i}: deposition map needs 2-D or 3-D positions")
+                bar.step()
+                continue
+            grid = snapshot_deposit(ctx, i, species)
+            xl, yl = _position_labels(ctx, i, species)
+            title = f"{name} · weight deposited (CIC) · {_when(snap, i)}"
+            label = "weight per cell" + (" (summed over z)" if layout.ndim == 3 else "")
+            add_figure(FigureRecord("deposit", path, title, i, "all",
+                                    "cloud-in-cell deposit of particle weight on the level-0 cells"),
+                       F.deposit_map(grid, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl,
+                                     label=label))
+            bar.step(f"deposit {i}")
+
+        # gate --------------------------------------------------------------------------------------
+        verdict = None
+        if opts.rtol is not None:
+            chk = audit.check(ctx, opts.rtol, None)
+            verdict = Verdict(opts.rtol, bool(chk.ok), list(chk.lines))
+            res.verdict = chk
+            res.exit_code = 0 if chk.ok else 1
+        for note in ctx.notes:
+            if note not in notes:
+                notes.append(note)
+        for i in chosen:
+            for w in run[i].warnings:
+                msg = f"snapshot {i}: {w}"
+                if msg not in notes:
+                    notes.append(msg)
+
+        # report ------------------------------------------------------------------------------------
+        sections = _sections(res, census_df, migration_df, summary_df, drift_df, FigureItem,
+                             Section, TableItem)
+        facts = _facts(ctx, chosen, species)
+        from .. import __version__
+        text = render_report(f"swarmaudit report — {name}", facts, sections, verdict, notes,
+                             version=__version__)
+        write_report(report_path, text)
+        res.report = report_path
+        bar.step("report")
+    res.seconds = time.perf_counter() - t0
+    return res
+
+
+# per-snapshot pieces the figures need (compositions of core.audit and diagnostics) ----------
+@contextmanager
+def _forgetting(frames):
+    """Drop afterwards the columns read inside the block (an export of every snapshot stays small)."""
+    before = [(f, set(getattr(f, "_cache", {}))) for f in frames]
+    try:
+        yield
+    finally:
+        for f, had in before:
+            cache = getattr(f, "_cache", None)
+            if cache is not None:
+                for k in [k for k in cache if k not in had]:
+                    del cache[k]
+
+
+def snapshot_census(ctx, i: int, census_df):
+    """(blocks, ranks, imbalance) of snapshot ``i`` over every species, for the census figures."""
+    from ..core import audit
+    blocks = census_df[(census_df["snapshot"] == i) & (census_df["species"] == audit.ALL)]
+    ranks = audit.rank_table(ctx, i)
+    ranks = ranks[ranks["species"] == audit.ALL]
+    imb = audit.imbalance_table(ctx, [i])
+    row = imb[(imb["species"] == audit.ALL) & (imb["by"] == "rank")]
+    figures = row.iloc[0].to_dict() if len(row) else None
+    return blocks, ranks, figures
+
+
+def pair_displacements(ctx, a: int, b: int, species) -> tuple[np.ndarray, int | None]:
+    """Displacement in level-0 cells of every particle matched between snapshots a and b."""
+    from ..diagnostics.migration import DuplicateKeyError, displacement_cells, match_keys
+    sa, sb = ctx.run[a], ctx.run[b]
+    layout = ctx.layout(a)
+    steps = (sb.step - sa.step) if (sa.step is not None and sb.step is not None) else None
+    parts = []
+    for sp in species:
+        fa, fb = sa.species.get(sp), sb.species.get(sp)
+        if fa is None or fb is None or fa.ndim != layout.ndim or fb.ndim != layout.ndim:
+            continue
+        ka, kb = fa.key_columns(), fb.key_columns()
+        if not ka or not kb or len(ka) != len(kb):
+            continue
+        with _forgetting([fa, fb]):
+            keys_a = tuple(fa[c] for c in ka)
+            keys_b = tuple(fb[c] for c in kb)
+            try:
+                m = match_keys(keys_a if len(keys_a) > 1 else keys_a[0],
+                               keys_b if len(keys_b) > 1 else keys_b[0])
+            except DuplicateKeyError:
+                continue   # core.audit has noted it for the migration tables
+            pa = [np.asarray(p)[m.ia] for p in fa.positions()]
+            pb = [np.asarray(p)[m.ib] for p in fb.positions()]
+            parts.append(displacement_cells(pa, pb, layout))
+    disp = np.concatenate(parts) if parts else np.zeros(0)
+    return disp, (int(steps) if steps is not None and steps > 0 else None)
+
+
+def snapshot_deposit(ctx, i: int, species) -> np.ndarray:
+    """Cloud-in-cell deposit of weight of every species on the level-0 cells, indexed [ix, iy(, iz)]."""
+    from ..diagnostics.deposit import deposit
+    snap = ctx.run[i]
+    layout = ctx.layout(i)
+    total = np.zeros(tuple(int(c) for c in layout.cells))
+    for sp in species:
+        f = snap.species.get(sp)
+        if f is None or f.ndim != layout.ndim or not f.length:
+            continue
+        with _forgetting([f]):
+            total += deposit(f.positions(), f.per_particle("weight", 1.0), layout, order="cic")
+    return total
+
+
+_DRIFT_COLUMNS = ("snapshot", "step", "time", "species", "quantity", "value", "reference",
+                  "relative_drift")
+
+
+def _empty_migration():
+    import pandas as pd
+    m = pd.DataFrame({c: pd.Series(dtype="int64") for c in
+                      ("from_snapshot", "to_snapshot", "species", "from_block", "to_block", "count")})
+    s = pd.DataFrame({c: pd.Series(dtype="int64") for c in
+                      ("from_snapshot", "to_snapshot", "species", "matched", "migrated", "created",
+                       "lost", "max_displacement_cells", "over_one_cell")})
+    return m, s
+
+
+def _position_labels(ctx, i, species):
+    from .render import axis_label
+    snap = ctx.run[i]
+    for sp in species:
+        f = snap.species.get(sp)
+        if f is not None and f.ndim >= 2:
+            names = f.position_names
+            return axis_label(f, names[0]), axis_label(f, names[1])
+    return None, None
+
+
+def _facts(ctx, chosen, species) -> list[tuple[str, str]]:
+    run = ctx.run
+    n = len(run)
+    first, last = run[0], run[n - 1]
+    facts = [("run", str(run.source)), ("snapshots", f"{n} ({run.refs[0].label} … {run.refs[-1].label})")]
+    if first.step is not None and last.step is not None:
+        facts.append(("steps", f"{first.step} … {last.step}"))
+    if first.time is not None and last.time is not None:
+        unit = f" {first.time_unit}" if first.time_unit else ""
+        facts.append(("time", f"{first.time:.6g} … {last.time:.6g}{unit}"))
+    facts.append(("drawn", ", ".join(str(i) for i in chosen)))
+    for sp in species:
+        counts = [run[i].species[sp].length if sp in run[i].species else 0 for i in (0, n - 1)]
+        facts.append((f"species {sp}", f"{counts[0]:,} particles in the first snapshot, "
+                                       f"{counts[1]:,} in the last"))
+    lay = ctx.layout(0)
+    s = lay.summary()
+    dom = " × ".join(f"[{a:g}, {b:g})" for a, b in zip(s["domain_lower"], s["domain_upper"]))
+    facts.append(("layout", f"{s['blocks']} blocks on level(s) {', '.join(map(str, s['levels']))}, "
+                            f"{s['ranks']} rank(s), {s['ndim']}-D"))
+    facts.append(("domain", f"{dom}; level-0 cells {' × '.join(map(str, s['cells']))}"
+                            + (f"; periodic {', '.join(s['periodic'])}" if s["periodic"] else "")))
+    if s.get("source"):
+        facts.append(("layout from", str(s["source"])))
+    return facts
+
+
+def _sections(res, census_df, migration_df, summary_df, drift_df, FigureItem, Section, TableItem):
+    def items(*kinds):
+        return [FigureItem(f.path, f.title, f.caption) for f in res.figures if f.kind in kinds]
+
+    secs = []
+    v = items("space", "phase")
+    if v:
+        secs.append(Section("Views", v, anchor="views",
+                            text=["Particle density, aggregated per pixel (no points drawn over each "
+                                  "other): every particle counts once."]))
+    secs.append(Section("Census", items("census_map", "rank_load"),
+                        [TableItem("census.csv", census_df, "census.csv")], anchor="census"))
+    secs.append(Section("Migration", items("transfer", "displacement"),
+                        [TableItem("migration_summary.csv", summary_df, "migration_summary.csv"),
+                         TableItem("migration.csv", migration_df, "migration.csv")],
+                        anchor="migration"))
+    drift_show = drift_df[[c for c in _DRIFT_COLUMNS if c in drift_df]]
+    secs.append(Section("Drift", items("drift"), [TableItem("drift.csv", drift_show, "drift.csv")],
+                        anchor="drift"))
+    d = items("deposit")
+    if d:
+        secs.append(Section("Deposition", d, anchor="deposition"))
+    return secs
+
+
+def run_export(ctx, args) -> int:
+    """The CLI entry: export, print what was written, gate like ``check`` when --rtol is given."""
+    opts = ExportOptions.from_args(args)
+    res = export_run(ctx, opts, args)
+    nfig = len(res.figures)
+    print(f"swarmaudit export: wrote {nfig} figure{'s' if nfig != 1 else ''}, "
+          f"{len(res.tables)} tables and {REPORT_NAME} to {res.out} in {res.seconds:.1f} s")
+    if res.verdict is not None:
+        for line in res.verdict.lines:
+            print(line)
+    return res.exit_code

@@ -20,6 +20,7 @@ import numpy.lib.format as npformat
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot
+from ..core.partitions import read_record_field, sliceable
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        has_role, make_snapshot, native, reject_non_numeric, scalar_value,
                        split_scalars, take_field)
@@ -87,27 +88,35 @@ def _open_npy(path: str, columns) -> Snapshot:
     n = shape[0]
     table = Table(path)
     warnings: list[str] = []
-    mapped: list = []
-
-    def records():
-        # one read-only map per opened snapshot, made on the first column read
-        if not mapped:
-            if n == 0:
-                mapped.append(np.empty(0, dtype))
-            else:
-                try:
-                    mapped.append(np.load(path, mmap_mode="r", allow_pickle=False))
-                except (ValueError, OSError) as exc:
-                    raise InputError(path, f"cannot be memory-mapped ({exc})") from None
-        return mapped[0]
-
     for col, fpath, comp, fdt in flatten_fields(dtype):
         if comp == "skip":
             warnings.append(f"field '{col}' has shape {fdt.shape}; left out")
             continue
         if reject_non_numeric(path, col, fdt, f"field '{col}'", warnings):
-            table.add(col, n, lambda f=fpath, c=comp: native(take_field(records(), f, c)), col)
+            table.add(col, n, _field_loader(path, offset, dtype, n, col, fpath, comp), col)
     return make_snapshot(path, {DEFAULT_SPECIES: table}, columns=columns, warnings=warnings)
+
+
+def _field_loader(path: str, offset: int, dtype, n: int, col: str, fpath, comp):
+    """One field of the records, read through a small buffer into a compact array.
+
+    Not a view of a memory map: the fields are interleaved, so a map would
+    keep every page of the file (all the other fields) resident. Row ranges
+    can be read alone, for partitioned engines.
+    """
+    def take(records):
+        return take_field(records, fpath, comp)
+
+    def rows(start, stop):
+        try:
+            return read_record_field(path, offset, dtype, take, start, stop)
+        except OSError as exc:
+            raise InputError(path, f"field '{col}' cannot be read ({exc.strerror or exc})") from None
+
+    def load():
+        check_fits_memory(path, f"field '{col}'", n * take(np.empty(0, dtype)).dtype.itemsize)
+        return rows(0, n)
+    return sliceable(load, rows, native(take(np.empty(0, dtype))).dtype)
 
 
 # .npz ---------------------------------------------------------------------------

@@ -34,12 +34,9 @@ def timed(fn, repeat: int) -> float:
     return statistics.median(times)
 
 
-def main(argv=None) -> int:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--n", type=int, default=10_000_000, help="particles (default 10 M)")
-    ap.add_argument("--repeat", type=int, default=3, help="timed runs per measurement (default 3)")
-    args = ap.parse_args(argv)
-    n, r = args.n, args.repeat
+def run(n: int = 10_000_000, repeat: int = 3) -> list[dict]:
+    """Every measurement as a row: measurement, seconds, baseline, baseline_seconds, ratio, target."""
+    r = repeat
     rng = np.random.default_rng(0)
 
     layout = regular_layout([0, 1, 0, 1], [512, 512], [64, 64], periodic=("x", "y"), ranks=64)
@@ -94,7 +91,17 @@ def main(argv=None) -> int:
     row("deposit CIC 512x512", t_cic, "numpy.histogram2d 512x512", t_hist, "")
     row("deposit NGP 512x512", t_ngp, "numpy.histogram2d 512x512", t_hist, "")
 
-    print(f"particles {n:,}, median of {r} runs after a warm-up; numba kernels: "
+    keys = ("measurement", "seconds", "baseline", "baseline_seconds", "ratio", "target")
+    return [dict(zip(keys, row)) for row in rows]
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--n", type=int, default=10_000_000, help="particles (default 10 M)")
+    ap.add_argument("--repeat", type=int, default=3, help="timed runs per measurement (default 3)")
+    args = ap.parse_args(argv)
+    rows = [tuple(d.values()) for d in run(args.n, args.repeat)]
+    print(f"particles {args.n:,}, median of {args.repeat} runs after a warm-up; numba kernels: "
           f"{'on' if _fastassign.available else 'off'}")
     w = max(len(a) for a, *_ in rows)
     wb = max(len(c) for _, _, c, *_ in rows)

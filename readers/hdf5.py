@@ -261,7 +261,9 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None):
         except H5_ERRORS as exc:
             raise InputError(path, f"dataset '{dsname}' cannot be read ({exc})",
                              "the file may be damaged or still being written") from None
-        return native(np.ascontiguousarray(arr))
+        arr = native(np.ascontiguousarray(arr))
+        arr.flags.writeable = False     # like the other readers' columns: the frame's cache is shared
+        return arr
     return load
 
 

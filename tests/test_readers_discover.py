@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import os
 
-import h5py
 import numpy as np
 import pytest
 

@@ -9,7 +9,7 @@ import h5py
 import numpy as np
 import pytest
 
-from _readers_samples import AXES, ROLES, WRITERS, particles, write_csv, write_npz
+from _readers_samples import ROLES, WRITERS, particles, write_csv, write_npz
 from swarmaudit.core.roles import RoleMap
 from swarmaudit.readers import registry
 from swarmaudit.readers.csv_files import CSVReader

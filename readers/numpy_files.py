@@ -1,7 +1,8 @@
-"""NumPy snapshots: ``.npy`` structured arrays (memory-mapped) and ``.npz`` archives. Never unpickles.
+"""NumPy snapshots: ``.npy`` structured arrays and ``.npz`` archives. Never unpickles.
 
 * ``.npy``: a 1-D structured array, one record per particle; one column per field (sub-array
-  fields split into ``name/x``...). Columns are views of one read-only memory map.
+  fields split into ``name/x``...). A column read pulls one field out of the records through a
+  small buffer (any row range alone), so the other fields never stay in memory.
 * ``.npz``: one array per column. 1-D arrays are columns, ``(N, d)`` arrays give ``name/x``...,
   0-d arrays are per-snapshot scalars (``step``, ``time``, others to ``meta``). A key prefix
   ``beam_a/x`` puts the column in species ``beam_a`` (a 0-d ``beam_a/mass`` is its attribute);

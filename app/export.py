@@ -511,7 +511,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
         verdict = None
         if opts.rtol is not None:
             chk = audit.check(ctx, opts.rtol, None)
-            verdict = Verdict(opts.rtol, bool(chk.ok), list(chk.lines))
+            verdict = Verdict(opts.rtol, bool(chk.ok), _headline(chk.lines))
             res.verdict = chk
             res.exit_code = 0 if chk.ok else 1
         for note in ctx.notes:
@@ -612,6 +612,16 @@ _DRIFT_COLUMNS = ("snapshot", "step", "time", "species", "quantity", "value", "r
                   "relative_drift")
 
 
+def _headline(lines) -> list[str]:
+    """The sentences of a check's output, without its fixed-width table (shown as HTML instead)."""
+    out = []
+    for line in lines:
+        if line.startswith("quantity "):
+            break
+        out.append(line)
+    return out
+
+
 def _empty_migration():
     import pandas as pd
     m = pd.DataFrame({c: pd.Series(dtype="int64") for c in
@@ -677,8 +687,15 @@ def _sections(res, census_df, migration_df, summary_df, drift_df, FigureItem, Se
                          TableItem("migration.csv", migration_df, "migration.csv")],
                         anchor="migration"))
     drift_show = drift_df[[c for c in _DRIFT_COLUMNS if c in drift_df]]
-    secs.append(Section("Drift", items("drift"), [TableItem("drift.csv", drift_show, "drift.csv")],
-                        anchor="drift"))
+    tables = [TableItem("drift.csv", drift_show, "drift.csv")]
+    chk = res.verdict
+    if chk is not None and getattr(chk, "table", None) is not None and len(chk.table):
+        t = chk.table.rename(columns={"worst": "largest drift (%)", "at": "at snapshot",
+                                      "first_out": "first out"})
+        tables.insert(0, TableItem("check: the totals judged", t, None, max_rows=60,
+                                   caption="largest drift judged against the scale of each total, "
+                                           "in per cent of it"))
+    secs.append(Section("Drift", items("drift"), tables, anchor="drift"))
     d = items("deposit")
     if d:
         secs.append(Section("Deposition", d, anchor="deposition"))

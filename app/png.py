@@ -145,6 +145,22 @@ def _thin_ticks(cax, renderer) -> None:
         axis.set_ticks(sorted(kept))
 
 
+def _wrap(text, room: float, renderer) -> None:
+    """Break a title that is wider than ``room`` pixels onto more lines."""
+    import textwrap
+    s = text.get_text()
+    if not s:
+        return
+    width = text.get_window_extent(renderer).width
+    chars = len(s)
+    for _ in range(4):
+        if width <= room:
+            return
+        chars = max(int(chars * room / width * 0.95), 12)
+        text.set_text(textwrap.fill(s, chars))
+        width = text.get_window_extent(renderer).width
+
+
 def _content_box(fig, artists, renderer):
     boxes = [b for b in (a.get_tightbbox(renderer) for a in artists) if b is not None]
     fw, fh = fig.bbox.width, fig.bbox.height
@@ -163,6 +179,7 @@ def _fit(fig) -> None:
         return
     ax = main[0]
     renderer = fig.canvas.get_renderer()
+    _wrap(ax.title, fig.bbox.width * (1 - 2 * _MARGIN), renderer)
     bars = [_equalised_colorbar(fig, cb) for cb in bars]
     for cb in bars:
         _thin_ticks(cb, renderer)
@@ -201,13 +218,8 @@ def _fit_grid(fig, main, bars) -> None:
     title = getattr(fig, "_suptitle", None)
     top = 1.0
     if title is not None and title.get_text():
-        import textwrap
         renderer = fig.canvas.get_renderer()
-        width = title.get_window_extent(renderer).width
-        room = fig.bbox.width * (1 - 2 * _MARGIN)
-        if width > room:
-            text = title.get_text()
-            title.set_text(textwrap.fill(text, max(int(len(text) * room / width), 20)))
+        _wrap(title, fig.bbox.width * (1 - 2 * _MARGIN), renderer)
         h = title.get_window_extent(renderer).height / fig.bbox.height
         title.set_y(1 - _MARGIN)
         title.set_va("top")

@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import pandas as pd
 
 #: rows of a table shown in the page before it is cut (the CSV has them all)
-MAX_ROWS = 40
+MAX_ROWS = 25
 
 CAUTION = ("These are diagnostics of the particle dumps, not a certification of the "
            "simulation. Conserved totals, load figures and migration counts describe what is "
@@ -202,8 +202,9 @@ def render_report(title: str, facts: list[tuple[str, str]], sections: list[Secti
     out.append("<main>")
     if verdict is not None:
         cls = "ok" if verdict.ok else "bad"
-        head = (f"Every checked total stays within ±{verdict.rtol:g} of the first snapshot."
-                if verdict.ok else f"A total left the ±{verdict.rtol:g} band.")
+        band = f"±{verdict.rtol:g} ({verdict.rtol * 100:.3g} %)"
+        head = (f"Check passed: every checked total stays within {band} of the first snapshot."
+                if verdict.ok else f"Check failed: a total left the {band} band.")
         items = "".join(f"<li>{_e(line)}</li>" for line in verdict.lines)
         out.append(f"<div class='verdict {cls}' id='verdict'>{_e(head)}"
                    + (f"<ul>{items}</ul>" if items else "") + "</div>")

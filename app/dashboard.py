@@ -22,7 +22,7 @@ from .state import (BLOCK_MODES, CMAPS, COLOR_BY, SCALINGS, SERVED, SIDE_PANELS,
                     ViewState)
 
 #: pixels of each particle view (aggregates are binned at exactly this size)
-VIEW_W, VIEW_H = 600, 470
+VIEW_W, VIEW_H = 560, 440
 #: the page's own colours
 INK = "#1d2433"
 ACCENT = "#0f8b8d"
@@ -40,6 +40,15 @@ CONTROLS_STYLE = {"background": "#ffffff", "border-right": "1px solid #e4e0d8",
                   "padding-bottom": "14px", "min-height": "100vh"}
 VIEW_STYLE = {"background": "#ffffff", "border": "1px solid #e4e0d8", "border-radius": "6px"}
 STATUS_STYLE = {"font-size": "12px", "color": "#5b6473"}
+
+def _canvas_plots():
+    # Images and a few dozen bars gain nothing from WebGL, and a page with a dozen plots
+    # would hold a dozen GL contexts; browsers cap those and stop drawing the later plots.
+    import holoviews.plotting.bokeh  # noqa: F401
+    hv.renderer("bokeh").webgl = False
+
+
+_canvas_plots()
 
 _CSS_PATH = os.path.join(os.path.dirname(__file__), "assets", "dashboard.css")
 

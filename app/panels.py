@@ -13,6 +13,7 @@ import threading
 
 import numpy as np
 import pandas as pd
+import holoviews as hv
 import panel as pn
 import param
 
@@ -40,13 +41,6 @@ def _cached(key, compute):
 
 def _note(text: str, kind: str = "info"):
     return pn.pane.Alert(text, alert_type=kind, margin=(8, 4))
-
-
-def _species_list(state: ViewState, i: int) -> list[str]:
-    names = state.served.species_names(i)
-    if state.species == ALL_SPECIES:
-        return [s for s in names if s != ALL_SPECIES]
-    return [state.species]
 
 
 class SidePanels(param.Parameterized):
@@ -77,14 +71,10 @@ class SidePanels(param.Parameterized):
 
     # census ----------------------------------------------------------------------------
     def census(self, i: int):
-        """(block table, rank table, imbalance) of snapshot ``i`` for the species in view."""
+        """(block table, rank table, imbalance over ranks) of snapshot ``i``, species in view."""
         s = self.state
         key = ("census", s.run, int(i), s.species)
-
-        def compute():
-            from ..core import audit
-            return audit.snapshot_census(s.served.ctx, int(i), _species_list(s, i))
-        return _cached(key, compute)
+        return _cached(key, lambda: snapshot_census(s.served.ctx, int(i), s.species))
 
     def block_counts(self, i: int):
         """Particles per layout row of snapshot ``i`` (for tinting the block overlay)."""
@@ -108,7 +98,7 @@ class SidePanels(param.Parameterized):
             blocks, ranks, imb = self.census(i)
             layout = s.served.layout(i)
             from ..core import audit
-            whatif = audit.snapshot_rebalance(s.served.ctx, i, _species_list(s, i))
+            whatif = _cached(("whatif", s.run, i), lambda: audit.rebalance_table(s.served.ctx, i))
         except (ImportError, AttributeError):
             return _note("The block census is not available in this build.")
         except SwarmAuditError as exc:
@@ -120,7 +110,7 @@ class SidePanels(param.Parameterized):
                                      sizing_mode="stretch_width", layout="fit_data_stretch") \
             if whatif is not None and len(whatif) else pn.pane.Markdown("")
         return pn.Column(
-            pn.Row(pn.pane.HoloViews(cmap, backend="bokeh"), pn.pane.HoloViews(bars, backend="bokeh")),
+            pn.Row(pn.pane.HoloViews(cmap, backend="bokeh", linked_axes=False), pn.pane.HoloViews(bars, backend="bokeh", linked_axes=False)),
             pn.pane.Markdown(facts, styles={"font-size": "13px"}),
             pn.pane.Markdown("**What if the blocks were dealt out again?** Load per rank under "
                              "other assignments of the same blocks:", margin=(4, 8, 0, 8)),
@@ -150,8 +140,7 @@ class SidePanels(param.Parameterized):
         key = ("moves", s.run, a, b, s.species)
 
         def work(progress=None):
-            from ..core import audit
-            return audit.snapshot_migration(s.served.ctx, a, b, _species_list(s, i), progress=progress)
+            return snapshot_migration(s.served.ctx, a, b, s.species, progress=progress)
         self._start(self._moves, "moves", key, work, lambda res: self._show_moves(res, a, b))
         return pick
 
@@ -162,8 +151,8 @@ class SidePanels(param.Parameterized):
         hist = figures.displacement_histogram(disp, steps, title="displacement")
         facts = _moves_facts(summary)
         return pn.Column(pn.pane.Markdown(facts, styles={"font-size": "13px"}),
-                         pn.Row(pn.pane.HoloViews(heat, backend="bokeh"),
-                                pn.pane.HoloViews(hist, backend="bokeh")),
+                         pn.Row(pn.pane.HoloViews(heat, backend="bokeh", linked_axes=False),
+                                pn.pane.HoloViews(hist, backend="bokeh", linked_axes=False)),
                          sizing_mode="stretch_width")
 
     # drift -----------------------------------------------------------------------------
@@ -182,13 +171,15 @@ class SidePanels(param.Parameterized):
         key = ("totals", s.run, s.species)
 
         def work(progress=None):
-            from ..core import audit
-            return audit.run_drift(s.served.ctx, _species_list(s, 0), progress=progress)
+            return run_drift(s.served.ctx, progress=progress)
         self._start(self._totals, "totals", key, work, self._show_totals)
         return rtol
 
     def _show_totals(self, drift):
         s = self.state
+        if s.species != ALL_SPECIES:
+            # the species' own totals plus the run-wide scalars (field energy, total energy)
+            drift = drift[drift["species"].astype(str).isin([s.species, ALL_SPECIES])]
         fig = figures.drift_curves(drift, s.rtol, title="drift against the first snapshot")
         exits = figures.first_exits(drift, s.rtol)
         if len(exits):
@@ -197,8 +188,13 @@ class SidePanels(param.Parameterized):
             facts = "\n".join(lines)
         else:
             facts = f"Every total stays within ±{s.rtol:g} of the first snapshot."
-        return pn.Column(pn.pane.Markdown(facts, styles={"font-size": "13px"}),
-                         pn.pane.HoloViews(fig, backend="bokeh"), sizing_mode="stretch_width")
+        # one pane per total, three to a row: a single bokeh grid (or a flex box) of many
+        # plots beside the controls and the dynamic views was left unpainted by the browser
+        items = list(fig) if isinstance(fig, hv.Layout) else [fig]
+        cells = [pn.pane.HoloViews(item, backend="bokeh", linked_axes=False) for item in items]
+        rows = [pn.Row(*cells[k:k + 3]) for k in range(0, len(cells), 3)]
+        return pn.Column(pn.pane.Markdown(facts, styles={"font-size": "13px"}), *rows,
+                         sizing_mode="stretch_width")
 
     # histogram -------------------------------------------------------------------------
     @param.depends("state.run", "state.snapshot", "state.species", "state.hist_column")
@@ -221,7 +217,7 @@ class SidePanels(param.Parameterized):
                                    xlabel=axis_label(frame, col))
         note = pn.pane.Markdown(f"{bad:,} NaN/inf values left out." if bad else "",
                                 styles={"font-size": "13px"})
-        return pn.Column(pick, pn.pane.HoloViews(fig, backend="bokeh"), note)
+        return pn.Column(pick, pn.pane.HoloViews(fig, backend="bokeh", linked_axes=False), note)
 
     # background work -------------------------------------------------------------------
     def _start(self, holder, name, key, work, show):
@@ -299,3 +295,73 @@ def _moves_facts(summary: pd.DataFrame) -> str:
     if "over_one_cell" in summary:
         bits.append(f"beyond one cell per step **{int(row['over_one_cell']):,}**")
     return " · ".join(bits)
+
+
+# ---------------------------------------------------------------------------------------
+# data for the panels, composed from the public run-level tables of core.audit
+def _species_rows(df: pd.DataFrame, species: str) -> pd.DataFrame:
+    if df is None or not len(df) or "species" not in df:
+        return df
+    return df[df["species"].astype(str) == species]
+
+
+def snapshot_census(ctx, i: int, species: str):
+    """Block census, rank census and rank imbalance of one snapshot for one species (or all)."""
+    from ..core import audit
+    blocks = _species_rows(audit.census_table(ctx, [i]), species)
+    ranks = _species_rows(audit.rank_table(ctx, i), species)
+    imb = _species_rows(audit.imbalance_table(ctx, [i]), species)
+    imb = imb[imb["by"] == "rank"] if len(imb) else imb
+    facts = imb.iloc[0].to_dict() if len(imb) else None
+    return blocks, ranks, facts
+
+
+def snapshot_migration(ctx, a: int, b: int, species: str, progress=None):
+    """(moves, summary, displacements in level-0 cells, steps apart) between snapshots a and b."""
+    from ..core import audit
+    from ..diagnostics.migration import DuplicateKeyError, displacement_cells, match_keys
+    if progress:
+        progress(0, 3)
+    moves, summary = audit.migration_tables(ctx, [(a, b)])
+    moves = _species_rows(moves, species)
+    summary = _species_rows(summary, species)
+    if progress:
+        progress(2, 3)
+    sa, sb = ctx.run[a], ctx.run[b]
+    layout = ctx.layout(a)
+    names = [n for n in ctx.species_names() if species in (ALL_SPECIES, n)]
+    disp = []
+    for n in names:
+        fa, fb = sa.species.get(n), sb.species.get(n)
+        if fa is None or fb is None or fa.ndim != layout.ndim or fb.ndim != layout.ndim:
+            continue
+        ka, kb = fa.key_columns(), fb.key_columns()
+        if not ka or not kb or len(ka) != len(kb):
+            continue
+        try:
+            m = match_keys(tuple(fa[c] for c in ka) if len(ka) > 1 else fa[ka[0]],
+                           tuple(fb[c] for c in kb) if len(kb) > 1 else fb[kb[0]])
+        except DuplicateKeyError:
+            continue
+        disp.append(displacement_cells([p[m.ia] for p in fa.positions()],
+                                       [p[m.ib] for p in fb.positions()], layout))
+    steps = (sb.step - sa.step) if (sa.step is not None and sb.step is not None) else None
+    if progress:
+        progress(3, 3)
+    return moves, summary, (np.concatenate(disp) if disp else np.zeros(0)), steps
+
+
+def run_drift(ctx, progress=None):
+    """The drift table of the whole run, reading snapshot after snapshot with progress."""
+    from ..core import audit
+    n = len(ctx.run)
+    reduce = getattr(audit, "_reduce", None)
+    if reduce is not None and progress is not None:
+        # the per-snapshot totals are what takes time; warm them one by one to show progress
+        for i in range(n):
+            reduce(ctx, i, "totals")
+            progress(i + 1, n + 1)
+    table = audit.drift_table(ctx)
+    if progress:
+        progress(1, 1)
+    return table

@@ -31,6 +31,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import OptionError
+from ._colstats import finite_stats
 from .frame import Frame
 from .layout import BlockLayout, assign_blocks
 from .partitions import (Piece, column_bytes, column_dtype, frame_pieces,
@@ -281,20 +282,15 @@ def _stats_piece(piece: Piece, xcol, ycol, slab):
         s = read_column(piece, slab[0])
         with np.errstate(invalid="ignore"):
             keep = (s >= slab[1]) & (s < slab[2])
-    out = {}
-    bad = None
-    for name, arr in (("x", x), ("y", y)):
-        if arr.dtype.kind == "f":
-            fin = np.isfinite(arr)
-            b = None if fin.all() else ~fin
-            good = arr if b is None else arr[fin]
-            bad = b if bad is None else (bad if b is None else bad | b)
-        else:
-            good = arr
-        out[name] = (float(good.min()), float(good.max())) if good.size else None
-    out["bad"] = 0 if bad is None else int(np.count_nonzero(bad if keep is None else bad & keep))
-    out["kept"] = piece.length if keep is None else int(np.count_nonzero(keep))
-    return out
+    sx, sy = finite_stats(x), finite_stats(y)
+    bad = 0
+    if sx[2] or sy[2]:   # only then is a row mask worth building
+        mask = ~np.isfinite(x) if sx[2] else np.zeros(x.shape, bool)
+        if sy[2]:
+            mask |= ~np.isfinite(y)
+        bad = int(np.count_nonzero(mask if keep is None else mask & keep))
+    return {"x": None if sx[0] is None else sx[:2], "y": None if sy[0] is None else sy[:2],
+            "bad": bad, "kept": piece.length if keep is None else int(np.count_nonzero(keep))}
 
 
 def column_stats(frame: Frame, xcol: str, ycol: str, *, slab=None, engine: DaskEngine | None = None):
@@ -768,10 +764,8 @@ def column_range(frame: Frame, col: str) -> tuple[float, float]:
 
 
 def _range_piece(piece: Piece, col: str):
-    a = read_column(piece, col)
-    if a.dtype.kind == "f":
-        a = a[np.isfinite(a)]
-    return (float(a.min()), float(a.max())) if a.size else None
+    lo, hi, _ = finite_stats(read_column(piece, col))
+    return None if lo is None else (lo, hi)
 
 
 def drawing_engine() -> DaskEngine:

@@ -15,6 +15,7 @@ split (splitting would read the whole column once per piece).
 from __future__ import annotations
 
 import math
+import uuid
 from dataclasses import dataclass, field
 from typing import Callable, Mapping
 
@@ -94,6 +95,12 @@ class Piece:
     part_length: int
     loaders: Mapping[str, Loader] = field(repr=False)
     constants: Mapping[str, tuple] = field(default_factory=dict, repr=False)
+    token: str = field(default_factory=lambda: uuid.uuid4().hex, repr=False, compare=False)
+
+    def __dask_tokenize__(self):
+        # without this dask hashes the loaders by pickling them: slow, and all that is
+        # needed is that two pieces of one graph never share a name
+        return self.token
 
     @property
     def length(self) -> int:

@@ -312,3 +312,19 @@ def test_drawing_follows_the_configured_engine(engine):
     assert not dk.partitioned(frame, ["x", "y"])
     with pytest.raises(OptionError):
         dk.configure("fast")
+
+
+@pytest.mark.parametrize("compiled", [True, False])
+def test_finite_stats_agree_with_numpy(compiled, monkeypatch):
+    from swarmaudit.core import _colstats
+    monkeypatch.setattr(_colstats, "MIN_VALUES", 0 if compiled else 10**12)
+    rng = np.random.default_rng(4)
+    a = rng.normal(size=5000)
+    a[[3, 70]] = np.nan
+    a[[9]] = -np.inf
+    for arr in (a, a.astype(np.float32), rng.integers(-5, 9, 100)):
+        fin = arr[np.isfinite(arr)] if arr.dtype.kind == "f" else arr
+        # outside reference: numpy min/max over the finite values, count of the others
+        assert _colstats.finite_stats(arr) == (float(fin.min()), float(fin.max()), arr.size - fin.size)
+    assert _colstats.finite_stats(np.full(10, np.nan)) == (None, None, 10)
+    assert _colstats.finite_stats(np.zeros(0)) == (None, None, 0)

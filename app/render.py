@@ -20,6 +20,7 @@ import datashader as ds
 import holoviews as hv
 
 from ..core import dask_backend
+from ..core._colstats import finite_stats
 from ..core.errors import OptionError
 
 REDUCTIONS = ("count", "sum", "mean")
@@ -77,18 +78,14 @@ def data_range(frame, col: str) -> tuple[float, float]:
     def compute():
         if dask_backend.partitioned(frame, [col]):
             return dask_backend.column_range(frame, col)
-        arr = _column(frame, col)
-        if arr.size == 0:
-            return (0.0, 1.0)
-        if arr.dtype.kind == "f":
-            fin = np.isfinite(arr)
-            if not fin.all():
-                if not fin.any():
-                    return (0.0, 1.0)
-                arr = arr[fin]
-        lo, hi = float(arr.min()), float(arr.max())
-        return (lo, hi)
+        lo, hi, _ = _stats(frame, col)
+        return (0.0, 1.0) if lo is None else (lo, hi)
     return _cached(frame, ("range", col), compute)
+
+
+def _stats(frame, col: str):
+    """(finite min, finite max, non-finite count) of a column: one pass, cached per frame."""
+    return _cached(frame, ("stats", col), lambda: finite_stats(_column(frame, col)))
 
 
 def padded_range(lo: float, hi: float) -> tuple[float, float]:
@@ -106,8 +103,8 @@ def _nonfinite(frame, cols) -> np.ndarray | None:
         bad = None
         for c in cols:
             arr = _column(frame, c)
-            if arr.dtype.kind != "f":
-                continue
+            if arr.dtype.kind != "f" or not _stats(frame, c)[2]:
+                continue   # the one-pass count says there is nothing to mask
             b = ~np.isfinite(arr)
             if b.any():
                 bad = b if bad is None else (bad | b)

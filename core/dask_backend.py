@@ -211,19 +211,26 @@ def _connect(address: str) -> DaskEngine:
     return DaskEngine("distributed", workers, client, address)
 
 
+def close_engine(eng: DaskEngine) -> None:
+    """Let an engine go: its thread pool, its connection, and a local cluster it started."""
+    with _engines_lock:
+        for k in [k for k, v in _engines.items() if v is eng]:
+            del _engines[k]
+    eng.close()
+    if eng.client is not None:
+        cluster = getattr(eng.client, "cluster", None) if eng.kind == "processes" else None
+        eng.client.close()
+        if cluster is not None:
+            cluster.close()
+
+
 @atexit.register
 def _close_engines():
     for eng in list(_engines.values()):
         try:
-            eng.close()
-            if eng.client is not None and eng.kind == "processes":
-                cluster = getattr(eng.client, "cluster", None)
-                eng.client.close()
-                if cluster is not None:
-                    cluster.close()
+            close_engine(eng)
         except Exception:   # shutting down: nothing useful to report
             pass
-    _engines.clear()
 
 
 # dask frames ---------------------------------------------------------------------------

@@ -328,3 +328,49 @@ def test_finite_stats_agree_with_numpy(compiled, monkeypatch):
         assert _colstats.finite_stats(arr) == (float(fin.min()), float(fin.max()), arr.size - fin.size)
     assert _colstats.finite_stats(np.full(10, np.nan)) == (None, None, 10)
     assert _colstats.finite_stats(np.zeros(0)) == (None, None, 0)
+
+
+def _rank_files(folder, data, cuts):
+    """Per-rank HDF5 files of one snapshot, as a simulation writes them."""
+    import h5py
+    step = folder / "step_000010"
+    step.mkdir(parents=True)
+    edges = [0, *cuts, len(data["x"])]
+    for r, (lo, hi) in enumerate(zip(edges[:-1], edges[1:])):
+        with h5py.File(step / f"rank_{r:03d}.h5", "w") as fh:
+            fh.attrs["step"] = 10
+            g = fh.create_group("electrons")
+            g.attrs["mass"] = 1.0
+            g.attrs["charge"] = -1.0
+            for c, a in data.items():
+                g[c] = a[lo:hi]
+    return folder
+
+
+def test_a_scheduler_in_other_processes_gives_the_same_answers(tmp_path):
+    # a real dask.distributed scheduler with a worker process: loaders, pieces and frame
+    # templates must travel by pickle, and the worker reads the files itself
+    from distributed import LocalCluster
+
+    from swarmaudit.diagnostics.census import block_census
+    from swarmaudit.readers.discover import open_run
+    data = _particles(6000)
+    run = open_run(str(_rank_files(tmp_path, data, [2000, 3500])))
+    frame = run[0].frame("electrons")
+    layout = regular_layout([0, 1, 0, 1], [8, 8], [4, 4], ranks=3)
+    with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None,
+                      silence_logs=40) as cluster:
+        eng = dk.client_for(address=cluster.scheduler_address)
+        try:
+            assert eng.kind == "distributed" and eng.workers == 1
+            got = dk.census_dask(frame, layout, engine=eng)["block"]
+            agg = dk.aggregate_dask(frame, "x", "y", width=20, height=10, engine=eng)
+        finally:
+            dk.close_engine(eng)
+    ids = assign_blocks([data["x"], data["y"]], layout)
+    pd.testing.assert_frame_equal(got, block_census(ids, layout, data["weight"]), check_exact=False,
+                                  rtol=1e-12)
+    h, _, _ = np.histogram2d(data["y"], data["x"], bins=(10, 20),
+                             range=[agg.attrs["y_range"], agg.attrs["x_range"]])
+    np.testing.assert_array_equal(agg.values, h)
+    assert frame.reads == 0          # every column was read in the worker process

@@ -28,7 +28,7 @@ FIGURE_DIR = "figures"
 #: share of the picture the density image itself covers (the rest is axes, title, colour bar)
 _IMAGE_SHARE = (0.78, 0.80)
 #: particles per pixel below which a view's grid is made coarser
-_PER_PIXEL = 2.0
+_PER_PIXEL = 6.0
 
 
 # options -------------------------------------------------------------------------------------
@@ -257,7 +257,7 @@ def view_ranges(ctx, frames, cols, layout, user) -> dict:
 def view_grid(opts: ExportOptions, xr_, yr_, equal: bool, particles: int | None = None) -> tuple[int, int]:
     """Aggregate size: the pixels the image covers, coarser for few particles.
 
-    With fewer particles than about two per pixel a full-resolution image is
+    With fewer particles than about six per pixel a full-resolution image is
     speckle; the grid is then made coarser (never below 64 bins a side) so
     the density reads. Kept to the data's shape when both axes are positions.
     """
@@ -478,13 +478,27 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
                        F.displacement_histogram(disp, steps, title))
             bar.step(f"displacement {a}-{b}")
 
+        # gate: judged before the drift figure, which marks what the gate judges ------------------
+        verdict = None
+        checked = None
+        if opts.rtol is not None:
+            chk = audit.check(ctx, opts.rtol, None)
+            verdict = Verdict(opts.rtol, bool(chk.ok), _headline(chk.lines))
+            res.verdict = chk
+            res.exit_code = 0 if chk.ok else 1
+            if getattr(chk, "table", None) is not None and len(chk.table):
+                checked = list(zip(chk.table["species"], chk.table["quantity"]))
+
         # drift -------------------------------------------------------------------------------------
         if drift_fig:
             title = f"{name} · totals against the first snapshot"
             add_figure(FigureRecord("drift", drift_fig, title, None, "all",
-                                    "relative drift of every total; band = ±rtol" if opts.rtol
-                                    else "relative drift of every total (no --rtol given)"),
-                       F.drift_curves(drift_df, opts.rtol, title))
+                                    "drift of every total against the first snapshot; band = "
+                                    "±rtol, crosses where a checked total first leaves it"
+                                    if opts.rtol else
+                                    "drift of every total against the first snapshot (no --rtol given)"),
+                       F.drift_curves(drift_df, opts.rtol, title, checked=checked,
+                                      xlabel=_time_label(run)))
             bar.step("drift")
         else:
             notes.append("the run has one snapshot: no drift figure")
@@ -507,13 +521,6 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
                                      label=label))
             bar.step(f"deposit {i}")
 
-        # gate --------------------------------------------------------------------------------------
-        verdict = None
-        if opts.rtol is not None:
-            chk = audit.check(ctx, opts.rtol, None)
-            verdict = Verdict(opts.rtol, bool(chk.ok), _headline(chk.lines))
-            res.verdict = chk
-            res.exit_code = 0 if chk.ok else 1
         for note in ctx.notes:
             if note not in notes:
                 notes.append(note)
@@ -610,6 +617,11 @@ def snapshot_deposit(ctx, i: int, species) -> np.ndarray:
 
 _DRIFT_COLUMNS = ("snapshot", "step", "time", "species", "quantity", "value", "reference",
                   "relative_drift")
+
+
+def _time_label(run) -> str:
+    unit = getattr(run[0], "time_unit", "") or ""
+    return f"time [{unit}]" if unit else "time"
 
 
 def _headline(lines) -> list[str]:

@@ -388,20 +388,29 @@ def _grid_columns(n: int) -> int:
     return n if n <= 3 else (2 if n == 4 else 3)
 
 
-def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str | None = None):
+def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str | None = None,
+                 checked=None, xlabel: str | None = None):
     """Relative drift of every total over the run against the ±rtol band.
 
     One panel per quantity (their sizes differ by orders of magnitude), one
     curve per species, the first snapshot outside the band marked with a cross.
+    ``checked`` — (species, quantity) pairs a gate judges — limits the marks
+    and the verdict in the title to those (a field energy is not conserved on
+    its own, so leaving the band is no failure); None judges every total.
     """
     df = drift_df.copy() if drift_df is not None else pd.DataFrame()
     if len(df):
         df["judged"] = judged_drift(df)
     if x is None:
         x = "time" if len(df) and "time" in df and df["time"].notna().all() else "snapshot"
-    xd = hv.Dimension(x, label=x)
+    xlabel = xlabel if (xlabel and x == "time") else x
+    xd = hv.Dimension(x, label=xlabel)
     yd = hv.Dimension("relative_drift", label="relative drift")
     exits = first_exits(df, rtol)
+    judged_pairs = None if checked is None else {(str(a), str(b)) for a, b in checked}
+    if judged_pairs is not None and len(exits):
+        keep = [(str(a), str(b)) in judged_pairs for a, b in zip(exits["species"], exits["quantity"])]
+        exits = exits[np.asarray(keep, dtype=bool)]
     species = list(dict.fromkeys(df["species"].astype(str))) if len(df) else []
     colour = {sp: CURVE_COLOURS[k % len(CURVE_COLOURS)] for k, sp in enumerate(species)}
     panels = []
@@ -440,12 +449,15 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
             parts.append(hv.Curve([], xd, yd))
         lo, hi = _drift_range(sub["judged"].to_numpy(dtype=float), rtol)
         name = q.replace("_", " ")
+        gated = judged_pairs is None or any(p[1] == q for p in judged_pairs)
         if not shown:
             name += " (no finite drift)"
         elif len(ex):
             name += f" (out at {int(ex['snapshot'].min())})"
+        elif not gated and rtol is not None:
+            name += " (unchecked)"
         panel = hv.Overlay(parts)
-        panels.append(_style(panel, common={"title": name, "ylim": (lo, hi), "xlabel": x,
+        panels.append(_style(panel, common={"title": name, "ylim": (lo, hi), "xlabel": xlabel,
                                             "ylabel": "relative drift", "show_legend": k == 0,
                                             "legend_position": "top_left"},
                              bokeh={"width": 330, "height": 240, "legend_cols": 1},
@@ -455,8 +467,9 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
     band_txt = f"band ±{rtol:g}" if rtol is not None else "no band given"
     if rtol is not None:
         n_out = len(exits)
-        verdict = (f"{n_out} total{'s' if n_out != 1 else ''} left the {band_txt}" if n_out
-                   else f"every total within the {band_txt}")
+        which = "total" if judged_pairs is None else "checked total"
+        verdict = (f"{n_out} {which}{'s' if n_out != 1 else ''} left the {band_txt}" if n_out
+                   else f"every {which} within the {band_txt}")
     else:
         verdict = band_txt
     full_title = f"{title}  ({verdict})" if title else verdict

@@ -213,29 +213,48 @@ def _fit(fig) -> None:
 
 
 def _fit_grid(fig, main, bars) -> None:
-    """A grid of panels: let matplotlib's tight layout place them under the title."""
-    import warnings
+    """A grid of panels: equal boxes, each column and row as wide as its labels need.
+
+    Decorations (tick labels, axis labels, titles wider than their box) are
+    measured per panel; every column gets room for its widest left and right
+    decoration, every row for its tallest top and bottom one, and the boxes
+    share what is left. The figure title sits above.
+    """
+    renderer = fig.canvas.get_renderer()
+    fw, fh = fig.bbox.width, fig.bbox.height
     title = getattr(fig, "_suptitle", None)
-    top = 1.0
+    top_px = _MARGIN * fh
     if title is not None and title.get_text():
-        renderer = fig.canvas.get_renderer()
-        _wrap(title, fig.bbox.width * (1 - 2 * _MARGIN), renderer)
-        h = title.get_window_extent(renderer).height / fig.bbox.height
+        _wrap(title, fw * (1 - 2 * _MARGIN), renderer)
         title.set_y(1 - _MARGIN)
         title.set_va("top")
-        top = 1 - _MARGIN - h - 0.01
-    # holoviews builds its grid with fixed spacing, which tight layout refuses to move;
-    # hand every panel the same cell of a plain grid instead
-    from matplotlib.gridspec import GridSpec
-    plain = {}
+        top_px += title.get_window_extent(renderer).height + 0.02 * fh
+    cells = []
     for ax in main:
         spec = ax.get_subplotspec()
         if spec is None:
-            continue
+            return
         gs = spec.get_gridspec()
-        new = plain.setdefault(id(gs), GridSpec(gs.nrows, gs.ncols, figure=fig))
-        r, c = spec.rowspan, spec.colspan
-        ax.set_subplotspec(new[r.start:r.stop, c.start:c.stop])
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        fig.tight_layout(rect=(_MARGIN, _MARGIN, 1 - _MARGIN, top), pad=0.4, h_pad=1.2, w_pad=1.0)
+        cells.append((ax, spec.rowspan.start, spec.colspan.start, gs.nrows, gs.ncols))
+    nrows = max(c[3] for c in cells)
+    ncols = max(c[4] for c in cells)
+    # decorations change a little with the box size (titles wider than it): measure twice
+    for _ in range(2):
+        dec_l, dec_r = np.zeros(ncols), np.zeros(ncols)
+        dec_t, dec_b = np.zeros(nrows), np.zeros(nrows)
+        for ax, r, c, _, _ in cells:
+            tb = ax.get_tightbbox(renderer)
+            bb = ax.get_window_extent(renderer)
+            dec_l[c] = max(dec_l[c], bb.x0 - tb.x0)
+            dec_r[c] = max(dec_r[c], tb.x1 - bb.x1)
+            dec_t[r] = max(dec_t[r], tb.y1 - bb.y1)
+            dec_b[r] = max(dec_b[r], bb.y0 - tb.y0)
+        gap = 0.015 * fw
+        width = (fw * (1 - 2 * _MARGIN) - dec_l.sum() - dec_r.sum() - gap * (ncols - 1)) / ncols
+        height = (fh - top_px - _MARGIN * fh - dec_t.sum() - dec_b.sum() - gap * (nrows - 1)) / nrows
+        if width < 0.05 * fw or height < 0.05 * fh:
+            return
+        for ax, r, c, _, _ in cells:
+            x0 = _MARGIN * fw + dec_l[:c + 1].sum() + dec_r[:c].sum() + c * (width + gap)
+            ytop = fh - top_px - dec_t[:r + 1].sum() - dec_b[:r].sum() - r * (height + gap)
+            ax.set_position([x0 / fw, (ytop - height) / fh, width / fw, height / fh])

@@ -673,7 +673,7 @@ def _facts(ctx, chosen, species) -> list[tuple[str, str]]:
     lay = ctx.layout(0)
     s = lay.summary()
     dom = " × ".join(f"[{a:g}, {b:g})" for a, b in zip(s["domain_lower"], s["domain_upper"]))
-    facts.append(("layout", f"{s['blocks']} blocks on level(s) {', '.join(map(str, s['levels']))}, "
+    facts.append(("layout (first snapshot)", f"{s['blocks']} blocks on level(s) {', '.join(map(str, s['levels']))}, "
                             f"{s['ranks']} rank(s), {s['ndim']}-D"))
     facts.append(("domain", f"{dom}; level-0 cells {' × '.join(map(str, s['cells']))}"
                             + (f"; periodic {', '.join(s['periodic'])}" if s["periodic"] else "")))
@@ -684,22 +684,45 @@ def _facts(ctx, chosen, species) -> list[tuple[str, str]]:
 
 def _sections(res, census_df, migration_df, summary_df, drift_df, FigureItem, Section, TableItem):
     def items(*kinds):
-        return [FigureItem(f.path, f.title, f.caption) for f in res.figures if f.kind in kinds]
+        return [FigureItem(f.path, f.title, f.caption, wide=f.kind == "drift")
+                for f in res.figures if f.kind in kinds]
 
     secs = []
     v = items("space", "phase")
     if v:
         secs.append(Section("Views", v, anchor="views",
-                            text=["Particle density, aggregated per pixel (no points drawn over each "
-                                  "other): every particle counts once."]))
-    secs.append(Section("Census", items("census_map", "rank_load"),
-                        [TableItem("census.csv", census_df, "census.csv")], anchor="census"))
-    secs.append(Section("Migration", items("transfer", "displacement"),
-                        [TableItem("migration_summary.csv", summary_df, "migration_summary.csv"),
-                         TableItem("migration.csv", migration_df, "migration.csv")],
-                        anchor="migration"))
+                            text=["Particle density, binned on a grid (no points drawn over each "
+                                  "other): every particle counts once. Views of the same columns share "
+                                  "their axis ranges, so snapshots compare directly."]))
+    def part(df, name, subset, mask=None, sort=None, **kw):
+        shown = df[mask] if mask is not None else df
+        if sort is not None and len(shown):
+            shown = shown.sort_values(sort, ascending=False, kind="stable")
+        return TableItem(name, shown, name, subset=subset if mask is not None else "",
+                         total_rows=len(df), **kw)
+
+    last = int(census_df["snapshot"].max()) if len(census_df) else 0
+    census_part = part(census_df, "census.csv", f"snapshot {last}, all species",
+                       (census_df["snapshot"] == last) & (census_df["species"] == "all")
+                       if len(census_df) else None)
+    secs.append(Section("Census", items("census_map", "rank_load"), [census_part], anchor="census"))
+    mig_tables = [part(summary_df, "migration_summary.csv", "all species",
+                       (summary_df["species"] == "all") if len(summary_df) else None, max_rows=40)]
+    if len(migration_df):
+        pair = migration_df["to_snapshot"].max()
+        moving = (migration_df["to_snapshot"] == pair) & (migration_df["species"] == "all") & \
+            (migration_df["from_block"] != migration_df["to_block"])
+        a = int(migration_df.loc[migration_df["to_snapshot"] == pair, "from_snapshot"].min())
+        mig_tables.append(part(migration_df, "migration.csv",
+                               f"snapshot {a} → {int(pair)}, all species, moves only, largest first",
+                               moving, sort="count"))
+    else:
+        mig_tables.append(TableItem("migration.csv", migration_df, "migration.csv"))
+    secs.append(Section("Migration", items("transfer", "displacement"), mig_tables, anchor="migration"))
     drift_show = drift_df[[c for c in _DRIFT_COLUMNS if c in drift_df]]
-    tables = [TableItem("drift.csv", drift_show, "drift.csv")]
+    lastd = int(drift_show["snapshot"].max()) if len(drift_show) else 0
+    tables = [part(drift_show, "drift.csv", f"the last snapshot ({lastd})",
+                   (drift_show["snapshot"] == lastd) if len(drift_show) else None, max_rows=60)]
     chk = res.verdict
     if chk is not None and getattr(chk, "table", None) is not None and len(chk.table):
         t = chk.table.rename(columns={"worst": "largest drift (%)", "at": "at snapshot",

@@ -32,6 +32,7 @@ class FigureItem:
     path: str
     title: str
     caption: str = ""
+    wide: bool = False          # spans the whole width of the page (panels of small plots)
 
 
 @dataclass
@@ -43,6 +44,8 @@ class TableItem:
     csv_name: str | None = None
     max_rows: int = MAX_ROWS
     caption: str = ""
+    subset: str = ""                 # what part of the full table ``frame`` is ("the last snapshot")
+    total_rows: int | None = None    # rows of the full table when ``frame`` is a part of it
 
 
 @dataclass
@@ -90,6 +93,7 @@ h3 { font-size:15px; margin:18px 0 6px; color:var(--muted); font-weight:600; }
 figure { margin:0; background:var(--card); border:1px solid var(--line); border-radius:6px;
          padding:8px; }
 figure img { width:100%; height:auto; display:block; }
+figure.wide { grid-column: 1 / -1; max-width: 1000px; justify-self: center; width: 100%; }
 figcaption { font-size:13px; color:var(--muted); padding:6px 4px 2px; }
 figcaption b { color:var(--ink); font-weight:600; }
 .table-wrap { overflow-x:auto; background:var(--card); border:1px solid var(--line);
@@ -121,6 +125,8 @@ def png_data_uri(path: str) -> str:
 
 
 def _format_cell(v) -> str:
+    if v is None or v is pd.NA or v is pd.NaT:
+        return "–"
     if isinstance(v, float):
         if v != v:
             return "–"
@@ -153,12 +159,21 @@ def table_html(item: TableItem) -> str:
         body.append("<tr>" + "".join(cells) + "</tr>")
     out = [f"<div class='table-wrap'><table class='data'><thead><tr>{head}</tr></thead>"
            f"<tbody>{''.join(body)}</tbody></table></div>"]
+    link = (f"<a href='{_e(item.csv_name)}'>{_e(item.csv_name)}</a>" if item.csv_name else "")
+    bits = []
+    if item.subset:
+        bits.append(f"Rows of {_e(item.subset)}")
     if n > item.max_rows:
-        link = (f" The full table is in <a href='{_e(item.csv_name)}'>{_e(item.csv_name)}</a>."
-                if item.csv_name else "")
-        out.append(f"<p class='trim'>First {item.max_rows:,} of {n:,} rows shown.{link}</p>")
-    elif item.csv_name:
-        out.append(f"<p class='trim'>Also in <a href='{_e(item.csv_name)}'>{_e(item.csv_name)}</a>.</p>")
+        bits.append(f"first {item.max_rows:,} of {n:,} shown" if bits else
+                    f"First {item.max_rows:,} of {n:,} rows shown")
+    text = ", ".join(bits) + ("." if bits else "")
+    if link:
+        total = item.total_rows if item.total_rows is not None else n
+        full = "The full table" if (bits or total != n) else "Also in"
+        text += (f" {full} ({total:,} rows) is in {link}." if full == "The full table"
+                 else f"Also in {link}.")
+    if text.strip():
+        out.append(f"<p class='trim'>{text.strip()}</p>")
     if not n:
         out.append("<p class='trim'>No rows.</p>")
     return "\n".join(out)
@@ -174,7 +189,8 @@ def _section_html(sec: Section) -> str:
         for f in sec.figures:
             cap = f"<b>{_e(f.title)}</b>" + (f" — {_e(f.caption)}" if f.caption else "")
             name = os.path.basename(f.path)
-            parts.append(f"<figure><img src='{png_data_uri(f.path)}' alt='{_e(f.title)}' "
+            cls = " class='wide'" if f.wide else ""
+            parts.append(f"<figure{cls}><img src='{png_data_uri(f.path)}' alt='{_e(f.title)}' "
                          f"data-file='{_e(name)}'><figcaption>{cap}</figcaption></figure>")
         parts.append("</div>")
     for t in sec.tables:

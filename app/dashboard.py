@@ -67,6 +67,11 @@ def _message_element(text: str, x_range=(0, 1), y_range=(0, 1)):
     return hv.Text(x, y, text).opts(backend="bokeh", text_color="#9a3412", text_font_size="11pt")
 
 
+def bin_factor(n: int) -> int:
+    """Screen pixels per bin side: 1 for big runs, up to 4 for a few hundred particles."""
+    return 1 if n >= 50_000 else (2 if n >= 5_000 else 4)
+
+
 def _highlight(img):
     # 1 = selected pixel, 0 = none; below the colour range is transparent, so no NaN is needed
     return img.opts(backend="bokeh", cmap=HIGHLIGHT, colorbar=False, alpha=0.9, clim=(0.5, 1.5),
@@ -185,7 +190,9 @@ class Dashboard(param.Parameterized):
                                 "mean": ("mean", s.color_column)}[s.color_by]
             if reduction == "sum" and value is None:
                 reduction = "count"   # no weight column: every weight is 1
-            agg = render.aggregate_points(frame, xcol, ycol, width=VIEW_W, height=VIEW_H,
+            # few particles: coarser bins so a lone particle is a visible dot, not one pixel
+            k = bin_factor(frame.length)
+            agg = render.aggregate_points(frame, xcol, ycol, width=VIEW_W // k, height=VIEW_H // k,
                                           x_range=x_range, y_range=y_range, reduction=reduction,
                                           value=value, slab=slab)
         except SwarmAuditError as exc:
@@ -205,8 +212,8 @@ class Dashboard(param.Parameterized):
         extra = ""
         if agg.attrs["nonfinite"]:
             extra = f" · **{agg.attrs['nonfinite']:,} with NaN/inf coordinates left out**"
-        status.object = (f"{agg.attrs['particles']:,} particles binned on {VIEW_W}×{VIEW_H} "
-                         f"pixels{extra}")
+        ny, nx = agg.shape
+        status.object = f"{agg.attrs['particles']:,} particles binned on {nx}×{ny} bins{extra}"
         return img * sel_img * blocks * box
 
     def _empty_overlay(self, which, xr_, yr_, text):
@@ -225,7 +232,8 @@ class Dashboard(param.Parameterized):
             return _highlight(nothing), empty_box
         sx, sy = self._axes(select_view)
         mask = render.box_mask(frame, sx, sy, select_box)
-        agg = render.aggregate_points(frame, xcol, ycol, width=VIEW_W, height=VIEW_H,
+        k = bin_factor(frame.length)
+        agg = render.aggregate_points(frame, xcol, ycol, width=VIEW_W // k, height=VIEW_H // k,
                                       x_range=x_range, y_range=y_range, mask=mask, slab=slab)
         data = (np.asarray(agg.values) > 0).astype(np.float64)
         sel = _highlight(hv.Image((agg.coords[agg.dims[1]].values, agg.coords[agg.dims[0]].values,

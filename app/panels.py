@@ -23,6 +23,9 @@ from .state import ALL_SPECIES, RESULTS, SIDE_PANELS, ViewState
 
 TAB_TITLES = {"blocks": "Blocks", "moves": "Moves", "totals": "Totals", "histogram": "Histogram"}
 
+#: size of each side figure on the page (two side by side beside the controls)
+SIDE_W, SIDE_H = 560, 400
+
 _small_cache: dict = {}
 _small_lock = threading.Lock()
 
@@ -37,6 +40,11 @@ def _cached(key, compute):
             _small_cache.clear()
         _small_cache[key] = value
     return value
+
+
+def _fit(obj, width=SIDE_W, height=SIDE_H):
+    """The figure at the page's size (the builders' default size suits a report)."""
+    return obj.opts(width=width, height=height, backend="bokeh")
 
 
 def _note(text: str, kind: str = "info"):
@@ -103,8 +111,8 @@ class SidePanels(param.Parameterized):
             return _note("The block census is not available in this build.")
         except SwarmAuditError as exc:
             return _note(f"No census for snapshot {i}: {exc}", "warning")
-        cmap = figures.census_map(blocks, layout, title="particles per block")
-        bars = figures.rank_bars(ranks, imb, title="particles per rank")
+        cmap = _fit(figures.census_map(blocks, layout, title="particles per block"))
+        bars = _fit(figures.rank_bars(ranks, imb, title="particles per rank"))
         facts = _imbalance_facts(imb, blocks, layout)
         table = pn.widgets.Tabulator(whatif, disabled=True, show_index=False, height=180,
                                      sizing_mode="stretch_width", layout="fit_data_stretch") \
@@ -147,8 +155,8 @@ class SidePanels(param.Parameterized):
     def _show_moves(self, res, a, b):
         table, summary, disp, steps = res
         s = self.state
-        heat = figures.transfer_heatmap(table, title=f"block to block, {a} → {b}")
-        hist = figures.displacement_histogram(disp, steps, title="displacement")
+        heat = _fit(figures.transfer_heatmap(table, title=f"block to block, {a} → {b}"))
+        hist = _fit(figures.displacement_histogram(disp, steps, title="displacement"))
         facts = _moves_facts(summary)
         return pn.Column(pn.pane.Markdown(facts, styles={"font-size": "13px"}),
                          pn.Row(pn.pane.HoloViews(heat, backend="bokeh", linked_axes=False),
@@ -212,9 +220,9 @@ class SidePanels(param.Parameterized):
         w = frame.per_particle("weight", None)
         from .render import axis_label
         bad = int(np.count_nonzero(~np.isfinite(values))) if values.dtype.kind == "f" else 0
-        fig = figures.histogram_1d(values, weights=w, bins=80,
-                                   title=f"{col} of {s.species} (snapshot {s.snapshot})",
-                                   xlabel=axis_label(frame, col))
+        fig = _fit(figures.histogram_1d(values, weights=w, bins=80,
+                                        title=f"{col} of {s.species} (snapshot {s.snapshot})",
+                                        xlabel=axis_label(frame, col)), width=760)
         note = pn.pane.Markdown(f"{bad:,} NaN/inf values left out." if bad else "",
                                 styles={"font-size": "13px"})
         return pn.Column(pick, pn.pane.HoloViews(fig, backend="bokeh", linked_axes=False), note)

@@ -223,33 +223,38 @@ RESULTS = Results()
 
 # ---------------------------------------------------------------------------
 class ViewState(param.Parameterized):
-    """The whole view of one dashboard session; what a shared link encodes."""
+    """The whole view of one dashboard session; what a shared link encodes.
 
-    run = param.Selector(objects=[], doc="name of the run shown (one of the served runs)")
+    Every choice is a Selector that checks on set (its list is filled from the
+    served runs and their columns), so a value from a URL that is not on the
+    list is refused by the parameter itself, whoever sets it.
+    """
+
+    run = param.Selector(check_on_set=True, objects=[], doc="name of the run shown (one of the served runs)")
     snapshot = param.Integer(0, bounds=(0, 0), doc="position of the snapshot in the run")
-    species = param.Selector(objects=[], doc="species shown, or 'all'")
-    space_x = param.Selector(objects=[], doc="horizontal axis of the spatial view")
-    space_y = param.Selector(objects=[], doc="vertical axis of the spatial view")
-    phase_x = param.Selector(objects=[], doc="horizontal axis of the phase-space view")
-    phase_y = param.Selector(objects=[], doc="vertical axis of the phase-space view")
+    species = param.Selector(check_on_set=True, objects=[], doc="species shown, or 'all'")
+    space_x = param.Selector(check_on_set=True, objects=[], doc="horizontal axis of the spatial view")
+    space_y = param.Selector(check_on_set=True, objects=[], doc="vertical axis of the spatial view")
+    phase_x = param.Selector(check_on_set=True, objects=[], doc="horizontal axis of the phase-space view")
+    phase_y = param.Selector(check_on_set=True, objects=[], doc="vertical axis of the phase-space view")
     space_xr = param.Range(None, allow_None=True, doc="visible range of space_x (None: all)")
     space_yr = param.Range(None, allow_None=True)
     phase_xr = param.Range(None, allow_None=True)
     phase_yr = param.Range(None, allow_None=True)
-    color_by = param.Selector(default="count", objects=list(COLOR_BY),
+    color_by = param.Selector(check_on_set=True, default="count", objects=list(COLOR_BY),
                               doc="count per pixel, summed weight, or mean of color_column")
-    color_column = param.Selector(objects=[], doc="column averaged when color_by is 'mean'")
-    scaling = param.Selector(default="eq_hist", objects=list(SCALINGS))
-    cmap = param.Selector(default="magma", objects=list(CMAPS))
-    slab_axis = param.Selector(default="", objects=[""], doc="third axis cut into a slab (3-D runs)")
+    color_column = param.Selector(check_on_set=True, objects=[], doc="column averaged when color_by is 'mean'")
+    scaling = param.Selector(check_on_set=True, default="eq_hist", objects=list(SCALINGS))
+    cmap = param.Selector(check_on_set=True, default="magma", objects=list(CMAPS))
+    slab_axis = param.Selector(check_on_set=True, default="", objects=[""], doc="third axis cut into a slab (3-D runs)")
     slab_range = param.Range(None, allow_None=True, doc="lo <= slab_axis < hi")
-    blocks = param.Selector(default="outline", objects=list(BLOCK_MODES))
-    side = param.Selector(default="blocks", objects=list(SIDE_PANELS))
+    blocks = param.Selector(check_on_set=True, default="outline", objects=list(BLOCK_MODES))
+    side = param.Selector(check_on_set=True, default="blocks", objects=list(SIDE_PANELS))
     compare_to = param.Integer(-1, bounds=(-1, None), doc="migration reference snapshot (-1: previous)")
     rtol = param.Number(1e-3, bounds=(0, None), inclusive_bounds=(False, True),
                         doc="tolerance band of the drift panel")
-    hist_column = param.Selector(objects=[], doc="column of the 1-D histogram")
-    select_view = param.Selector(default="", objects=list(SELECT_VIEWS))
+    hist_column = param.Selector(check_on_set=True, objects=[], doc="column of the 1-D histogram")
+    select_view = param.Selector(check_on_set=True, default="", objects=list(SELECT_VIEWS))
     select_box = param.NumericTuple(None, length=4, allow_None=True,
                                     doc="(x0, y0, x1, y1) of the selection in select_view's axes")
 
@@ -258,11 +263,17 @@ class ViewState(param.Parameterized):
         names = self._runs.names
         if not names:
             raise SwarmAuditError("no run to show")
-        self.param.run.objects = names
-        params.setdefault("run", names[0])
+        self._adjusting = True     # no watcher runs before the choices exist
+        super().__init__()
+        self.param.run.objects = names     # per instance: sessions of other servers differ
+        run = params.pop("run", names[0])
         self._adjusting = False
-        super().__init__(run=params.pop("run"))
-        self._refresh_choices(reset_axes=True)
+        if run == self.run:
+            self._refresh_choices(reset_axes=True)
+        else:
+            self.run = run                 # the watcher fills the choices
+        if self.run != run:
+            raise ValueError(f"not a served run: {run!r}")
         if params:
             self.param.update(**params)
 
@@ -333,7 +344,8 @@ class ViewState(param.Parameterized):
                 species = [""]
             self.param.species.objects = species
             if self.species not in species:
-                self.species = species[0]
+                # several species: show them together first (a two-beam run reads as one picture)
+                self.species = ALL_SPECIES if ALL_SPECIES in species else species[0]
             cols = self.columns()
             try:
                 frame = self.frame()

@@ -23,14 +23,14 @@ def _unflatten(flat: np.ndarray, shape) -> list[np.ndarray]:
 
 
 def _per_axis(cell_ids, shape):
+    """Per-axis cell indices, or None for flat numbers without a grid shape."""
     if isinstance(cell_ids, (tuple, list)):
         return [np.asarray(c, dtype=np.int64) for c in cell_ids]
     a = np.asarray(cell_ids)
     if a.ndim == 2:
         return [a[:, i].astype(np.int64) for i in range(a.shape[1])]
     if shape is None:
-        # without the grid shape only "same cell" can be told apart
-        return [a.astype(np.int64)]
+        return None
     return _unflatten(a.astype(np.int64), [int(s) for s in shape])
 
 
@@ -39,15 +39,17 @@ def locality_score(cell_ids, shape=None) -> float:
 
     ``cell_ids`` are per-axis integer cell indices (a tuple of arrays or an
     ``(N, d)`` array), or flat cell numbers (x fastest) with ``shape`` the
-    cells per axis. NaN for fewer than two particles.
+    cells per axis; flat numbers without ``shape`` can only tell "same cell".
+    NaN for fewer than two particles.
     """
     axes = _per_axis(cell_ids, shape)
+    if axes is None:
+        flat = np.asarray(cell_ids)
+        n = flat.shape[0]
+        return float(np.count_nonzero(flat[1:] == flat[:-1]) / (n - 1)) if n >= 2 else float("nan")
     n = axes[0].shape[0]
     if n < 2:
         return float("nan")
-    if len(axes) == 1 and shape is None and not isinstance(cell_ids, (tuple, list)) \
-            and np.asarray(cell_ids).ndim == 1:
-        return float(np.count_nonzero(axes[0][1:] == axes[0][:-1]) / (n - 1))
     manhattan = np.zeros(n - 1, dtype=np.int64)
     for c in axes:
         manhattan += np.abs(np.diff(c))

@@ -192,13 +192,8 @@ def _sorted_match(ka, kb):
     return KeyMatch(ia, ib.astype(np.int64), lost, created)
 
 
-def match_keys(keys_a, keys_b) -> KeyMatch:
-    """Match particles of two snapshots by key (any order on either side).
-
-    A key is one array or a tuple of arrays (a composite key such as
-    ``(id, creator_rank)``). Keys that are NaN never match. Raises
-    :class:`DuplicateKeyError` when a key repeats within a snapshot.
-    """
+def _plan(keys_a, keys_b):
+    """("dense", ka, kb, span) when the keys pack into a dense range, else ("done", KeyMatch)."""
     comps_a, comps_b = _components(keys_a), _components(keys_b)
     if len(comps_a) != len(comps_b):
         raise ValueError("both snapshots need the same number of key columns")
@@ -206,19 +201,32 @@ def match_keys(keys_a, keys_b) -> KeyMatch:
     if packed is None:
         ca, cb = _codes_by_sorting(comps_a, comps_b)
         span = int(max(ca.max(initial=-1), cb.max(initial=-1))) + 1
-        return _dense_match(ca, cb, max(span, 1))
+        return ("done", _dense_match(ca, cb, max(span, 1)))
     ka, kb = packed
     if ka.size == 0 and kb.size == 0:
         e = np.zeros(0, dtype=np.int64)
-        return KeyMatch(e, e, e, e)
+        return ("done", KeyMatch(e, e, e, e))
     lo = min(int(ka.min(initial=2 ** 62)), int(kb.min(initial=2 ** 62)))
     hi = max(int(ka.max(initial=-2 ** 62)), int(kb.max(initial=-2 ** 62)))
     span = hi - lo + 1
     if span <= 2 * (ka.size + kb.size) + 4096:
         if lo != 0:
             ka, kb = ka - lo, kb - lo
-        return _dense_match(ka, kb, span)
-    return _sorted_match(ka, kb)
+        return ("dense", ka, kb, span)
+    return ("done", _sorted_match(ka, kb))
+
+
+def match_keys(keys_a, keys_b) -> KeyMatch:
+    """Match particles of two snapshots by key (any order on either side).
+
+    A key is one array or a tuple of arrays (a composite key such as
+    ``(id, creator_rank)``). Keys that are NaN never match. Raises
+    :class:`DuplicateKeyError` when a key repeats within a snapshot.
+    """
+    plan = _plan(keys_a, keys_b)
+    if plan[0] == "done":
+        return plan[1]
+    return _dense_match(*plan[1:])
 
 
 # block-to-block moves ----------------------------------------------------------------
@@ -297,9 +305,8 @@ def matched_displacement(pos_a, pos_b, ia, ib, layout: BlockLayout) -> np.ndarra
     if len(pos_a) != layout.ndim or len(pos_b) != layout.ndim:
         raise ValueError(f"positions need {layout.ndim} axes for this layout")
     if _kernels.available and ia.shape[0] >= _kernels.MIN_SIZE and layout.ndim <= 3:
-        return _kernels.displacement([np.asarray(p) for p in pos_a], [np.asarray(p) for p in pos_b],
-                                     ia, ib, layout.cell_size, layout.periodic,
-                                     layout.cells.astype(np.float64))
+        return _kernels.matched_pairs(ia, ib, None, [np.asarray(p) for p in pos_a],
+                                      [np.asarray(p) for p in pos_b], layout)[1]
     return displacement_cells([np.asarray(p)[ia] for p in pos_a], [np.asarray(p)[ib] for p in pos_b], layout)
 
 
@@ -357,18 +364,29 @@ def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: Bl
     ``over_one_cell`` counts matched particles whose displacement per step
     exceeds one cell: an explicit pusher should keep them below.
     """
-    m = match_keys(keys_a, keys_b)
     block_a = np.asarray(block_a)
     block_b = np.asarray(block_b)
+    with_pos = pos_a is not None and pos_b is not None and layout is not None
+    pa = [np.asarray(p) for p in pos_a] if with_pos else None
+    pb = [np.asarray(p) for p in pos_b] if with_pos else None
+    fast = (_kernels.available and max(block_a.shape[0], block_b.shape[0]) >= _kernels.MIN_SIZE
+            and (not with_pos or (layout.ndim <= 3 and len(pa) == len(pb) == layout.ndim)))
+    m = match_keys(keys_a, keys_b)
+    disp = None
+    if fast and with_pos:
+        # the b side's block and displacement gathered in one pass over the pairs
+        tb, disp = _kernels.matched_pairs(m.ia, m.ib, block_b, pa, pb, layout)
+    else:
+        tb = block_b[m.ib]
     fb = block_a[m.ia]
-    tb = block_b[m.ib]
     migrated = int(np.count_nonzero(fb != tb))
     transfer = transfer_matrix(fb, tb)
     nsteps = int(steps) if steps is not None and np.isfinite(steps) and steps >= 1 else 1
     notes = []
     max_disp, over, nonfinite = np.nan, 0, 0
-    if pos_a is not None and pos_b is not None and layout is not None:
-        disp = matched_displacement(pos_a, pos_b, m.ia, m.ib, layout)
+    if with_pos:
+        if disp is None:
+            disp = matched_displacement(pa, pb, m.ia, m.ib, layout)
         finite = np.isfinite(disp)
         nonfinite = int(disp.size - np.count_nonzero(finite))
         if nonfinite:
@@ -376,8 +394,6 @@ def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: Bl
                          "their displacement is left out")
         if disp.size - nonfinite:
             max_disp = float(np.max(disp, where=finite, initial=0.0))
-        elif disp.size == 0:
-            max_disp = np.nan
         over = int(np.count_nonzero(disp[finite] / nsteps > 1.0))
     if rank_a is not None:
         ra = np.asarray(rank_a)[m.ia]

@@ -36,3 +36,8 @@ def test_already_sorted_order_says_so():
     rep = locality_report([x], lay)
     assert rep["score"] == pytest.approx(1.0)
     assert "already" in rep["hint"]
+
+
+def test_flat_numbers_without_shape_only_count_same_cells():
+    # by hand: 5,5 same; 5,6 differ (could be neighbours, cannot tell without the shape); 6,6 same
+    assert locality_score(np.array([5, 5, 6, 6])) == pytest.approx(2 / 3)

@@ -219,3 +219,21 @@ def test_compiled_displacement_identical(monkeypatch):
     slow = matched_displacement(pa, pb, ia, ib, lay)
     np.testing.assert_array_equal(fast, slow)
     assert np.isnan(fast).sum() == 2
+
+
+def test_compiled_migrate_identical(monkeypatch):
+    if not _kernels.available:
+        pytest.skip("numba not installed")
+    rng = np.random.default_rng(12)
+    lay = regular_layout([0, 1, 0, 1], [32, 32], [4, 4], periodic=("y",), ranks=3)
+    a, b = _runs(rng, _kernels.MIN_SIZE + 300)
+    pa = [rng.random(a.size), rng.random(a.size)]
+    pb = [rng.random(b.size).astype(np.float32), rng.random(b.size)]
+    from swarmaudit.core.layout import assign_blocks
+    ba, bb = assign_blocks(pa, lay), assign_blocks(pb, lay)
+    fast = migrate(a, b, ba, bb, pa, pb, lay, steps=2)
+    monkeypatch.setattr(_kernels, "available", False)
+    slow = migrate(a, b, ba, bb, pa, pb, lay, steps=2)
+    assert fast.summary() == slow.summary()
+    pd.testing.assert_frame_equal(fast.transfer, slow.transfer)
+    pd.testing.assert_frame_equal(fast.traffic, slow.traffic)

@@ -92,7 +92,7 @@ class Dashboard(param.Parameterized):
         self.problem = pn.pane.Alert("", alert_type="warning", visible=False, margin=(4, 8))
         self.selection_info = pn.pane.Markdown("", styles={"font-size": "12.5px"}, margin=(0, 10),
                                                width=300)
-        self.link_text = pn.widgets.TextInput(name="", value="", sizing_mode="stretch_width",
+        self.link_text = pn.widgets.TextInput(label="", value="", sizing_mode="stretch_width",
                                               styles={"font-size": "12px"})
         self._base_url = ""
         state.param.watch(self._update_link, list(state.param))
@@ -116,7 +116,11 @@ class Dashboard(param.Parameterized):
     def _check_snapshot(self, *events):
         s = self.state
         try:
-            s.frame()
+            frame = s.frame()
+            # the columns of the spatial view are read now anyway; a damaged dataset shows here
+            for col in (s.space_x, s.space_y):
+                if col:
+                    frame[col]
         except SwarmAuditError as exc:
             self.problem.object = f"**Snapshot {s.snapshot} cannot be shown.** {exc}"
             self.problem.visible = True
@@ -197,6 +201,8 @@ class Dashboard(param.Parameterized):
                                           value=value, slab=slab)
         except SwarmAuditError as exc:
             status.object = f"⚠ {exc}"
+            self.problem.object = f"**Snapshot {s.snapshot if snapshot is None else snapshot} cannot be shown.** {exc}"
+            self.problem.visible = True
             xr_ = tuple(x_range) if x_range else (0, 1)
             yr_ = tuple(y_range) if y_range else (0, 1)
             return self._empty_overlay(which, xr_, yr_, str(exc))
@@ -316,7 +322,7 @@ class Dashboard(param.Parameterized):
     def controls(self):
         s = self.state
         n = s.nsnapshots
-        player = pn.widgets.Player(name="", start=0, end=max(n - 1, 1), value=s.snapshot,
+        player = pn.widgets.Player(label="", start=0, end=max(n - 1, 1), value=s.snapshot,
                                    interval=900, loop_policy="once", show_loop_controls=False,
                                    disabled=n < 2, sizing_mode="stretch_width",
                                    scale_buttons=0.85,
@@ -335,32 +341,32 @@ class Dashboard(param.Parameterized):
             player.param.update(end=max(m - 1, 1), disabled=m < 2, value=s.snapshot)
         s.param.watch(on_run, "run")
 
-        run_select = pn.widgets.Select.from_param(s.param.run, name="Run",
+        run_select = pn.widgets.Select.from_param(s.param.run, label="Run",
                                                   sizing_mode="stretch_width")
         run_select.visible = len(self.runs) > 1
         w = {}
         for p, label in (("species", "Species"), ("space_x", "Space: across"),
                          ("space_y", "Space: up"), ("phase_x", "Phase: across"),
                          ("phase_y", "Phase: up"), ("color_column", "Mean of column")):
-            w[p] = pn.widgets.Select.from_param(s.param[p], name=label, sizing_mode="stretch_width")
+            w[p] = pn.widgets.Select.from_param(s.param[p], label=label, sizing_mode="stretch_width")
         color = pn.widgets.RadioButtonGroup.from_param(
             s.param.color_by, options={"count": "count", "weight": "weight", "mean": "mean"},
-            button_type="light", sizing_mode="stretch_width")
+            color="light", sizing_mode="stretch_width")
         scale = pn.widgets.RadioButtonGroup.from_param(
             s.param.scaling, options={"eq. hist": "eq_hist", "log": "log", "linear": "linear"},
-            button_type="light", sizing_mode="stretch_width")
-        cmap = pn.widgets.Select.from_param(s.param.cmap, name="Colours", options=list(CMAPS),
+            color="light", sizing_mode="stretch_width")
+        cmap = pn.widgets.Select.from_param(s.param.cmap, label="Colours", options=list(CMAPS),
                                             sizing_mode="stretch_width")
         blocks = pn.widgets.RadioButtonGroup.from_param(s.param.blocks, options=list(BLOCK_MODES),
-                                                        button_type="light",
+                                                        color="light",
                                                         sizing_mode="stretch_width")
         w["color_column"].visible = s.color_by == "mean"
         s.param.watch(lambda e: setattr(w["color_column"], "visible", e.new == "mean"), "color_by")
         slab_box = self._slab_controls()
-        whole = pn.widgets.Button(name="Whole view", button_type="default",
+        whole = pn.widgets.Button(label="Whole view", color="default",
                                   sizing_mode="stretch_width")
         whole.on_click(self.whole_view)
-        clear = pn.widgets.Button(name="Clear selection", button_type="default",
+        clear = pn.widgets.Button(label="Clear selection", color="default",
                                   sizing_mode="stretch_width")
         clear.on_click(self.clear_selection)
         return pn.Column(
@@ -398,7 +404,7 @@ class Dashboard(param.Parameterized):
             lo, hi = render.padded_range(lo, hi)
             hi = hi + (hi - lo) * 1e-9
             value = s.slab_range or (lo, hi)
-            slider = pn.widgets.RangeSlider(name=f"Slab of {s.slab_axis}", start=lo, end=hi,
+            slider = pn.widgets.RangeSlider(label=f"Slab of {s.slab_axis}", start=lo, end=hi,
                                             value=(max(lo, value[0]), min(hi, value[1])),
                                             step=(hi - lo) / 200, sizing_mode="stretch_width")
             slider.param.watch(lambda e: s.param.update(slab_range=tuple(e.new)), "value_throttled")
@@ -409,7 +415,7 @@ class Dashboard(param.Parameterized):
 
     def header(self):
         s = self.state
-        copy = pn.widgets.Button(name="Copy link", button_type="warning", width=120,
+        copy = pn.widgets.Button(label="Copy link", color="warning", width=120,
                                  margin=(14, 12, 8, 4))
         copy.js_on_click(args={"box": self.link_text}, code="""
 const url = window.location.href;

@@ -137,7 +137,7 @@ class SidePanels(param.Parameterized):
         ref = s.compare_to if s.compare_to >= 0 else i - 1
         options = {"previous snapshot": -1}
         options.update({s.served.describe(k): k for k in range(n)})
-        pick = pn.widgets.Select(name="Compare with", options=options, value=s.compare_to,
+        pick = pn.widgets.Select(label="Compare with", options=options, value=s.compare_to,
                                  width=320)
         pick.param.watch(lambda e: s.param.update(compare_to=e.new), "value")
         if ref < 0 or ref == i:
@@ -172,7 +172,7 @@ class SidePanels(param.Parameterized):
             self._totals.objects = []
             return _note("This run has one snapshot: a drift needs at least two, so totals are "
                          "not shown.")
-        rtol = pn.widgets.FloatInput(name="Tolerance (relative)", value=s.rtol, start=1e-15,
+        rtol = pn.widgets.FloatInput(label="Tolerance (relative)", value=s.rtol, start=1e-15,
                                      step=1e-4, width=200)
         rtol.param.watch(lambda e: s.param.update(rtol=float(e.new)) if e.new and e.new > 0 else None,
                          "value")
@@ -209,7 +209,7 @@ class SidePanels(param.Parameterized):
     def histogram_panel(self):
         s = self.state
         col = s.hist_column
-        pick = pn.widgets.Select.from_param(s.param.hist_column, name="Column", width=240)
+        pick = pn.widgets.Select.from_param(s.param.hist_column, label="Column", width=240)
         try:
             frame = s.frame()
             values = frame[col]

@@ -20,6 +20,7 @@ import numpy as np
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot
+from ..core.partitions import sliceable
 from ..core.roles import _VECTOR_STEMS
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        make_snapshot, native, reject_non_numeric, scalar_value, split_scalars, take_field)
@@ -112,7 +113,7 @@ class _Scan:
                     continue
                 label = col if col not in table.loaders else f"{name}/{col}"
                 if reject_non_numeric(self.path, label, fdt, f"field '{col}' of {where}", self.warnings):
-                    table.add(label, shape[0], _loader(self.path, ds.name, field=(fpath, comp)),
+                    table.add(label, shape[0], _loader(self.path, ds.name, field=(fpath, comp), dtype=fdt),
                               _text(ds.name), unit)
             return
         if len(shape) > 2 or (len(shape) == 2 and not 1 <= shape[1] <= MAX_COMPONENTS):
@@ -123,7 +124,8 @@ class _Scan:
             return
         self._check_stored(ds)
         for k, col in enumerate(names):
-            table.add(col, shape[0], _loader(self.path, ds.name, comp=None if len(shape) == 1 else k),
+            table.add(col, shape[0], _loader(self.path, ds.name, comp=None if len(shape) == 1 else k,
+                                                  dtype=dtype),
                       _text(ds.name), unit)
 
     # groups -> tables ---------------------------------------------------------
@@ -235,14 +237,19 @@ def _read_scalar(ds):
         return None
 
 
-def _loader(path: str, dsname: str, comp: int | None = None, field=None):
-    """Read one column: the whole 1-D dataset, one column slice, or one compound field."""
-    def load() -> np.ndarray:
+def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=None):
+    """Read one column: the whole 1-D dataset, one column slice, or one compound field.
+
+    The loader can also read rows ``[start, stop)`` alone (a hyperslab), for
+    partitioned engines that split one big file into row ranges.
+    """
+    def load(rows=None) -> np.ndarray:
         import h5py
         try:
             with h5py.File(path, "r") as fh:
                 ds = fh[dsname]
-                n = int(ds.shape[0])
+                sl = slice(None) if rows is None else slice(*rows)
+                n = len(range(*sl.indices(int(ds.shape[0]))))
                 if field is not None:
                     fpath, fcomp = field
                     sub = ds.dtype
@@ -250,10 +257,14 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None):
                         sub = sub.fields[name][0]
                     check_fits_memory(path, f"dataset '{dsname}'", n * sub.itemsize)
                     # h5py converts only the named field: the other fields never reach memory
-                    arr = take_field(ds[fpath[0]], fpath[1:], fcomp)
+                    got = ds[fpath[0]] if rows is None else ds[fpath[0], sl]
+                    arr = take_field(got, fpath[1:], fcomp)
                 else:
                     check_fits_memory(path, f"dataset '{dsname}'", n * ds.dtype.itemsize)
-                    arr = ds[()] if comp is None else ds[:, comp]
+                    if rows is None:
+                        arr = ds[()] if comp is None else ds[:, comp]
+                    else:
+                        arr = ds[sl] if comp is None else ds[sl, comp]
         except SwarmAuditError:
             raise
         except MemoryError:
@@ -264,7 +275,8 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None):
         arr = native(np.ascontiguousarray(arr))
         arr.flags.writeable = False     # like the other readers' columns: the frame's cache is shared
         return arr
-    return load
+    hint = None if dtype is None else np.dtype(dtype).newbyteorder("=")
+    return sliceable(lambda: load(), lambda start, stop: load((start, stop)), hint)
 
 
 def _has_signature(path: str) -> bool:

@@ -374,3 +374,34 @@ def test_a_scheduler_in_other_processes_gives_the_same_answers(tmp_path):
                              range=[agg.attrs["y_range"], agg.attrs["x_range"]])
     np.testing.assert_array_equal(agg.values, h)
     assert frame.reads == 0          # every column was read in the worker process
+
+
+@pytest.mark.parametrize("fmt", ["h5", "npy"])
+def test_one_big_file_is_read_in_row_ranges(fmt, tmp_path, engine):
+    # one file, no per-rank parts: the readers' row reads (HDF5 hyperslabs, record slices)
+    # cut it into pieces, and each piece reads only its rows
+    import h5py
+
+    from swarmaudit.diagnostics.census import block_census
+    from swarmaudit.readers.discover import open_run
+    data = _particles(6000)
+    if fmt == "h5":
+        with h5py.File(tmp_path / "snap_0001.h5", "w") as fh:
+            g = fh.create_group("electrons")
+            for c, a in data.items():
+                g[c] = a
+    else:
+        rec = np.empty(6000, dtype=[(c, a.dtype) for c, a in data.items()])
+        for c, a in data.items():
+            rec[c] = a
+        np.save(tmp_path / "snap_0001.npy", rec)
+    frame = next(iter(open_run(str(tmp_path))[0].species.values()))
+    pieces = partitions.frame_pieces(frame, ["x", "y"])
+    assert len(pieces) > 5 and not any(p.whole for p in pieces)
+    assert partitions.column_dtype(frame, "id") == np.int64      # known before any read
+    layout = regular_layout([0, 1, 0, 1], [8, 8], [4, 4])
+    got = dk.census_dask(frame, layout, engine=engine)["block"]
+    ids = assign_blocks([data["x"], data["y"]], layout)
+    pd.testing.assert_frame_equal(got, block_census(ids, layout, data["weight"]), check_exact=False,
+                                  rtol=1e-12)
+    assert frame.reads == 0

@@ -1,0 +1,224 @@
+"""The dashboard in a real headless Chromium: it draws, follows the controls, and a copied link reopens it.
+
+Needs python Playwright and Chromium at /usr/bin/chromium. Without them the
+test is skipped on a workstation but FAILS under CI (``CI`` set), so a CI
+machine that lost its browser cannot pass silently.
+
+Run by hand to refresh the README screenshot from the demo run:
+    python tests/test_browser_e2e.py --screenshot docs/dashboard.png --demo DEMO_OUT
+"""
+
+from __future__ import annotations
+
+import io
+import os
+import socket
+import subprocess
+import sys
+import time
+
+import numpy as np
+import pytest
+
+CHROMIUM = "/usr/bin/chromium"
+CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                 "--disable-background-networking", "--disable-component-update", "--disable-sync"]
+
+
+def _browser_or_fail(p):
+    try:
+        return p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
+    except Exception as exc:     # missing binary or launch failure
+        if os.environ.get("CI"):
+            pytest.fail(f"headless Chromium could not start under CI: {exc}")
+        pytest.skip(f"headless Chromium not available: {exc}")
+
+
+def write_run(folder, snapshots=3, n=20000, seed=3):
+    """A small two-beam run in the demo's HDF5 shape (groups per species, position/x ..., blocks)."""
+    import h5py
+    os.makedirs(folder, exist_ok=True)
+    rng = np.random.default_rng(seed)
+    L = (8.0, 4.0)
+    bx, by = 4, 2
+    lower = np.array([[i * L[0] / bx, j * L[1] / by] for j in range(by) for i in range(bx)])
+    upper = lower + np.array([L[0] / bx, L[1] / by])
+    base = {}
+    for name, v0 in (("beam_right", 1.0), ("beam_left", -1.0)):
+        base[name] = (rng.uniform(0, L[0], n), rng.uniform(0, L[1], n),
+                      v0 + 0.05 * rng.standard_normal(n), 0.05 * rng.standard_normal(n))
+    for k in range(snapshots):
+        with h5py.File(os.path.join(folder, f"step_{k * 10:06d}.h5"), "w") as f:
+            f.attrs["step"] = k * 10
+            f.attrs["time"] = k * 0.5
+            f.attrs["field_energy"] = 1.0 + 0.01 * k
+            for name, (x, y, vx, vy) in base.items():
+                g = f.create_group(name)
+                g.attrs["mass"] = 1.0
+                g.attrs["charge"] = -1.0
+                # a slow wave in x so snapshots differ
+                xs = (x + vx * 0.5 * k + 0.2 * np.sin(2 * np.pi * y / L[1]) * k) % L[0]
+                for comp, arr in (("x", xs), ("y", y)):
+                    d = g.create_dataset(f"position/{comp}", data=arr.astype(np.float32))
+                    d.attrs["units"] = "m"
+                for comp, arr in (("x", vx), ("y", vy)):
+                    d = g.create_dataset(f"velocity/{comp}", data=arr.astype(np.float32))
+                    d.attrs["units"] = "m/s"
+                g.create_dataset("id", data=np.arange(n, dtype=np.int64) + (0 if name == "beam_right" else n))
+                g.create_dataset("weight", data=np.full(n, 2.0))
+            b = f.create_group("blocks")
+            b.create_dataset("lower", data=lower)
+            b.create_dataset("upper", data=upper)
+            b.create_dataset("level", data=np.zeros(len(lower), dtype=np.int64))
+            b.create_dataset("rank", data=np.arange(len(lower), dtype=np.int64) // 4)
+            b.attrs["domain_lower"] = [0.0, 0.0]
+            b.attrs["domain_upper"] = list(L)
+            b.attrs["cells"] = [32, 16]
+            b.attrs["periodic"] = "x,y"
+    return folder
+
+
+def _free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def start_server(args):
+    port = _free_port()
+    cmd = [sys.executable, "-m", "swarmaudit", *args, "--port", str(port), "--no-browser"]
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+                            env=dict(os.environ, PYTHONUNBUFFERED="1"))
+    out = []
+    deadline = time.time() + 120
+    while time.time() < deadline:
+        line = proc.stdout.readline()
+        if not line and proc.poll() is not None:
+            raise AssertionError("server exited:\n" + "".join(out))
+        out.append(line)
+        if "press Ctrl-C" in line:
+            return proc, f"http://127.0.0.1:{port}/"
+    proc.terminate()
+    raise AssertionError("server did not start:\n" + "".join(out))
+
+
+def wait_drawn(page, timeout=60):
+    """Until both particle views report their binning (the images are on the page)."""
+    deadline = time.time() + timeout
+    while time.time() < deadline:
+        text = page.evaluate("""() => { let t = ''; function walk(n) { if (!n) return;
+            if (n.nodeType === 3) t += n.textContent; if (n.shadowRoot) walk(n.shadowRoot);
+            for (const c of n.childNodes || []) walk(c); } walk(document.body); return t; }""")
+        if text.count("particles binned") >= 2:
+            time.sleep(1.0)    # let the canvases paint
+            return text
+        time.sleep(0.25)
+    raise AssertionError("the particle views did not draw")
+
+
+def page_text(page):
+    return wait_drawn(page)
+
+
+def canvas_variation(page):
+    """Std-dev and distinct colours of the first plot canvas (the spatial view)."""
+    from PIL import Image
+    canvas = page.locator("canvas").first
+    img = np.asarray(Image.open(io.BytesIO(canvas.screenshot())).convert("RGB"), dtype=np.float64)
+    return float(img.std()), len(np.unique(img.reshape(-1, 3), axis=0))
+
+
+def select_values(page):
+    sel = page.locator("select")
+    return [sel.nth(i).evaluate("e => e.value") for i in range(sel.count())]
+
+
+@pytest.fixture(scope="module")
+def server(tmp_path_factory):
+    run = write_run(str(tmp_path_factory.mktemp("e2e") / "beams"))
+    proc, url = start_server(["serve", run])
+    yield url
+    proc.terminate()
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+
+
+def test_dashboard_in_chromium(server):
+    if os.environ.get("CI"):
+        import playwright.sync_api as sync_api     # missing under CI is a failure, not a skip
+    else:
+        sync_api = pytest.importorskip("playwright.sync_api")
+    errors = []
+    with sync_api.sync_playwright() as p:
+        browser = _browser_or_fail(p)
+        try:
+            page = browser.new_page(viewport={"width": 1600, "height": 1250})
+            page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+            page.on("pageerror", lambda e: errors.append(str(e)))
+            page.goto(server)
+            text = page_text(page)
+            assert "swarmaudit" in text and "#0" in text
+            std, colours = canvas_variation(page)
+            assert std > 5 and colours > 20, "the spatial view looks blank"
+
+            # the controls drive the state, and the state the URL
+            values = select_values(page)
+            space_x = values.index("position/x")
+            page.locator("select").nth(space_x).select_option("velocity/x")
+            page.locator("button.next").first.click()
+            deadline = time.time() + 30
+            href = ""
+            while time.time() < deadline:
+                href = page.evaluate("window.location.href")
+                if "snap=1" in href and "sx=velocity%2Fx" in href:
+                    break
+                time.sleep(0.25)
+            assert "snap=1" in href and "sx=velocity%2Fx" in href, href
+            wait_drawn(page)
+
+            # the copied link reopens the same view in a fresh page
+            other = browser.new_page(viewport={"width": 1600, "height": 1250})
+            other.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+            other.on("pageerror", lambda e: errors.append(str(e)))
+            other.goto(href)
+            text2 = page_text(other)
+            assert "#1" in text2 and "step 10" in text2
+            assert select_values(other)[space_x] == "velocity/x"
+            assert other.evaluate("window.location.href") == href or "snap=1" in other.evaluate(
+                "window.location.href")
+        finally:
+            browser.close()
+    assert not errors, errors
+
+
+def make_screenshot(path, demo_out):
+    """The README picture: the two-stream demo mid-run, all species, blocks tinted by count."""
+    from playwright.sync_api import sync_playwright
+    if not os.path.isdir(os.path.join(demo_out, "two_stream")):
+        subprocess.run([sys.executable, "-m", "swarmaudit", "demo", "--out", demo_out, "--no-serve"],
+                       check=True)
+    proc, url = start_server(["serve", os.path.join(demo_out, "two_stream")])
+    try:
+        with sync_playwright() as p:
+            browser = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
+            page = browser.new_page(viewport={"width": 1560, "height": 1180})
+            page.goto(url + "?snap=24&sp=all&blocks=tinted&tab=moves")
+            wait_drawn(page)
+            time.sleep(4)
+            os.makedirs(os.path.dirname(os.path.abspath(path)), exist_ok=True)
+            page.screenshot(path=path, full_page=True)
+            browser.close()
+    finally:
+        proc.terminate()
+        proc.wait(timeout=10)
+
+
+if __name__ == "__main__":
+    import argparse
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--screenshot", default="docs/dashboard.png")
+    ap.add_argument("--demo", default="swarmaudit-demo")
+    a = ap.parse_args()
+    make_screenshot(a.screenshot, a.demo)

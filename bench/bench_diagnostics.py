@@ -24,14 +24,17 @@ from swarmaudit.diagnostics.deposit import deposit
 from swarmaudit.diagnostics.migration import match_keys, migrate
 
 
-def timed(fn, repeat: int) -> float:
-    fn()   # warm-up: compile, first touch of memory
-    times = []
+def side_by_side(fn, base, repeat: int) -> tuple[float, float]:
+    """Medians of fn and base, run alternately so that a change in machine load hits both alike."""
+    fn()     # warm-up: compile, first touch of memory
+    base()
+    a, b = [], []
     for _ in range(repeat):
-        t = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t)
-    return statistics.median(times)
+        for f, out in ((fn, a), (base, b)):
+            t = time.perf_counter()
+            f()
+            out.append(time.perf_counter() - t)
+    return statistics.median(a), statistics.median(b)
 
 
 def run(n: int = 10_000_000, repeat: int = 3) -> list[dict]:
@@ -57,39 +60,56 @@ def run(n: int = 10_000_000, repeat: int = 3) -> list[dict]:
     def row(what, seconds, base_name, base_seconds, target):
         rows.append((what, seconds, base_name, base_seconds, seconds / base_seconds, target))
 
-    t_pass = timed(lambda: (x.sum(), y.sum()), r)
-    t_census = timed(lambda: block_census(assign_blocks([x, y], layout), layout), r)
-    row(f"census {n:,} into {layout.nblocks} blocks", t_census, "one numpy pass (x.sum, y.sum)", t_pass,
-        "<= 10")
-    t_assign = timed(lambda: assign_blocks([x, y], layout), r)
-    row("  of which assign_blocks", t_assign, "one numpy pass", t_pass, "")
+    def one_pass():
+        return x.sum(), y.sum()
+
+    def census():
+        return block_census(assign_blocks([x, y], layout), layout)
+
+    t, base = side_by_side(census, one_pass, r)
+    row(f"census {n:,} into {layout.nblocks} blocks", t, "one numpy pass (x.sum, y.sum)", base, "<= 10")
+    t, base = side_by_side(lambda: assign_blocks([x, y], layout), one_pass, r)
+    row("  of which assign_blocks", t, "one numpy pass", base, "")
     if _fastassign.available:
         _fastassign.available = False
-        t_np = timed(lambda: assign_blocks([x, y], layout), max(1, r - 1))
+        t, base = side_by_side(lambda: assign_blocks([x, y], layout), one_pass, r)
         _fastassign.available = True
-        row("  assign_blocks, numpy path", t_np, "one numpy pass", t_pass, "")
+        row("  assign_blocks, numpy path", t, "one numpy pass", base, "")
 
-    t_sort = timed(lambda: np.argsort(ids_a), r)
-    t_merge = timed(lambda: pd.merge(pd.DataFrame({"id": ids_a, "ia": np.arange(n)}),
-                                     pd.DataFrame({"id": ids_b, "ib": np.arange(ids_b.size)}), on="id"),
-                    max(1, r - 1))
-    t_match = timed(lambda: match_keys(ids_a, ids_b), r)
-    row(f"match_keys {n:,} ids", t_match, "numpy.argsort(ids)", t_sort, "<= 1")
-    row(f"match_keys {n:,} ids", t_match, "pandas.merge on id", t_merge, "<= 0.33")
+    def argsort():
+        return np.argsort(ids_a)
+
+    def merge():
+        return pd.merge(pd.DataFrame({"id": ids_a, "ia": np.arange(n)}),
+                        pd.DataFrame({"id": ids_b, "ib": np.arange(ids_b.size)}), on="id")
+
+    def match():
+        return match_keys(ids_a, ids_b)
+
+    def migration():
+        return migrate(ids_a, ids_b, blk_a, blk_b, [x, y], [xb, yb], layout, steps=10)
+
+    t, base = side_by_side(match, argsort, r)
+    row(f"match_keys {n:,} ids", t, "numpy.argsort(ids)", base, "<= 1")
+    t, base = side_by_side(match, merge, max(1, r - 1))
+    row(f"match_keys {n:,} ids", t, "pandas.merge on id", base, "<= 0.33")
     if _kernels.available:
         _kernels.available = False
-        t_match_np = timed(lambda: match_keys(ids_a, ids_b), r)
+        t, base = side_by_side(match, argsort, r)
         _kernels.available = True
-        row("  match_keys, numpy path", t_match_np, "numpy.argsort(ids)", t_sort, "")
-    t_migrate = timed(lambda: migrate(ids_a, ids_b, blk_a, blk_b, [x, y], [xb, yb], layout, steps=10), r)
-    row("migrate (match + moves + displacement)", t_migrate, "numpy.argsort(ids)", t_sort, "")
-    row("migrate (match + moves + displacement)", t_migrate, "pandas.merge on id", t_merge, "")
+        row("  match_keys, numpy path", t, "numpy.argsort(ids)", base, "")
+    t, base = side_by_side(migration, argsort, r)
+    row("migrate (match + moves + displacement)", t, "numpy.argsort(ids)", base, "")
+    t, base = side_by_side(migration, merge, max(1, r - 1))
+    row("migrate (match + moves + displacement)", t, "pandas.merge on id", base, "")
 
-    t_hist = timed(lambda: np.histogram2d(x, y, bins=512, range=[[0, 1], [0, 1]]), max(1, r - 1))
-    t_cic = timed(lambda: deposit([x, y], 1.0, layout, order="cic"), r)
-    t_ngp = timed(lambda: deposit([x, y], 1.0, layout, order="ngp"), r)
-    row("deposit CIC 512x512", t_cic, "numpy.histogram2d 512x512", t_hist, "")
-    row("deposit NGP 512x512", t_ngp, "numpy.histogram2d 512x512", t_hist, "")
+    def hist2d():
+        return np.histogram2d(x, y, bins=512, range=[[0, 1], [0, 1]])
+
+    t, base = side_by_side(lambda: deposit([x, y], 1.0, layout, order="cic"), hist2d, r)
+    row("deposit CIC 512x512", t, "numpy.histogram2d 512x512", base, "")
+    t, base = side_by_side(lambda: deposit([x, y], 1.0, layout, order="ngp"), hist2d, r)
+    row("deposit NGP 512x512", t, "numpy.histogram2d 512x512", base, "")
 
     keys = ("measurement", "seconds", "baseline", "baseline_seconds", "ratio", "target")
     return [dict(zip(keys, row)) for row in rows]
@@ -101,7 +121,7 @@ def main(argv=None) -> int:
     ap.add_argument("--repeat", type=int, default=3, help="timed runs per measurement (default 3)")
     args = ap.parse_args(argv)
     rows = [tuple(d.values()) for d in run(args.n, args.repeat)]
-    print(f"particles {args.n:,}, median of {args.repeat} runs after a warm-up; numba kernels: "
+    print(f"particles {args.n:,}, medians of {args.repeat} alternating runs after a warm-up; numba kernels: "
           f"{'on' if _fastassign.available else 'off'}")
     w = max(len(a) for a, *_ in rows)
     wb = max(len(c) for _, _, c, *_ in rows)

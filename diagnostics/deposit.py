@@ -31,6 +31,20 @@ def _order(order) -> int:
     raise ValueError(f"unknown shape order {order!r} (0, 1 or 2)")
 
 
+def _stencil(frac, p: int):
+    """(shift, [w_0 .. w_K-1]) with one contiguous weight array per stencil cell."""
+    f = np.asarray(frac, dtype=np.float64)
+    t = f - 0.5          # offset from the centre of the particle's own cell, in [-½, ½)
+    if p == 0:
+        return np.zeros(f.shape, dtype=np.int64), [np.ones(f.shape)]
+    if p == 1:
+        left = t < 0                              # left of the centre: cells -1 and 0
+        d = np.where(left, t + 1.0, t)            # distance past the left cell centre, [0, 1)
+        return -left.astype(np.int64), [1.0 - d, d]
+    return np.full(f.shape, -1, dtype=np.int64), [0.5 * (0.5 - t) ** 2, 0.75 - t * t,
+                                                   0.5 * (0.5 + t) ** 2]
+
+
 def shape_weights(frac, order):
     """Stencil of each particle along one axis.
 
@@ -39,17 +53,8 @@ def shape_weights(frac, order):
     ``cell + shift + k`` for ``k = 0..K-1`` with ``weights[:, k]``; K is 1
     (NGP), 2 (CIC) or 3 (TSC), and each row sums to one.
     """
-    p = _order(order)
-    f = np.asarray(frac, dtype=np.float64)
-    t = f - 0.5          # offset from the centre of the particle's own cell, in [-½, ½)
-    if p == 0:
-        return np.zeros(f.shape, dtype=np.int64), np.ones(f.shape + (1,))
-    if p == 1:
-        shift = np.floor(t).astype(np.int64)      # -1 left of the centre, 0 right of it
-        d = t - shift                              # distance past the left cell centre, [0, 1)
-        return shift, np.stack([1.0 - d, d], axis=-1)
-    w = np.stack([0.5 * (0.5 - t) ** 2, 0.75 - t * t, 0.5 * (0.5 + t) ** 2], axis=-1)
-    return np.full(f.shape, -1, dtype=np.int64), w
+    shift, w = _stencil(frac, _order(order))
+    return shift, np.stack(w, axis=-1)
 
 
 def deposit(positions, values, layout: BlockLayout, order="cic", periodic=None, outside: str = "clamp") -> np.ndarray:
@@ -75,44 +80,53 @@ def deposit(positions, values, layout: BlockLayout, order="cic", periodic=None, 
     if v.shape != (n,):
         raise ValueError(f"values have shape {v.shape}, expected ({n},)")
     good = np.isfinite(v)
-    idx0, stencils = [], []
+    k = p + 1
+    strides = np.cumprod([1] + cells[::-1][:-1])[::-1]   # C order [ix, iy, iz]: z fastest
+    # per axis and stencil point: the (wrapped or clamped) cell times its stride, and the weight;
+    # d*K arrays, combined below for each of the K**d stencil points
+    offsets, weights, keeps = [], [], []
     for a in range(d):
         s = (np.asarray(cols[a], dtype=np.float64) - layout.domain_lower[a]) / layout.cell_size[a]
-        good &= np.isfinite(s)
-        s = np.where(np.isfinite(s), s, 0.0)
-        if per[a]:
-            s = np.mod(s, cells[a])
-        cell = np.floor(s).astype(np.int64)
-        frac = s - cell
-        if per[a]:   # np.mod can round up to exactly cells[a]
-            cell = np.where(cell >= cells[a], cell - cells[a], cell)
-        shift, w = shape_weights(frac, p)
-        idx0.append(cell + shift)
-        stencils.append(w)
+        finite = np.isfinite(s)
+        if not finite.all():
+            good &= finite
+            s = np.where(finite, s, 0.0)
+        fl = np.floor(s)
+        frac = s - fl                    # in [0, 1) whatever the wrap below does to the cell
+        cell = fl.astype(np.int64)
+        if per[a] and (cell.min(initial=0) < 0 or cell.max(initial=0) >= cells[a]):
+            cell = np.mod(cell, cells[a])   # only particles outside the box need it
+        shift, w_a = _stencil(frac, p)
+        first = cell + shift
+        off_a, keep_a = [], []
+        for j in range(k):
+            i = first + j if j else first
+            if per[a]:
+                # a stencil reaches at most one period out: one add or subtract wraps it
+                i = np.where(i < 0, i + cells[a], np.where(i >= cells[a], i - cells[a], i))
+                keep_a.append(None)
+            else:
+                keep_a.append(((i >= 0) & (i < cells[a])) if outside == "drop" else None)
+                i = np.clip(i, 0, cells[a] - 1)
+            off_a.append(i * int(strides[a]) if strides[a] != 1 else i)
+        offsets.append(off_a)
+        weights.append(w_a)
+        keeps.append(keep_a)
     if not good.all():
         v = np.where(good, v, 0.0)
     flat_size = int(np.prod(cells))
     grid = np.zeros(flat_size, dtype=np.float64)
-    k = p + 1
     # a loop over the K**d stencil points, each one vectorised over all particles
     for combo in itertools.product(range(k), repeat=d):
-        flat = np.zeros(n, dtype=np.int64)
-        wt = v.copy()
-        keep = None
-        stride = 1
-        for a in range(d - 1, -1, -1):   # C order [ix, iy, iz]: z fastest
-            i = idx0[a] + combo[a]
-            if per[a]:
-                i = np.mod(i, cells[a])
-            else:
-                inside = (i >= 0) & (i < cells[a])
-                if outside == "drop":
-                    keep = inside if keep is None else keep & inside
-                i = np.clip(i, 0, cells[a] - 1)
-            flat += i * stride
-            stride *= cells[a]
-            wt *= stencils[a][:, combo[a]]
+        flat = offsets[0][combo[0]].copy()
+        wt = v * weights[0][combo[0]]
+        keep = keeps[0][combo[0]]
+        for a in range(1, d):
+            flat += offsets[a][combo[a]]
+            wt *= weights[a][combo[a]]
+            if keeps[a][combo[a]] is not None:
+                keep = keeps[a][combo[a]] if keep is None else keep & keeps[a][combo[a]]
         if keep is not None:
-            wt = np.where(keep, wt, 0.0)
+            wt[~keep] = 0.0
         grid += np.bincount(flat, weights=wt, minlength=flat_size)
     return grid.reshape(cells)

@@ -2,9 +2,10 @@
 
     python bench/bench_diagnostics.py [--n N] [--repeat R]
 
-Each timing is the median of R runs after one warm-up run (which also
-compiles the optional numba kernels). Ratios below 1 mean faster than the
-baseline.
+Each measurement and its baseline run alternately, R times each after one
+warm-up run (which also compiles the optional numba kernels), so a change in
+machine load hits both alike; the table shows medians and their ratio
+(below 1: faster than the baseline).
 """
 
 from __future__ import annotations

@@ -627,6 +627,8 @@ def check(ctx: AuditContext, rtol: float, quantities=None) -> CheckResult:
     df = drift_details(ctx)
     sel = _select(df, quantities).reset_index(drop=True)
     nsnap = len(ctx.run)
+    if nsnap < 2:
+        _note(ctx, "the run has a single snapshot: there is nothing to compare it with")
     if sel.empty:
         return CheckResult(True, [], ["ok: nothing to check (no totals could be formed)"], sel)
     out = _drift.violations(sel, rtol).to_numpy()

@@ -493,8 +493,9 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
         if drift_fig:
             title = f"{name} · totals against the first snapshot"
             add_figure(FigureRecord("drift", drift_fig, title, None, "all",
-                                    "drift of every total against the first snapshot; band = "
-                                    "±rtol, crosses where a checked total first leaves it"
+                                    "drift of every total against the first snapshot; the band "
+                                    "±rtol is drawn where the gate checks a total, a cross marks "
+                                    "where a checked total first leaves it"
                                     if opts.rtol else
                                     "drift of every total against the first snapshot (no --rtol given)"),
                        F.drift_curves(drift_df, opts.rtol, title, checked=checked,

@@ -289,6 +289,9 @@ def transfer_heatmap(migration_df: pd.DataFrame, title: str = "", *, cmap="virid
                 if np.isfinite(m[x, y])]
         img = hv.HeatMap(rows, kdims=[fd, td], vdims=[cd])
     finite = m[np.isfinite(m)]
+    if not finite.size:
+        # nobody moved: an all-blank matrix has no colour range, draw zeros instead
+        m = np.zeros_like(m)
     logz = bool(finite.size and finite.max() > 10 * max(finite.min(), 1))
     clim = (max(float(finite.min()), 1.0) if finite.size else 1.0,
             float(finite.max()) if finite.size else 10.0)
@@ -385,7 +388,9 @@ def _drift_range(values: np.ndarray, rtol):
 
 
 def _grid_columns(n: int) -> int:
-    return n if n <= 3 else (2 if n == 4 else 3)
+    if n <= 3:
+        return n
+    return 2 if n == 4 else (3 if n <= 9 else 4)
 
 
 def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str | None = None,
@@ -394,9 +399,9 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
 
     One panel per quantity (their sizes differ by orders of magnitude), one
     curve per species, the first snapshot outside the band marked with a cross.
-    ``checked`` — (species, quantity) pairs a gate judges — limits the marks
-    and the verdict in the title to those (a field energy is not conserved on
-    its own, so leaving the band is no failure); None judges every total.
+    ``checked`` — (species, quantity) pairs a gate judges — limits the band,
+    the marks and the verdict in the title to those (a field energy is not
+    conserved on its own, so its panel gets no band); None judges every total.
     """
     df = drift_df.copy() if drift_df is not None else pd.DataFrame()
     if len(df):
@@ -415,10 +420,12 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
     colour = {sp: CURVE_COLOURS[k % len(CURVE_COLOURS)] for k, sp in enumerate(species)}
     panels = []
     quantities = list(dict.fromkeys(df["quantity"].astype(str))) if len(df) else []
+    ncols = _grid_columns(max(len(quantities), 1))
     for k, q in enumerate(quantities):
         sub = df[df["quantity"].astype(str) == q]
         parts = []
-        if rtol is not None:
+        gated = judged_pairs is None or any(p[1] == q for p in judged_pairs)
+        if rtol is not None and gated:
             parts.append(_style(hv.HSpan(-rtol, rtol), common={"alpha": 0.16},
                                 bokeh={"color": BAND_COLOUR, "line_alpha": 0},
                                 mpl={"color": BAND_COLOUR, "facecolor": None, "linewidth": 0}))
@@ -441,27 +448,27 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
         if len(ex):
             ey = np.nan_to_num(ex["judged"].to_numpy(dtype=float), nan=0.0)
             pts = hv.Scatter((ex[x].to_numpy(dtype=float), ey),
-                             xd, yd, label="first outside")
+                             xd, yd)
             parts.append(_style(pts, common={"color": LINE_COLOUR},
                                 bokeh={"marker": "x", "size": 14, "line_width": 3},
                                 mpl={"marker": "X", "s": 110, "edgecolors": "white", "linewidth": 0.8}))
         if not parts:
             parts.append(hv.Curve([], xd, yd))
-        lo, hi = _drift_range(sub["judged"].to_numpy(dtype=float), rtol)
+        lo, hi = _drift_range(sub["judged"].to_numpy(dtype=float), rtol if gated else None)
         name = q.replace("_", " ")
-        gated = judged_pairs is None or any(p[1] == q for p in judged_pairs)
         if not shown:
             name += " (no finite drift)"
         elif len(ex):
             name += f" (out at {int(ex['snapshot'].min())})"
-        elif not gated and rtol is not None:
-            name += " (unchecked)"
         panel = hv.Overlay(parts)
+        first_col = k % ncols == 0
         panels.append(_style(panel, common={"title": name, "ylim": (lo, hi), "xlabel": xlabel,
-                                            "ylabel": "relative drift", "show_legend": k == 0,
+                                            "ylabel": "relative drift" if first_col else "",
+                                            "show_legend": k == 0,
                                             "legend_position": "top_left"},
                              bokeh={"width": 330, "height": 240, "legend_cols": 1},
-                             mpl={"aspect": "auto", "yformatter": "%.1e"}))
+                             mpl={"aspect": "auto", "xformatter": "%.3g",
+                                  "xticks": 3 if ncols >= 3 else 5, "yticks": 5}))
     if not panels:
         panels = [_style(hv.Curve([], xd, yd), common={"title": "no totals"})]
     band_txt = f"band ±{rtol:g}" if rtol is not None else "no band given"
@@ -473,7 +480,7 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
     else:
         verdict = band_txt
     full_title = f"{title}  ({verdict})" if title else verdict
-    lay = hv.Layout(panels).cols(_grid_columns(len(panels)))
+    lay = hv.Layout(panels).cols(ncols if quantities else 1)
     return _style(lay, common={"title": full_title, "shared_axes": False},
                   bokeh={}, mpl={"fig_inches": (10, 7), "sublabel_format": "", "tight": True,
                                  "tight_padding": 1.2, "fig_bounds": (0.01, 0.01, 0.99, 0.94)})

@@ -33,7 +33,13 @@ def render_figure(obj, width: int, height: int, dpi: int, fontscale: float = 1.0
     ensure_backends()
     inches = (width / dpi, height / dpi)
     obj = obj.opts(fig_inches=inches, fontscale=fontscale, backend="matplotlib", clone=True)
-    fig = hv.render(obj, backend="matplotlib")
+    import warnings
+    with warnings.catch_warnings():
+        # a view whose every bin holds the same count has a one-value colour range:
+        # matplotlib widens it and says so; nothing is wrong with the picture
+        warnings.filterwarnings("ignore", message="Attempting to set identical low and high")
+        warnings.filterwarnings("ignore", message="All-NaN slice encountered")
+        fig = hv.render(obj, backend="matplotlib")
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     if not isinstance(fig.canvas, FigureCanvasAgg):
         FigureCanvasAgg(fig)
@@ -111,9 +117,11 @@ def _equalised_colorbar(fig, cax):
     return new
 
 
-def _thin_ticks(cax, renderer) -> None:
-    """Drop colour-bar ticks whose labels would overlap (an equalised scale bunches them)."""
-    axis = cax.yaxis if cax.get_position().height >= cax.get_position().width else cax.xaxis
+def _thin_ticks(cax, renderer, axis=None) -> None:
+    """Drop ticks whose labels would overlap (an equalised colour bar bunches them, long
+    numbers crowd a narrow panel)."""
+    if axis is None:
+        axis = cax.yaxis if cax.get_position().height >= cax.get_position().width else cax.xaxis
     cax.get_tightbbox(renderer)   # formats the tick labels
     ticks = axis.get_major_ticks()
     locs = list(axis.get_majorticklocs())
@@ -136,7 +144,7 @@ def _thin_ticks(cax, renderer) -> None:
     if len(spans) < 2:
         return
     spans.sort()
-    pad = 2.0
+    pad = 2.0 if vertical else 8.0
     for lo, hi, loc in spans:
         if last is None or lo >= last + pad:
             kept.append(loc)
@@ -201,6 +209,7 @@ def _fit(fig) -> None:
         drawn = ax.get_position(original=False)
         for cb, gap, w in links:
             cb.set_position([drawn.x1 + gap, drawn.y0, w, drawn.height])
+    _thin_ticks(ax, renderer, ax.xaxis)
     # a box held to a fixed aspect leaves free width: centre the plot in it
     x0, _, x1, _ = _content_box(fig, [ax, *bars], renderer)
     shift = 0.5 * ((_MARGIN - x0) + ((1 - _MARGIN) - x1))
@@ -238,6 +247,8 @@ def _fit_grid(fig, main, bars) -> None:
         cells.append((ax, spec.rowspan.start, spec.colspan.start, gs.nrows, gs.ncols))
     nrows = max(c[3] for c in cells)
     ncols = max(c[4] for c in cells)
+    for ax, *_ in cells:
+        _wrap(ax.title, 0.9 * fw * (1 - 2 * _MARGIN) / ncols, renderer)
     # decorations change a little with the box size (titles wider than it): measure twice
     for _ in range(2):
         dec_l, dec_r = np.zeros(ncols), np.zeros(ncols)
@@ -258,3 +269,5 @@ def _fit_grid(fig, main, bars) -> None:
             x0 = _MARGIN * fw + dec_l[:c + 1].sum() + dec_r[:c].sum() + c * (width + gap)
             ytop = fh - top_px - dec_t[:r + 1].sum() - dec_b[:r].sum() - r * (height + gap)
             ax.set_position([x0 / fw, (ytop - height) / fh, width / fw, height / fh])
+    for ax, *_ in cells:
+        _thin_ticks(ax, renderer, ax.xaxis)

@@ -68,8 +68,12 @@ def _message_element(text: str, x_range=(0, 1), y_range=(0, 1)):
 
 
 def bin_factor(n: int) -> int:
-    """Screen pixels per bin side: 1 for big runs, up to 4 for a few hundred particles."""
-    return 1 if n >= 50_000 else (2 if n >= 5_000 else 4)
+    """Screen pixels per bin side: 1 from a million particles on, up to 4 for a few thousand.
+
+    Below about one particle per screen pixel a density image is salt and pepper;
+    coarser bins (still re-binned on every zoom) show the density instead.
+    """
+    return 1 if n >= 1_000_000 else (2 if n >= 20_000 else 4)
 
 
 def _highlight(img):

@@ -88,7 +88,7 @@ def test_space_view_equals_histogram2d(runs):
     s.species = "beam_right"
     dash = Dashboard(s, runs)
     frame = s.frame()
-    k = 4                    # 3000 particles: 4 screen pixels per bin
+    k = 4                    # 3000 particles: 4 screen pixels per bin (dashboard.bin_factor)
     nx, ny = 560 // k, 440 // k
     # dyadic bin sizes (1/32) make both sides round the same way at bin edges
     xr, yr = (0.0, nx / 32), (0.0, ny / 32)

@@ -11,7 +11,7 @@ import pytest
 from dash_fixtures import memory_context, two_beam_snapshot
 
 from swarmaudit.app import render
-from swarmaudit.app.dashboard import Dashboard, build_page
+from swarmaudit.app.dashboard import Dashboard, bin_factor, build_page
 from swarmaudit.app.state import RESULTS, URL_KEYS, ServedRuns, ViewState
 
 
@@ -88,7 +88,7 @@ def test_space_view_equals_histogram2d(runs):
     s.species = "beam_right"
     dash = Dashboard(s, runs)
     frame = s.frame()
-    k = 4                    # 3000 particles: 4 screen pixels per bin (dashboard.bin_factor)
+    k = bin_factor(frame.length)
     nx, ny = 560 // k, 440 // k
     # dyadic bin sizes (1/32) make both sides round the same way at bin edges
     xr, yr = (0.0, nx / 32), (0.0, ny / 32)
@@ -178,12 +178,12 @@ def test_slab_of_a_3d_run(runs):
     assert s.slab_axis == "z"
     s.slab_range = (0.25, 0.5)
     dash = Dashboard(s, r)
-    xr = yr = (0.0, 0.0 + (560 // 2) / 256)
-    out = dash.render_view("space", x_range=xr, y_range=(0.0, (440 // 2) / 256), snapshot=0,
-                           slab_range=s.slab_range)
+    k = bin_factor(5000)
+    nx, ny = 560 // k, 440 // k
+    xr, yr = (0.0, nx / 256), (0.0, ny / 256)
+    out = dash.render_view("space", x_range=xr, y_range=yr, snapshot=0, slab_range=s.slab_range)
     keep = (cols["z"] >= 0.25) & (cols["z"] < 0.5)
-    ref2, _, _ = np.histogram2d(cols["x"][keep], cols["y"][keep], bins=[280, 220],
-                                range=[xr, (0.0, 220 / 256)])
+    ref2, _, _ = np.histogram2d(cols["x"][keep], cols["y"][keep], bins=[nx, ny], range=[xr, yr])
     np.testing.assert_array_equal(_image_counts(out), ref2.T)
 
 

@@ -467,6 +467,11 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
         for a, b, heat_path, disp_path in migration_figs:
             table = migration_df[(migration_df["from_snapshot"] == a) & (migration_df["to_snapshot"] == b)]
             disp, steps = pair_displacements(ctx, a, b, species)
+            if not len(table) and not disp.size:
+                notes.append(f"snapshots {a} → {b}: no particle could be matched (no ids), so "
+                             "there are no migration figures for this pair")
+                bar.step(n=2)
+                continue
             title = f"{name} · block to block · snapshot {a} → {b}"
             add_figure(FigureRecord("transfer", heat_path, title, b, "all",
                                     "matched particles that changed block (staying ones left out)"),

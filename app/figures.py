@@ -383,7 +383,7 @@ def _drift_range(values: np.ndarray, rtol):
     if v.size == 0:
         return (-band or -1.0, band or 1.0)
     lo, hi = float(v.min()), float(v.max())
-    pad = 0.1 * (hi - lo) if hi > lo else max(abs(lo) * 0.1, 1e-15)
+    pad = 0.1 * (hi - lo) if hi > lo else max(abs(lo) * 0.1, 1e-3)
     return (min(lo - pad, -band), max(hi + pad, band))
 
 

@@ -163,6 +163,20 @@ def test_dashboard_in_chromium(server):
             std, colours = canvas_variation(page)
             assert std > 5 and colours > 20, "the spatial view looks blank"
 
+            # a box drawn in the spatial view selects particles in both views
+            page.locator(".bk-tool-icon-box-select").first.click()
+            box = page.locator("canvas").first.bounding_box()
+            x0, y0 = box["x"] + 120, box["y"] + 100
+            page.mouse.move(x0, y0)
+            page.mouse.down()
+            page.mouse.move(x0 + 150, y0 + 120, steps=8)
+            page.mouse.up()
+            deadline = time.time() + 30
+            while "Selected in space" not in page_text(page) and time.time() < deadline:
+                time.sleep(0.25)
+            assert "Selected in space" in page_text(page)
+            assert "sel=" in page.evaluate("window.location.href")
+
             # the controls drive the state, and the state the URL
             values = select_values(page)
             space_x = values.index("position/x")

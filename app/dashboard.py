@@ -18,8 +18,7 @@ import holoviews as hv
 
 from ..core.errors import SwarmAuditError
 from . import render
-from .state import (BLOCK_MODES, CMAPS, COLOR_BY, SCALINGS, SERVED, SIDE_PANELS, ServedRuns,
-                    ViewState)
+from .state import BLOCK_MODES, CMAPS, SERVED, ServedRuns, ViewState
 
 #: pixels of each particle view (aggregates are binned at exactly this size)
 VIEW_W, VIEW_H = 560, 440

@@ -191,8 +191,11 @@ class SidePanels(param.Parameterized):
         fig = figures.drift_curves(drift, s.rtol, title="drift against the first snapshot")
         exits = figures.first_exits(drift, s.rtol)
         if len(exits):
+            exits = exits.sort_values("snapshot", kind="stable")
             lines = [f"- **{r.quantity}** ({r.species}) first leaves ±{s.rtol:g} at snapshot "
-                     f"{int(r.snapshot)}" for r in exits.itertuples()]
+                     f"{int(r.snapshot)}" for r in exits.head(8).itertuples()]
+            if len(exits) > 8:
+                lines.append(f"- … and {len(exits) - 8} more (every curve is drawn below)")
             facts = "\n".join(lines)
         else:
             facts = f"Every total stays within ±{s.rtol:g} of the first snapshot."

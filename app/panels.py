@@ -42,6 +42,12 @@ def _cached(key, compute):
     return value
 
 
+def _run_key(state) -> tuple:
+    # the name a page shows plus the run object itself: two servers in one process (tests)
+    # may both call a run "demo"
+    return (state.run, id(state.served))
+
+
 def _fit(obj, width=SIDE_W, height=SIDE_H):
     """The figure at the page's size (the builders' default size suits a report)."""
     return obj.opts(width=width, height=height, backend="bokeh")
@@ -81,7 +87,7 @@ class SidePanels(param.Parameterized):
     def census(self, i: int):
         """(block table, rank table, imbalance over ranks) of snapshot ``i``, species in view."""
         s = self.state
-        key = ("census", s.run, int(i), s.species)
+        key = ("census", _run_key(s), int(i), s.species)
         return _cached(key, lambda: snapshot_census(s.served.ctx, int(i), s.species))
 
     def block_counts(self, i: int):
@@ -106,7 +112,7 @@ class SidePanels(param.Parameterized):
             blocks, ranks, imb = self.census(i)
             layout = s.served.layout(i)
             from ..core import audit
-            whatif = _cached(("whatif", s.run, i), lambda: audit.rebalance_table(s.served.ctx, i))
+            whatif = _cached(("whatif", _run_key(s), i), lambda: audit.rebalance_table(s.served.ctx, i))
         except (ImportError, AttributeError):
             return _note("The block census is not available in this build.")
         except SwarmAuditError as exc:
@@ -145,7 +151,7 @@ class SidePanels(param.Parameterized):
                                          "snapshot has no previous one).")]
             return pick
         a, b = (ref, i) if ref < i else (i, ref)
-        key = ("moves", s.run, a, b, s.species)
+        key = ("moves", _run_key(s), a, b, s.species)
 
         def work(progress=None):
             return snapshot_migration(s.served.ctx, a, b, s.species, progress=progress)
@@ -176,7 +182,7 @@ class SidePanels(param.Parameterized):
                                      step=1e-4, width=200)
         rtol.param.watch(lambda e: s.param.update(rtol=float(e.new)) if e.new and e.new > 0 else None,
                          "value")
-        key = ("totals", s.run, s.species)
+        key = ("totals", _run_key(s), s.species)
 
         def work(progress=None):
             return run_drift(s.served.ctx, progress=progress)

@@ -195,7 +195,7 @@ def test_sessions_share_one_copy_and_one_result(runs):
     a.snapshot = b.snapshot = 1
     da.side.moves_panel()
     db.side.moves_panel()
-    key = ("moves", "beams", 0, 1, "all")
+    key = ("moves", ("beams", id(runs["beams"])), 0, 1, "all")
     deadline = time.time() + 30
     while RESULTS.get(key) is None and time.time() < deadline:
         time.sleep(0.05)

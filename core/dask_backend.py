@@ -31,6 +31,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import OptionError
+from ._bincount import counts_and_sums
 from ._colstats import finite_stats
 from .frame import Frame
 from .layout import BlockLayout, assign_blocks
@@ -359,25 +360,23 @@ def _padded(r):
 # census --------------------------------------------------------------------------------
 def _census_piece(piece: Piece, template: Frame, layout: BlockLayout, weight_default, use_rank):
     f = piece_frame(piece, template)
-    rows = layout.block_index(assign_blocks(f.positions(), layout))
+    slots = layout.block_index(assign_blocks(f.positions(), layout)) + 1   # slot 0: in no block
     w = f.per_particle("weight", weight_default)
     w = None if w is None else (float(w) if np.ndim(w) == 0 else np.asarray(w, dtype=np.float64))
-    shifted = rows + 1
-    counts = np.bincount(shifted, minlength=layout.nblocks + 1)
-    if w is None:
-        wsum = counts.astype(np.float64)
-    elif isinstance(w, float):
-        wsum = counts * w
-    else:
-        wsum = np.bincount(shifted, weights=w, minlength=layout.nblocks + 1)
+    counts, wsum = counts_and_sums(slots, w, layout.nblocks + 1)
     out = {"counts": counts, "wsum": wsum}
     if use_rank and "rank" in f.roles:
-        r = np.asarray(f.role("rank")).astype(np.int64, copy=False)
-        r = np.where(r < 0, -1, r) + 1
-        out["rank_counts"] = np.bincount(r)
-        out["rank_wsum"] = (out["rank_counts"].astype(np.float64) if w is None else
-                            out["rank_counts"] * w if isinstance(w, float) else
-                            np.bincount(r, weights=w))
+        name = f.column_for("rank")
+        if name in piece.constants:   # a per-rank file: every particle has its file's rank
+            r = max(int(piece.constants[name][0]), -1) + 1
+            out["rank_counts"] = np.zeros(r + 1, np.int64)
+            out["rank_wsum"] = np.zeros(r + 1)
+            out["rank_counts"][r] = counts.sum()
+            out["rank_wsum"][r] = wsum.sum() if w is not None else float(counts.sum())
+        else:
+            r = np.asarray(f[name]).astype(np.int64, copy=False)
+            r = np.where(r < 0, 0, r + 1)
+            out["rank_counts"], out["rank_wsum"] = counts_and_sums(r, w, int(r.max(initial=0)) + 1)
     return out
 
 
@@ -726,6 +725,8 @@ def migration_if_partitioned(ctx, frame_a: Frame, frame_b: Frame, layout_a: Bloc
     """``migrate`` of two frames with positions, piece by piece, or None to stay in memory."""
     if not (frame_a.ndim == layout_a.ndim > 0 and frame_b.ndim == layout_b.ndim > 0):
         return None
+    if len(frame_a.key_columns() or ()) != len(frame_b.key_columns() or ()):
+        return None   # the in-memory path says why these cannot be matched
     need = [(f, list(f.position_names) + list(f.key_columns() or ()) + _roles_columns(f, ("rank",)))
             for f in (frame_a, frame_b)]
     if not any(use_dask(ctx, f, cols) for f, cols in need):

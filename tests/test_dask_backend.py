@@ -330,15 +330,15 @@ def test_finite_stats_agree_with_numpy(compiled, monkeypatch):
     assert _colstats.finite_stats(np.zeros(0)) == (None, None, 0)
 
 
-def _rank_files(folder, data, cuts):
+def _rank_files(folder, data, cuts, step=10):
     """Per-rank HDF5 files of one snapshot, as a simulation writes them."""
     import h5py
-    step = folder / "step_000010"
-    step.mkdir(parents=True)
+    sub = folder / f"step_{step:06d}"
+    sub.mkdir(parents=True)
     edges = [0, *cuts, len(data["x"])]
     for r, (lo, hi) in enumerate(zip(edges[:-1], edges[1:])):
-        with h5py.File(step / f"rank_{r:03d}.h5", "w") as fh:
-            fh.attrs["step"] = 10
+        with h5py.File(sub / f"rank_{r:03d}.h5", "w") as fh:
+            fh.attrs["step"] = step
             g = fh.create_group("electrons")
             g.attrs["mass"] = 1.0
             g.attrs["charge"] = -1.0
@@ -405,3 +405,43 @@ def test_one_big_file_is_read_in_row_ranges(fmt, tmp_path, engine):
     pd.testing.assert_frame_equal(got, block_census(ids, layout, data["weight"]), check_exact=False,
                                   rtol=1e-12)
     assert frame.reads == 0
+
+
+def test_audit_tables_are_the_same_through_either_engine(tmp_path, monkeypatch):
+    # the whole path a command takes: per-rank files, open_run, core.audit tables
+    from swarmaudit.core import audit
+    from swarmaudit.readers.discover import open_run
+    monkeypatch.setenv("SWARMAUDIT_CACHE", "off")
+    a, b = _pair(3000, seed=11)
+    for d in (a, b):
+        d.pop("vy")
+    run_dir = tmp_path / "run"
+    _rank_files(run_dir, a, [1000, 2200], step=10)
+    _rank_files(run_dir, b, [1500], step=20)
+    layout = regular_layout([0, 1, 0, 1], [16, 16], [4, 4], periodic=("x",), ranks=3)
+    tables = {}
+    for engine in ("memory", "dask"):
+        ctx = AuditContext(open_run(str(run_dir)), fixed_layout=layout, engine=engine)
+        mig, summ = audit.migration_tables(ctx)
+        tables[engine] = (audit.census_table(ctx), audit.rank_table(ctx, 1), mig, summ,
+                          audit.drift_table(ctx))
+    for got, ref in zip(tables["dask"], tables["memory"]):
+        pd.testing.assert_frame_equal(got, ref, check_exact=False, rtol=1e-12, atol=1e-12)
+    assert tables["dask"][3]["created"].iloc[0] == 300
+
+
+@pytest.mark.parametrize("compiled", [True, False])
+def test_counts_and_sums_equal_numpy_bincount(compiled, monkeypatch):
+    from swarmaudit.core import _bincount
+    monkeypatch.setattr(_bincount, "MIN_VALUES", 0 if compiled else 10**12)
+    rng = np.random.default_rng(8)
+    slots = rng.integers(0, 37, 20_000)
+    w = rng.random(20_000)
+    c, s = _bincount.counts_and_sums(slots, w, 40)
+    # outside reference: numpy.bincount, same order of addition, so equal to the last bit
+    np.testing.assert_array_equal(c, np.bincount(slots, minlength=40))
+    np.testing.assert_array_equal(s, np.bincount(slots, weights=w, minlength=40))
+    c1, s1 = _bincount.counts_and_sums(slots, 2.5, 40)
+    np.testing.assert_array_equal(s1, np.bincount(slots, minlength=40) * 2.5)
+    with pytest.raises(ValueError):
+        _bincount.counts_and_sums(np.array([0, 40]), None, 40)

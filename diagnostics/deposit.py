@@ -34,15 +34,15 @@ def _order(order) -> int:
 def _stencil(frac, p: int):
     """(shift, [w_0 .. w_K-1]) with one contiguous weight array per stencil cell."""
     f = np.asarray(frac, dtype=np.float64)
-    t = f - 0.5          # offset from the centre of the particle's own cell, in [-½, ½)
     if p == 0:
-        return np.zeros(f.shape, dtype=np.int64), [np.ones(f.shape)]
+        return 0, [np.ones(f.shape)]
+    t = f - 0.5          # offset from the centre of the particle's own cell, in [-½, ½)
     if p == 1:
         left = t < 0                              # left of the centre: cells -1 and 0
-        d = np.where(left, t + 1.0, t)            # distance past the left cell centre, [0, 1)
-        return -left.astype(np.int64), [1.0 - d, d]
-    return np.full(f.shape, -1, dtype=np.int64), [0.5 * (0.5 - t) ** 2, 0.75 - t * t,
-                                                   0.5 * (0.5 + t) ** 2]
+        t += left                                 # distance past the left cell centre, [0, 1)
+        return -left.astype(np.int64), [1.0 - t, t]
+    t2 = t * t
+    return -1, [0.5 * (0.25 - t + t2), 0.75 - t2, 0.5 * (0.25 + t + t2)]
 
 
 def shape_weights(frac, order):
@@ -53,8 +53,9 @@ def shape_weights(frac, order):
     ``cell + shift + k`` for ``k = 0..K-1`` with ``weights[:, k]``; K is 1
     (NGP), 2 (CIC) or 3 (TSC), and each row sums to one.
     """
-    shift, w = _stencil(frac, _order(order))
-    return shift, np.stack(w, axis=-1)
+    f = np.asarray(frac, dtype=np.float64)
+    shift, w = _stencil(f, _order(order))
+    return np.broadcast_to(np.asarray(shift, dtype=np.int64), f.shape).copy(), np.stack(w, axis=-1)
 
 
 def deposit(positions, values, layout: BlockLayout, order="cic", periodic=None, outside: str = "clamp") -> np.ndarray:
@@ -75,58 +76,81 @@ def deposit(positions, values, layout: BlockLayout, order="cic", periodic=None, 
     cells = [int(c) for c in layout.cells]
     n = cols[0].shape[0] if cols else 0
     v = np.asarray(values, dtype=np.float64)
-    if v.ndim == 0:
-        v = np.full(n, float(v))
-    if v.shape != (n,):
+    scalar = float(v) if v.ndim == 0 else None   # a common value multiplies the grid once, at the end
+    if scalar is None and v.shape != (n,):
         raise ValueError(f"values have shape {v.shape}, expected ({n},)")
-    good = np.isfinite(v)
+    good = np.isfinite(v) if scalar is None else np.ones(n, dtype=bool)
     k = p + 1
     strides = np.cumprod([1] + cells[::-1][:-1])[::-1]   # C order [ix, iy, iz]: z fastest
     # per axis and stencil point: the (wrapped or clamped) cell times its stride, and the weight;
-    # d*K arrays, combined below for each of the K**d stencil points
+    # d*K arrays, combined below for each of the K**d stencil points. In-place arithmetic where
+    # it can be: at ten million particles every fresh temporary costs more than the arithmetic.
     offsets, weights, keeps = [], [], []
     for a in range(d):
-        s = (np.asarray(cols[a], dtype=np.float64) - layout.domain_lower[a]) / layout.cell_size[a]
+        s = np.subtract(cols[a], layout.domain_lower[a], dtype=np.float64)
+        s /= layout.cell_size[a]
         finite = np.isfinite(s)
         if not finite.all():
             good &= finite
-            s = np.where(finite, s, 0.0)
-        fl = np.floor(s)
-        frac = s - fl                    # in [0, 1) whatever the wrap below does to the cell
-        cell = fl.astype(np.int64)
+            s[~finite] = 0.0
+        cell = np.floor(s)
+        s -= cell                          # the position inside the cell, [0, 1)
+        cell = cell.astype(np.int64)
         if per[a] and (cell.min(initial=0) < 0 or cell.max(initial=0) >= cells[a]):
             cell = np.mod(cell, cells[a])   # only particles outside the box need it
-        shift, w_a = _stencil(frac, p)
-        first = cell + shift
+        shift, w_a = _stencil(s, p)
+        del s
+        cell += shift
         off_a, keep_a = [], []
         for j in range(k):
-            i = first + j if j else first
+            i = cell if j == k - 1 else cell.copy()
+            if j:
+                i += j
             if per[a]:
                 # a stencil reaches at most one period out: one add or subtract wraps it
-                i = np.where(i < 0, i + cells[a], np.where(i >= cells[a], i - cells[a], i))
+                i[i < 0] += cells[a]
+                i[i >= cells[a]] -= cells[a]
                 keep_a.append(None)
             else:
                 keep_a.append(((i >= 0) & (i < cells[a])) if outside == "drop" else None)
-                i = np.clip(i, 0, cells[a] - 1)
-            off_a.append(i * int(strides[a]) if strides[a] != 1 else i)
+                np.clip(i, 0, cells[a] - 1, out=i)
+            if strides[a] != 1:
+                i *= int(strides[a])
+            off_a.append(i)
         offsets.append(off_a)
         weights.append(w_a)
         keeps.append(keep_a)
-    if not good.all():
-        v = np.where(good, v, 0.0)
+    if scalar is None:
+        v = np.where(good, v, 0.0) if not good.all() else v
+    elif not good.all():
+        v = good.astype(np.float64)   # non-finite positions: weight 0
+    else:
+        v = None
     flat_size = int(np.prod(cells))
     grid = np.zeros(flat_size, dtype=np.float64)
+    flat = np.empty(n, dtype=np.int64) if d > 1 else None
+    wt = np.empty(n, dtype=np.float64)
     # a loop over the K**d stencil points, each one vectorised over all particles
     for combo in itertools.product(range(k), repeat=d):
-        flat = offsets[0][combo[0]].copy()
-        wt = v * weights[0][combo[0]]
+        if d > 1:
+            np.add(offsets[0][combo[0]], offsets[1][combo[1]], out=flat)
+            for a in range(2, d):
+                flat += offsets[a][combo[a]]
+            index = flat
+        else:
+            index = offsets[0][combo[0]]
+        if v is None:
+            np.copyto(wt, weights[0][combo[0]])
+        else:
+            np.multiply(v, weights[0][combo[0]], out=wt)
         keep = keeps[0][combo[0]]
         for a in range(1, d):
-            flat += offsets[a][combo[a]]
             wt *= weights[a][combo[a]]
             if keeps[a][combo[a]] is not None:
                 keep = keeps[a][combo[a]] if keep is None else keep & keeps[a][combo[a]]
         if keep is not None:
             wt[~keep] = 0.0
-        grid += np.bincount(flat, weights=wt, minlength=flat_size)
+        grid += np.bincount(index, weights=wt, minlength=flat_size)
+    if scalar is not None:
+        grid *= scalar
     return grid.reshape(cells)

@@ -40,6 +40,7 @@ def render_figure(obj, width: int, height: int, dpi: int, fontscale: float = 1.0
         warnings.filterwarnings("ignore", message="Attempting to set identical low and high")
         warnings.filterwarnings("ignore", message="All-NaN slice encountered")
         fig = hv.render(obj, backend="matplotlib")
+    _forget_colorbars()
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     if not isinstance(fig.canvas, FigureCanvasAgg):
         FigureCanvasAgg(fig)
@@ -47,6 +48,23 @@ def render_figure(obj, width: int, height: int, dpi: int, fontscale: float = 1.0
     fig.set_size_inches(*inches, forward=False)
     _fit(fig)
     return fig
+
+
+def _forget_colorbars() -> None:
+    """Drop holoviews' class-wide record of colour-bar axes.
+
+    The matplotlib backend keeps every colour bar it drew in a dict on the
+    plot class (to stack several bars beside one axes), which holds each
+    rendered figure alive: an export of hundreds of figures grew by megabytes
+    a figure. The record only matters while one figure is being laid out.
+    """
+    try:
+        from holoviews.plotting.mpl.element import ColorbarPlot
+    except ImportError:
+        return
+    store = getattr(ColorbarPlot, "_colorbars", None)
+    if isinstance(store, dict):
+        store.clear()
 
 
 def save_png(obj, path, width: int, height: int, dpi: int = 100, fontscale: float = 1.0) -> str:

@@ -260,3 +260,23 @@ def test_png_keeps_labels_inside_the_picture():
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=100)
     assert Image.open(buf).size == (500, 400)
+
+
+def test_a_saved_figure_is_freed(tmp_path):
+    # holoviews keeps colour bars in a class-wide dict; an export of hundreds of figures
+    # must not keep every one of them alive
+    import gc
+    import weakref
+
+    import matplotlib.pyplot as plt
+    from holoviews.plotting.mpl.element import ColorbarPlot
+
+    obj = F.deposit_map(np.arange(128.0).reshape(16, 8), _layout(), "freed")
+    fig = render_figure(obj, 300, 240, 100)
+    ref = weakref.ref(fig)
+    plt.close(fig)
+    del fig
+    gc.collect()
+    assert ref() is None
+    save_png(obj, str(tmp_path / "d.png"), 300, 240, 100)
+    assert not ColorbarPlot._colorbars

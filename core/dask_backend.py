@@ -22,6 +22,7 @@ starts a LocalCluster of one single-threaded worker process per core.
 from __future__ import annotations
 
 import atexit
+import itertools
 import os
 import threading
 from concurrent.futures import ThreadPoolExecutor
@@ -149,13 +150,7 @@ class DaskEngine:
 
 
 def _take(it, n):
-    out = []
-    for _ in range(n):
-        try:
-            out.append(next(it))
-        except StopIteration:
-            break
-    return out
+    return list(itertools.islice(it, n))
 
 
 _engines: dict[str, DaskEngine] = {}

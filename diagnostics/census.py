@@ -33,15 +33,21 @@ def _weights(weights, n):
 
 def _count_rows(rows: np.ndarray, nrows: int, weights):
     """Counts and weights per row 0..nrows-1, plus the same for row -1 (returned last)."""
-    shifted = rows + 1   # bincount takes no negatives; slot 0 collects "in no block"
-    counts = np.bincount(shifted, minlength=nrows + 1).astype(np.int64)
+    outside = rows < 0
+    n_out = int(np.count_nonzero(outside))
+    # bincount takes no negatives: shift by one (slot 0 = "in no block") only when there are any,
+    # since the shifted copy costs as much as the count itself
+    idx, first = (rows + 1, 1) if n_out else (rows, 0)
+    counts = np.bincount(idx, minlength=nrows + first).astype(np.int64)
     if weights is None:
         wsum = counts.astype(np.float64)
     elif isinstance(weights, float):
         wsum = counts * weights
     else:
-        wsum = np.bincount(shifted, weights=weights, minlength=nrows + 1)
-    return counts[1:], wsum[1:], int(counts[0]), float(wsum[0])
+        wsum = np.bincount(idx, weights=weights, minlength=nrows + first)
+    if n_out:
+        return counts[1:], wsum[1:], n_out, float(wsum[0])
+    return counts, wsum, 0, 0.0
 
 
 def block_census(block_ids, layout: BlockLayout, weights=None) -> pd.DataFrame:

@@ -250,7 +250,10 @@ def transfer_matrix(from_block, to_block, sparse: bool = False):
         span = hi - lo + 1
         # most particles stay: count those with one bincount, sort only the movers
         stay = f == t
-        diag = np.bincount(f[stay] - lo, minlength=span) if stay.any() else np.zeros(span, np.int64)
+        fs = f[stay]
+        if lo:
+            fs -= lo
+        diag = np.bincount(fs, minlength=span) if fs.size else np.zeros(span, np.int64)
         dblk = np.flatnonzero(diag) + lo
         dcnt = diag[dblk - lo]
         fm, tm = f[~stay], t[~stay]
@@ -338,19 +341,22 @@ class MigrationResult:
                 "over_one_cell": self.over_one_cell}
 
 
-def rank_traffic(rank_from, rank_to) -> pd.DataFrame:
-    """Per rank: matched particles that left it (``send``) and arrived at it (``receive``)."""
+def rank_traffic(rank_from, rank_to, counts=None) -> pd.DataFrame:
+    """Per rank: matched particles that left it (``send``) and arrived at it (``receive``).
+
+    One entry per particle, or per group of ``counts`` particles making the same move.
+    """
     ra = np.asarray(rank_from).astype(np.int64, copy=False)
     rb = np.asarray(rank_to).astype(np.int64, copy=False)
     moved = ra != rb
     sa, sb = ra[moved], rb[moved]
+    w = None if counts is None else np.asarray(counts, dtype=np.float64)[moved]
     top = int(max(ra.max(initial=-1), rb.max(initial=-1)))
-    send = np.bincount(sa + 1, minlength=top + 2)
-    recv = np.bincount(sb + 1, minlength=top + 2)
+    send = np.bincount(sa + 1, weights=w, minlength=top + 2).astype(np.int64)
+    recv = np.bincount(sb + 1, weights=w, minlength=top + 2).astype(np.int64)
     ranks = np.arange(-1, top + 1, dtype=np.int64)
     keep = (ranks >= 0) | (send > 0) | (recv > 0)
-    return pd.DataFrame({"rank": ranks[keep], "send": send[keep].astype(np.int64),
-                         "receive": recv[keep].astype(np.int64)})
+    return pd.DataFrame({"rank": ranks[keep], "send": send[keep], "receive": recv[keep]})
 
 
 def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: BlockLayout | None = None,
@@ -394,17 +400,27 @@ def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: Bl
                          "their displacement is left out")
         if disp.size - nonfinite:
             max_disp = float(np.max(disp, where=finite, initial=0.0))
-        over = int(np.count_nonzero(disp[finite] / nsteps > 1.0))
-    if rank_a is not None:
-        ra = np.asarray(rank_a)[m.ia]
+        over = int(np.count_nonzero(disp > nsteps))   # more than one cell per step; NaN never counts
+    lb = layout_b if layout_b is not None else layout
+    if rank_a is None and rank_b is None:
+        # ranks follow the blocks: the transfer table already holds every move, per block pair
+        counts = transfer["count"].to_numpy()
+        ra = _owner(layout, transfer["from_block"].to_numpy()) if layout is not None else None
+        rb = _owner(lb, transfer["to_block"].to_numpy()) if lb is not None else None
+        ra = ra if ra is not None else np.full(counts.shape, -1, dtype=np.int64)
+        rb = rb if rb is not None else np.full(counts.shape, -1, dtype=np.int64)
+        traffic = rank_traffic(ra, rb, counts)
     else:
-        ra = _owner(layout, fb) if layout is not None else np.full(fb.shape, -1, dtype=np.int64)
-    if rank_b is not None:
-        rb = np.asarray(rank_b)[m.ib]
-    else:
-        lb = layout_b if layout_b is not None else layout
-        rb = _owner(lb, tb) if lb is not None else np.full(tb.shape, -1, dtype=np.int64)
+        if rank_a is not None:
+            ra = np.asarray(rank_a)[m.ia]
+        else:
+            ra = _owner(layout, fb) if layout is not None else np.full(fb.shape, -1, dtype=np.int64)
+        if rank_b is not None:
+            rb = np.asarray(rank_b)[m.ib]
+        else:
+            rb = _owner(lb, tb) if lb is not None else np.full(tb.shape, -1, dtype=np.int64)
+        traffic = rank_traffic(ra, rb)
     return MigrationResult(matched=int(m.ia.size), migrated=migrated, created=int(m.created.size),
                            lost=int(m.lost.size), max_displacement_cells=max_disp, over_one_cell=over,
-                           steps=nsteps, transfer=transfer, traffic=rank_traffic(ra, rb),
+                           steps=nsteps, transfer=transfer, traffic=traffic,
                            nonfinite_displacement=nonfinite, notes=notes)

@@ -237,3 +237,17 @@ def test_compiled_migrate_identical(monkeypatch):
     assert fast.summary() == slow.summary()
     pd.testing.assert_frame_equal(fast.transfer, slow.transfer)
     pd.testing.assert_frame_equal(fast.traffic, slow.traffic)
+
+
+def test_traffic_from_the_transfer_table_equals_per_particle_counting():
+    rng = np.random.default_rng(13)
+    lay = regular_layout([0, 1, 0, 1], [16, 16], [4, 4], ranks=5)
+    a, b = _runs(rng, 3000)
+    ba = rng.integers(-1, 16, a.size)
+    bb = rng.integers(-1, 16, b.size)
+    owner = np.append(lay.rank, -1)
+    by_blocks = migrate(a, b, ba, bb, layout=lay)
+    # the same ranks given per particle take the per-particle path
+    per_particle = migrate(a, b, ba, bb, layout=lay, rank_a=owner[ba], rank_b=owner[bb])
+    pd.testing.assert_frame_equal(by_blocks.traffic, per_particle.traffic)
+    assert by_blocks.traffic["send"].sum() == by_blocks.traffic["receive"].sum() > 0

@@ -21,8 +21,6 @@ from ..diagnostics import drift as _drift
 from ..diagnostics.halo import halo_counts
 from ..diagnostics.migration import DuplicateKeyError, MigrationResult, migrate
 from ..diagnostics.rebalance import rebalance_whatif
-from . import dask_backend as _dask
-from .cache import cached_reduction, layout_fingerprint
 from .cache import cached_reduction, layout_fingerprint
 from .context import AuditContext
 from .dask_backend import census_if_partitioned, migration_if_partitioned, totals_if_partitioned

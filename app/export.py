@@ -374,6 +374,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     deposit_figs = [(i, plan.fig(f"deposit_{i:04d}.png")) for i in chosen]
     table_paths = {t: plan.file(t) for t in TABLE_NAMES}
     report_path = plan.file(REPORT_NAME)
+    ctx.layout(chosen[0])   # finds a layout file beside the run, which is an input too
     guard_outputs(plan.paths, input_files(ctx, args))
     os.makedirs(plan.figdir, exist_ok=True)
 
@@ -451,13 +452,13 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
             layout = ctx.layout(i)
             blocks, ranks, imb = snapshot_census(ctx, i, census_df)
             xl, yl = _position_labels(ctx, i, species)
-            title = f"{name} · particles per block · {_when(snap, i)}"
+            title = f"{name} · particles per block, all species · {_when(snap, i)}"
             obj = F.census_map(blocks, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl)
             add_figure(FigureRecord("census_map", map_path, title, i, "all",
                                     "particles per block (all species); refined blocks outlined"),
                        obj)
             bar.step(f"census map {i}")
-            title = f"{name} · load per rank · {_when(snap, i)}"
+            title = f"{name} · particles per rank, all species · {_when(snap, i)}"
             obj = F.rank_bars(ranks, imb, title)
             add_figure(FigureRecord("rank_load", bar_path, title, i, "all",
                                     "particles per rank with the mean (dashed)"), obj)
@@ -479,7 +480,10 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
             bar.step(f"transfer {a}-{b}")
             title = f"{name} · displacement · snapshot {a} → {b}"
             add_figure(FigureRecord("displacement", disp_path, title, b, "all",
-                                    f"{steps} step(s) apart; the dashed line is one level-0 cell per step"),
+                                    (f"{steps} step{'s' if steps != 1 else ''} apart; the dashed "
+                                     "line is one level-0 cell per step") if steps else
+                                    "steps between the snapshots unknown; the dashed line is one "
+                                    "level-0 cell"),
                        F.displacement_histogram(disp, steps, title))
             bar.step(f"displacement {a}-{b}")
 

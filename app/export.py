@@ -11,7 +11,6 @@ from __future__ import annotations
 import math
 import os
 import re
-import sys
 import time
 from contextlib import contextmanager
 from dataclasses import dataclass, field

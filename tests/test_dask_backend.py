@@ -417,7 +417,7 @@ def test_audit_tables_are_the_same_through_either_engine(tmp_path, monkeypatch):
         d.pop("vy")
     run_dir = tmp_path / "run"
     _rank_files(run_dir, a, [1000, 2200], step=10)
-    _rank_files(run_dir, b, [1500], step=20)
+    _rank_files(run_dir, b, [1500, 2000], step=20)   # as many files as the first: a complete step
     layout = regular_layout([0, 1, 0, 1], [16, 16], [4, 4], periodic=("x",), ranks=3)
     tables = {}
     for engine in ("memory", "dask"):

@@ -102,10 +102,34 @@ class Dashboard(param.Parameterized):
         state.param.watch(self._check_snapshot, ["snapshot", "run", "species"])
         state.param.watch(self._update_selection_info,
                           ["select_box", "select_view", "snapshot", "species", "run"])
+        state.param.watch(self._check_snapshot, ["data_revision"])
+        self.live_note = pn.pane.Markdown("", styles=STATUS_STYLE, margin=(0, 10), width=300)
+        state.param.watch(self._update_live_note, ["run_revision", "run"])
         self._check_snapshot()
         self._update_selection_info()
+        self._update_live_note()
         from .panels import SidePanels
         self.side = SidePanels(state)
+
+    # a run still being written ---------------------------------------------------------
+    def follow_run(self):
+        """What each session's timer calls: rescan the served run (shared, rate-limited), catch up."""
+        try:
+            self.state.served.refresh()
+        except Exception as exc:   # a scan must never take the page down; say why instead
+            self.live_note.object = f"Looking for new snapshots failed: {exc}"
+            return
+        self.state.follow()
+
+    def _update_live_note(self, *events):
+        pending = self.state.served.pending
+        if not pending:
+            self.live_note.object = ""
+            return
+        labels = [p.split(":", 1)[0] for p in pending]
+        shown = ", ".join(labels[:3]) + (f" and {len(labels) - 3} more" if len(labels) > 3 else "")
+        self.live_note.object = (f"Not shown yet: {shown} (still being written or unreadable; "
+                                 f"picked up once complete)")
 
     # URL / link -------------------------------------------------------------------
     def set_base_url(self, base: str):
@@ -293,7 +317,8 @@ class Dashboard(param.Parameterized):
     def _view(self, which):
         s = self.state
         streams = [hv.streams.RangeXY(),
-                   hv.streams.Params(s, ["snapshot", "slab_range", "select_box", "select_view"])]
+                   hv.streams.Params(s, ["snapshot", "slab_range", "select_box", "select_view",
+                                         "data_revision"])]
         dmap = hv.DynamicMap(lambda **kw: self.render_view(which, **kw), streams=streams)
         bounds = hv.streams.BoundsXY(source=dmap, bounds=None)
         bounds.add_subscriber(lambda bounds: self._selected(which, bounds))
@@ -318,9 +343,9 @@ class Dashboard(param.Parameterized):
 
     # navigation and controls --------------------------------------------------------
     def snapshot_label(self):
-        return pn.bind(lambda i, run: f"<div class='sa-snaplabel'>{_html(self.state.served.describe(i))}"
+        return pn.bind(lambda i, run, rev: f"<div class='sa-snaplabel'>{_html(self.state.served.describe(i))}"
                        f" <span class='sa-of'>of {self.state.nsnapshots}</span></div>",
-                       self.state.param.snapshot, self.state.param.run)
+                       self.state.param.snapshot, self.state.param.run, self.state.param.run_revision)
 
     def controls(self):
         s = self.state
@@ -342,7 +367,7 @@ class Dashboard(param.Parameterized):
         def on_run(e):
             m = s.nsnapshots
             player.param.update(end=max(m - 1, 1), disabled=m < 2, value=s.snapshot)
-        s.param.watch(on_run, "run")
+        s.param.watch(on_run, ["run", "run_revision"])
 
         run_select = pn.widgets.Select.from_param(s.param.run, label="Run",
                                                   sizing_mode="stretch_width")
@@ -376,6 +401,7 @@ class Dashboard(param.Parameterized):
             run_select,
             pn.pane.HTML(self.snapshot_label(), stylesheets=[_PANE_CSS], margin=(6, 10, 0, 10)),
             player,
+            self.live_note,
             w["species"],
             _section("Axes"),
             pn.Row(w["space_x"], w["space_y"], sizing_mode="stretch_width"),

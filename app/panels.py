@@ -44,8 +44,10 @@ def _cached(key, compute):
 
 def _run_key(state) -> tuple:
     # the name a page shows plus the run object itself: two servers in one process (tests)
-    # may both call a run "demo"
-    return (state.run, id(state.served))
+    # may both call a run "demo"; the epoch changes when a live run's rescan re-opened or
+    # moved snapshots, so results computed by position are not reused for other files
+    served = state.served
+    return (state.run, id(served)) + ((served.epoch,) if served.epoch else ())
 
 
 def _fit(obj, width=SIDE_W, height=SIDE_H):
@@ -104,7 +106,7 @@ class SidePanels(param.Parameterized):
         counts[rows[ok]] = per.to_numpy(dtype=float)[ok]
         return counts
 
-    @param.depends("state.run", "state.snapshot", "state.species")
+    @param.depends("state.run", "state.snapshot", "state.species", "state.data_revision")
     def blocks_panel(self):
         s = self.state
         i = s.snapshot
@@ -131,7 +133,8 @@ class SidePanels(param.Parameterized):
             table, sizing_mode="stretch_width")
 
     # migration -------------------------------------------------------------------------
-    @param.depends("state.run", "state.snapshot", "state.species", "state.compare_to")
+    @param.depends("state.run", "state.snapshot", "state.species", "state.compare_to",
+                   "state.run_revision")
     def moves_panel(self):
         s = self.state
         n = s.nsnapshots
@@ -170,7 +173,7 @@ class SidePanels(param.Parameterized):
                          sizing_mode="stretch_width")
 
     # drift -----------------------------------------------------------------------------
-    @param.depends("state.run", "state.species", "state.rtol")
+    @param.depends("state.run", "state.species", "state.rtol", "state.run_revision")
     def totals_panel(self):
         s = self.state
         n = s.nsnapshots
@@ -182,7 +185,7 @@ class SidePanels(param.Parameterized):
                                      step=1e-4, width=200)
         rtol.param.watch(lambda e: s.param.update(rtol=float(e.new)) if e.new and e.new > 0 else None,
                          "value")
-        key = ("totals", _run_key(s), s.species)
+        key = ("totals", _run_key(s), s.species, len(s.served))   # a live run grows
 
         def work(progress=None):
             return run_drift(s.served.ctx, progress=progress)
@@ -214,7 +217,8 @@ class SidePanels(param.Parameterized):
                          sizing_mode="stretch_width")
 
     # histogram -------------------------------------------------------------------------
-    @param.depends("state.run", "state.snapshot", "state.species", "state.hist_column")
+    @param.depends("state.run", "state.snapshot", "state.species", "state.hist_column",
+                   "state.data_revision")
     def histogram_panel(self):
         s = self.state
         col = s.hist_column

@@ -19,7 +19,10 @@ from urllib.parse import urlencode
 from ..core.context import AuditContext
 from ..core.errors import OptionError
 from ..core.run import Run
-from .state import SERVED, URL_KEYS, ServedRuns
+from .state import SCAN_SECONDS, SERVED, URL_KEYS, ServedRuns
+
+#: how often each page looks for a rescan (the folders are listed at most every SCAN_SECONDS)
+FOLLOW_SECONDS = SCAN_SECONDS
 
 _ASSETS = os.path.join(os.path.dirname(__file__), "assets")
 
@@ -31,33 +34,40 @@ def run_name(ctx: AuditContext) -> str:
     return name.replace("*", "").replace("?", "") or "run"
 
 
+def _inside(path: str, real_roots: list[str]) -> bool:
+    rp = os.path.realpath(path)
+    return any(rp == r or rp.startswith(r.rstrip(os.sep) + os.sep) for r in real_roots)
+
+
+def outside_note(ref, roots: list[str]) -> str | None:
+    """A note when a snapshot's files resolve outside the run folders, else None."""
+    real_roots = [os.path.realpath(r) for r in roots if os.path.isdir(r)]
+    if not real_roots or all(_inside(p, real_roots) for p in ref.paths):
+        return None
+    return f"{ref.label}: left out, it points outside the run folder"
+
+
 def confine(ctx: AuditContext, roots: list[str]) -> list[str]:
     """Leave out snapshots whose files resolve outside the run folders given.
 
     A symlink inside a run folder that points elsewhere would otherwise let
     the server read (and draw) a file its user never named. Returns notes.
+    (A live run's rescans apply the same rule to snapshots that appear later.)
     """
-    real_roots = [os.path.realpath(r) for r in roots if os.path.isdir(r)]
-    if not real_roots:
-        return []
     run = ctx.run
-
-    def inside(p):
-        rp = os.path.realpath(p)
-        return any(rp == r or rp.startswith(r.rstrip(os.sep) + os.sep) for r in real_roots)
-
     keep, notes = [], []
     for i, ref in enumerate(run.refs):
-        if all(inside(p) for p in ref.paths):
+        note = outside_note(ref, roots)
+        if note is None:
             keep.append(i)
         else:
-            notes.append(f"{ref.label}: left out, it points outside the run folder")
+            notes.append(note)
     if len(keep) == len(run.refs):
         return []
     if not keep:
         raise OptionError("every snapshot of the run points outside its folder; nothing to serve")
     new = Run([run.refs[i] for i in keep], run.opener, run.role_map, run.source,
-              list(run.skipped) + notes)
+              list(run.skipped) + notes, spec=run.spec, follow=run.follow)
     for j, i in enumerate(keep):
         if i in run._open:
             new._open[j] = run._open[i]
@@ -108,6 +118,8 @@ def _session_page(runs: ServedRuns):
         port = f":{loc.port}" if loc.port else ""
         base = f"{loc.protocol}//{loc.hostname}{port}{loc.pathname}"
     dash, page = build_page(runs, query, base)
+    # a run still being written: new snapshots join every open page (the scan itself is shared)
+    pn.state.add_periodic_callback(dash.follow_run, period=int(1000 * FOLLOW_SECONDS))
     if loc is not None:
         # the state already holds the validated query; what sync cannot apply is dropped
         loc.sync(dash.state, URL_KEYS, on_error=lambda refused: None)
@@ -130,10 +142,12 @@ def _login_template() -> str | None:
     return path if os.path.isfile(path) else None
 
 
-def serve_runs(paths_or_contexts, args, *, ready=None) -> int:
+def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
     """Serve several runs (contexts, (name, context) pairs, or run folders) until interrupted.
 
     ``args`` carries ``port``, ``share``, ``password``, ``no_browser``.
+    ``roots``: the folders the given contexts' snapshots must stay inside (run folders
+    are their own root).
     ``ready(url)`` is called once the server listens (tests, the demo).
     """
     import panel as pn
@@ -142,14 +156,14 @@ def serve_runs(paths_or_contexts, args, *, ready=None) -> int:
     runs = SERVED
     for item in paths_or_contexts:
         if isinstance(item, AuditContext):
-            runs.add(run_name(item), item)
+            runs.add(run_name(item), item, roots=roots)
         elif isinstance(item, tuple):
-            runs.add(item[0], item[1])
+            runs.add(item[0], item[1], roots=roots)
         else:
             from ..readers.discover import open_run
             ctx = AuditContext(open_run(os.fspath(item), RoleMap()))
             confine(ctx, [os.fspath(item)])
-            runs.add(run_name(ctx), ctx)
+            runs.add(run_name(ctx), ctx, roots=[os.fspath(item)])
     if not len(runs):
         raise OptionError("nothing to serve")
 
@@ -234,4 +248,5 @@ def run_serve(ctx: AuditContext, args) -> int:
     """``swarmaudit serve RUN``: one run."""
     roots = [r for r in getattr(args, "run", []) if os.path.isdir(r)]
     confine(ctx, roots)
-    return serve_runs([ctx], args)
+    # snapshots appearing later (a live run) are confined the same way
+    return serve_runs([ctx], args, roots=roots)

@@ -15,6 +15,7 @@ from __future__ import annotations
 import json
 import math
 import threading
+import time
 from collections import OrderedDict
 from concurrent.futures import Future, ThreadPoolExecutor
 from urllib.parse import urlencode
@@ -25,6 +26,8 @@ from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import concat_frames
 
 ALL_SPECIES = "all"
+#: a served run's folders are listed again at most this often (seconds), however many viewers
+SCAN_SECONDS = 3.0
 
 COLOR_BY = ("count", "weight", "mean")
 SCALINGS = ("eq_hist", "log", "linear")
@@ -66,15 +69,91 @@ _APPLY_ORDER = ("run", "snapshot", "species", "space_x", "space_y", "phase_x", "
 class ServedRun:
     """One run a server shows: its context plus a small window of opened snapshots."""
 
-    def __init__(self, name: str, ctx, keep_open: int = 6):
+    def __init__(self, name: str, ctx, keep_open: int = 6, roots: list[str] | None = None):
         self.name = name
         self.ctx = ctx
         self.run = ctx.run
         self.keep_open = max(2, int(keep_open))
+        self.roots = list(roots or [])     # snapshots resolving outside these are never served
         self._lock = threading.RLock()
         self._recent: OrderedDict[int, None] = OrderedDict()
         self._all: dict[int, object] = {}
         self._errors: dict[int, str] = {}
+        self.version = 0                   # bumped whenever a rescan changed the run
+        self.epoch = 0                     # bumped when snapshots were re-opened or moved (not appended)
+        self.scans = 0                     # rescans that listed the folders (not rate-limited away)
+        self._last_scan = time.monotonic()
+        self._scan_lock = threading.Lock()
+
+    # a run still being written ------------------------------------------------------
+    def refresh(self, min_interval: float = SCAN_SECONDS) -> bool:
+        """List the run's folders again (at most every ``min_interval`` s); True if the run changed.
+
+        New snapshots join the run in place, so every session sees them;
+        unchanged snapshots keep their read columns; a snapshot whose files
+        changed is re-opened. Safe to call from every session: one scan at a time.
+        """
+        if self.run.spec is None:
+            return False
+        if not self._scan_lock.acquire(blocking=False):
+            return False                   # another session is scanning right now
+        try:
+            if time.monotonic() - self._last_scan < min_interval:
+                return False
+            self._last_scan = time.monotonic()
+            self.scans += 1
+            from ..readers.discover import rescan_run
+            allow = None
+            if self.roots:
+                from .serve import outside_note
+                allow = lambda ref: outside_note(ref, self.roots)   # noqa: E731
+            with self._lock:
+                before = self.pending
+                try:
+                    change = rescan_run(self.run, allow=allow)
+                except SwarmAuditError:
+                    return False           # folder gone for a moment (moved, remounted): keep what is shown
+                if not change.any:
+                    if self.pending == before:
+                        return False
+                    self.version += 1      # only the notes changed (a snapshot started or failed)
+                    return True
+                moved = change.moved
+                self._recent = OrderedDict((moved[i], None) for i in self._recent if i in moved)
+                # "all species" frames and remembered errors of kept, unchanged snapshots stay
+                self._all = {moved[i]: f for i, f in self._all.items() if i in moved}
+                self._errors = {moved[i]: e for i, e in self._errors.items() if i in moved}
+                self.version += 1
+                if change.changed or change.removed or any(a != b for a, b in moved.items()):
+                    self.epoch += 1        # results kept by position are stale
+                return True
+        finally:
+            self._scan_lock.release()
+
+    @property
+    def pending(self) -> list[str]:
+        """Notes on snapshots left out for now (still being written, unreadable)."""
+        return list(self.run.skipped)
+
+    def key(self, i: int) -> tuple:
+        """What names snapshot ``i`` across rescans (its position may change)."""
+        from ..readers.discover import ref_key
+        return ref_key(self.run.refs[int(i)])
+
+    def index_of(self, key) -> int | None:
+        from ..readers.discover import ref_key
+        for j, ref in enumerate(self.run.refs):
+            if ref_key(ref) == key:
+                return j
+        return None
+
+    def stamp(self, i: int) -> tuple:
+        """Identity of the content of snapshot ``i``: its files' sizes and mtimes when opened."""
+        refs = self.run.refs
+        if not 0 <= int(i) < len(refs):
+            return ()
+        ref = refs[int(i)]
+        return (tuple(ref.paths), ref.stamp)
 
     def __len__(self) -> int:
         return len(self.run)
@@ -132,6 +211,8 @@ class ServedRun:
 
     def describe(self, i: int) -> str:
         """Label of a snapshot for the slider: position, step, time."""
+        if not 0 <= int(i) < len(self.run):
+            return f"#{i} (not in the run any more)"
         try:
             snap = self.snapshot(i)
         except SwarmAuditError:
@@ -150,12 +231,16 @@ class ServedRuns:
     def __init__(self, runs: "OrderedDict[str, ServedRun] | None" = None):
         self._runs: OrderedDict[str, ServedRun] = OrderedDict(runs or {})
 
-    def add(self, name: str, ctx) -> ServedRun:
+    def add(self, name: str, ctx, roots: list[str] | None = None) -> ServedRun:
         base, k = name, 2
         while name in self._runs:
             name, k = f"{base}-{k}", k + 1
-        self._runs[name] = ServedRun(name, ctx)
+        self._runs[name] = ServedRun(name, ctx, roots=roots)
         return self._runs[name]
+
+    def refresh(self, min_interval: float = SCAN_SECONDS) -> list[str]:
+        """Rescan every served run; the names of those that changed."""
+        return [name for name, r in self._runs.items() if r.refresh(min_interval)]
 
     @property
     def names(self) -> list[str]:
@@ -257,6 +342,9 @@ class ViewState(param.Parameterized):
     select_view = param.Selector(check_on_set=True, default="", objects=list(SELECT_VIEWS))
     select_box = param.NumericTuple(None, length=4, allow_None=True,
                                     doc="(x0, y0, x1, y1) of the selection in select_view's axes")
+    # not in links: bumped when a live run's files change under this view
+    run_revision = param.Integer(0, doc="bumped when snapshots joined or left the run in view")
+    data_revision = param.Integer(0, doc="bumped when the files of the snapshot in view changed")
 
     def __init__(self, runs: ServedRuns | None = None, **params):
         self._runs = runs if runs is not None else SERVED
@@ -276,6 +364,45 @@ class ViewState(param.Parameterized):
             raise ValueError(f"not a served run: {run!r}")
         if params:
             self.param.update(**params)
+        self._seen_version = self.served.version
+        self._remember_shown()
+
+    # a run still being written ------------------------------------------------------
+    def _remember_shown(self, *_):
+        served = self.served
+        if 0 <= self.snapshot < len(served):
+            self._shown = (served.key(self.snapshot), served.stamp(self.snapshot))
+        else:
+            self._shown = (None, None)
+
+    def follow(self) -> bool:
+        """Catch up with a rescan of the served run (called periodically in each session).
+
+        The slider's end follows the run's length; the snapshot in view stays
+        the same snapshot when others are sorted in before it; views redraw
+        only when the files of the snapshot in view changed. True if anything changed.
+        """
+        served = self.served
+        if served.version == self._seen_version:
+            return False
+        key, stamp = self._shown
+        j = served.index_of(key) if key is not None else None
+        n = len(served)
+        target = j if j is not None else min(self.snapshot, max(n - 1, 0))
+        with param.parameterized.batch_call_watchers(self):
+            self.param.snapshot.bounds = (0, max(n - 1, 0))
+            self.param.compare_to.bounds = (-1, max(n - 1, 0))
+            if self.compare_to > n - 1:
+                self.compare_to = -1
+            if target != self.snapshot:
+                self.snapshot = target
+        if j is None or served.stamp(j) != stamp:
+            self._refresh_choices(reset_axes=False)
+            self.data_revision += 1
+        self.run_revision += 1
+        self._seen_version = served.version
+        self._remember_shown()
+        return True
 
     # the run and frame in view ----------------------------------------------------
     @property
@@ -304,10 +431,13 @@ class ViewState(param.Parameterized):
     @param.depends("run", watch=True)
     def _on_run(self):
         self._refresh_choices(reset_axes=True)
+        self._seen_version = self.served.version
+        self._remember_shown()
 
     @param.depends("snapshot", "species", watch=True)
     def _on_data(self):
         self._refresh_choices(reset_axes=False)
+        self._remember_shown()
 
     @param.depends("space_x", "space_y", watch=True)
     def _on_space_axes(self):

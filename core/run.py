@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import threading
 from dataclasses import dataclass, field
 from typing import Callable
 
@@ -18,6 +19,7 @@ class SnapshotRef:
     paths: list[str]           # one path, or the per-rank parts in rank order
     ranks: list[int] | None = None   # rank number of each part, when known from names
     order_key: tuple = ()
+    stamp: tuple = ()          # signature() when it was last opened (a live run re-opens on change)
 
     @property
     def path(self) -> str:
@@ -45,16 +47,28 @@ class Run:
     source: str = ""
     skipped: list[str] = field(default_factory=list)   # notes on files left out (e.g. still being written)
     _open: dict = field(default_factory=dict, repr=False)
+    spec: object = None        # what the user named (folder, glob, files): rescanned for a live run
+    follow: bool = True        # a fresh snapshot that cannot be opened is left out, not an error
+    # a live rescan replaces refs and _open together; a reader must not pair one with the other
+    _lock: threading.RLock = field(default_factory=threading.RLock, repr=False, compare=False)
 
     def __len__(self) -> int:
         return len(self.refs)
 
     def __getitem__(self, i: int) -> Snapshot:
-        if i < 0:
-            i += len(self.refs)
-        if i not in self._open:
-            self._open[i] = self.opener(self.refs[i], self.role_map)
-        return self._open[i]
+        with self._lock:
+            if i < 0:
+                i += len(self.refs)
+            snap = self._open.get(i)
+            ref = self.refs[i]
+        if snap is not None:
+            return snap
+        snap = self.opener(ref, self.role_map)
+        with self._lock:
+            # a rescan may have moved or replaced the ref meanwhile: keep only a matching result
+            if i < len(self.refs) and self.refs[i] is ref:
+                snap = self._open.setdefault(i, snap)
+        return snap
 
     def __iter__(self):
         for i in range(len(self)):
@@ -74,7 +88,8 @@ class Run:
 
     def forget(self, i: int | None = None) -> None:
         """Drop opened snapshots (and their cached columns)."""
-        if i is None:
-            self._open.clear()
-        else:
-            self._open.pop(i, None)
+        with self._lock:
+            if i is None:
+                self._open.clear()
+            else:
+                self._open.pop(i, None)

@@ -140,6 +140,46 @@ def _lines_before(path: str, offset: int, row: int, comments_are_rows: bool = Fa
     raise IndexError(row)
 
 
+def _cut_last_line(path: str, offset: int, names: list[str], delimiter: str,
+                   header_line: int) -> str | None:
+    """Why the file looks cut off in its last line, or None.
+
+    A complete CSV ends with a newline; a file still being written (or copied)
+    usually stops inside a line, and a value cut short there would still parse
+    as a number ("0.12" of "0.1234"): so a last line without its newline is refused.
+    """
+    size = os.path.getsize(path)
+    with open(path, "rb") as fh:
+        fh.seek(max(size - 1, 0))
+        if fh.read(1) in (b"\n", b""):
+            return None
+        if offset >= size:
+            return "ends in the middle of its header line (there is no newline at its end)"
+        start = max(offset, size - MAX_HEADER_BYTES)
+        fh.seek(start)
+        tail = fh.read()
+    last = tail[tail.rfind(b"\n") + 1:].decode("utf-8", "replace")
+    if not last.strip() or last.lstrip().startswith("#"):
+        return None          # trailing blanks or a comment: no value is lost
+    try:
+        fields = len(next(csv.reader([last], delimiter=delimiter)))
+    except csv.Error:      # a stray carriage return or NUL: count the delimiters instead
+        fields = last.count(delimiter) + 1
+    lineno = header_line + 1 + sum(int(np.count_nonzero(a == NL)) for a in _chunks(path, offset))
+    return (f"ends in the middle of line {lineno}: it has {fields} of the header's {len(names)} "
+            f"fields and no newline at its end")
+
+
+def _chunks(path: str, offset: int):
+    with open(path, "rb") as fh:
+        fh.seek(offset)
+        while True:
+            buf = fh.read(CHUNK)
+            if not buf:
+                return
+            yield np.frombuffer(buf, np.uint8)
+
+
 def _skip_comments(row):
     return "skip" if row.text.startswith("#") else "error"
 
@@ -311,6 +351,11 @@ class CSVReader:
         path = os.fspath(path)
         try:
             names, delimiter, offset, header_line, scalars = _sniff(path)
+            cut = _cut_last_line(path, offset, names, delimiter, header_line)
+            if cut is not None:
+                raise InputError(path, cut, "a complete CSV ends with a newline: if the run is still "
+                                 "writing this file, it is read once complete; if the file is "
+                                 "finished, add a newline at its end")
             length, comments = _count_lines(path, offset)
         except OSError as exc:
             raise InputError(path, f"cannot be read ({exc.strerror or exc})") from None

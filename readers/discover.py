@@ -7,6 +7,7 @@ import os
 import re
 import time
 from collections import defaultdict
+from dataclasses import dataclass, field
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot, concat_frames
@@ -143,46 +144,185 @@ def _is_fresh(ref: SnapshotRef, now: float) -> bool:
         return True
 
 
+def _usual_parts(refs: list[SnapshotRef]) -> int:
+    """The most per-rank files any snapshot of the run has (0: no per-rank snapshots)."""
+    return max((len(r.paths) for r in refs if r.ranks is not None), default=0)
+
+
+def _missing_ranks(ref: SnapshotRef, usual: int) -> str | None:
+    """Why a per-rank snapshot looks unfinished (fewer files than the others), or None."""
+    if ref.ranks is None or len(ref.paths) >= usual:
+        return None
+    return f"has {len(ref.paths)} of the {usual} per-rank files the other snapshots have"
+
+
+def _try_open(ref, role_map, usual, follow, now) -> tuple[Snapshot | None, str | None]:
+    """(snapshot, None), or (None, note) for a snapshot left out for now; raises when not following."""
+    short = _missing_ranks(ref, usual)
+    if short is not None and follow and _is_fresh(ref, now):
+        return None, f"{ref.label}: skipped for now, it looks like it is still being written ({short})"
+    try:
+        snap = open_ref(ref, role_map)
+    except SwarmAuditError as exc:
+        if follow and _is_fresh(ref, now):
+            return None, (f"{ref.label}: skipped for now, it looks like it is still being "
+                          f"written ({_why(exc)})")
+        raise
+    return snap, None
+
+
+def _why(exc: SwarmAuditError) -> str:
+    """The problem of an error, naming the file only by its name (the note names the snapshot)."""
+    path, problem = getattr(exc, "path", None), getattr(exc, "problem", None)
+    if problem is None:
+        return str(exc)
+    return f"{os.path.basename(path)} {problem}" if path else problem
+
+
+def _order_key(ref: SnapshotRef, snap: Snapshot, by_step: bool) -> tuple:
+    if by_step and snap.step is not None:
+        return (0, snap.step, ref.label)
+    n = last_integer(ref.label)
+    return (1, n if n is not None else -1, ref.label)
+
+
 def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True) -> Run:
     """Find, order and (lazily) open the snapshots of a run.
 
     Snapshots are ordered by their ``step``, else by the last integer in the
-    name. With ``follow``, a snapshot that cannot be opened yet and was
-    written in the last ``FRESH_SECONDS`` is left out with a note: the
-    simulation is most likely still writing it.
+    name. With ``follow``, a snapshot that cannot be opened yet, or a
+    per-rank snapshot with fewer files than the others, written in the last
+    ``FRESH_SECONDS`` is left out with a note: the simulation is most likely
+    still writing it (:func:`rescan_run` picks it up later).
     """
     role_map = role_map or RoleMap()
     refs, source = find_snapshots(spec)
     opened: list[tuple[SnapshotRef, Snapshot]] = []
     skipped: list[str] = []
     now = time.time()
+    usual = _usual_parts(refs)
     for ref in refs:
-        try:
-            snap = open_ref(ref, role_map)
-        except SwarmAuditError as exc:
-            if follow and _is_fresh(ref, now):
-                skipped.append(f"{ref.label}: skipped for now, it looks like it is still being "
-                               f"written ({exc})")
-                continue
-            raise
+        stamp = ref.signature()      # before opening: a write meanwhile shows as a change later
+        snap, note = _try_open(ref, role_map, usual, follow, now)
+        if note is not None:
+            skipped.append(note)
+            continue
+        ref.stamp = stamp
+        short = _missing_ranks(ref, usual)
+        if short is not None:
+            skipped.append(f"{ref.label}: {short} (kept: it was last written more than "
+                           f"{FRESH_SECONDS:.0f} s ago)")
         opened.append((ref, snap))
     if not opened:
         if skipped:
             raise InputError(source, "no snapshot can be opened yet: " + "; ".join(skipped))
         raise InputError(source, "holds no snapshot files")
     have_steps = all(s.step is not None for _, s in opened)
-
-    def key(item):
-        ref, snap = item
-        if have_steps:
-            return (0, snap.step, ref.label)
-        n = last_integer(ref.label)
-        return (1, n if n is not None else -1, ref.label)
-
-    opened.sort(key=key)
     for ref, snap in opened:
-        ref.order_key = key((ref, snap))
-    run = Run([r for r, _ in opened], lambda ref, rm: open_ref(ref, rm), role_map, source, skipped)
+        ref.order_key = _order_key(ref, snap, have_steps)
+    opened.sort(key=lambda item: item[0].order_key)
+    run = Run([r for r, _ in opened], lambda ref, rm: open_ref(ref, rm), role_map, source, skipped,
+              spec=spec, follow=follow)
     for i, (_, snap) in enumerate(opened):
         run._open[i] = snap
     return run
+
+
+# ---------------------------------------------------------------------------------------
+def ref_key(ref: SnapshotRef) -> tuple:
+    """What names one snapshot across rescans (its folder and label; its parts may grow)."""
+    return (os.path.dirname(os.path.abspath(ref.paths[0])), ref.label)
+
+
+@dataclass
+class Rescan:
+    """What one :func:`rescan_run` changed."""
+
+    added: list[str] = field(default_factory=list)      # labels of snapshots new to the run
+    changed: list[str] = field(default_factory=list)    # labels whose files changed (re-opened)
+    removed: list[str] = field(default_factory=list)    # labels no longer in the run
+    moved: dict = field(default_factory=dict)           # old position -> new position (kept ones)
+    notes: list[str] = field(default_factory=list)      # snapshots left out for now, and why
+
+    @property
+    def any(self) -> bool:
+        return bool(self.added or self.changed or self.removed
+                    or any(a != b for a, b in self.moved.items()))
+
+
+def rescan_run(run: Run, allow=None, now: float | None = None) -> Rescan:
+    """Bring ``run`` up to date with its folders, in place (for a run still being written).
+
+    Unchanged snapshots (same files, sizes and mtimes) are not touched, so
+    their read columns stay; a snapshot whose files changed is re-opened (its
+    old columns are dropped); new ones are opened (metadata only) and sorted
+    in. A snapshot that cannot be opened is left out with a note and tried
+    again once its files change. ``allow(ref) -> note or None`` may leave
+    snapshots out (the server's confinement to the run folders).
+    Raises InputError when the run's folders cannot be listed any more.
+    """
+    out = Rescan()
+    if run.spec is None:
+        return out
+    now = time.time() if now is None else now
+    refs, _ = find_snapshots(run.spec)
+    failed: dict = run.__dict__.setdefault("_failed", {})   # key -> (signature, note) of misses
+    with run._lock:
+        old_refs = list(run.refs)
+        old_open = dict(run._open)
+    old = {ref_key(r): (i, r) for i, r in enumerate(old_refs)}
+    by_step = all(r.order_key[:1] == (0,) for r in old_refs)
+    usual = max(_usual_parts(refs), _usual_parts(old_refs))
+    keep: list[tuple[SnapshotRef, Snapshot | None, int | None]] = []   # (ref, new snap, old index)
+    seen = set()
+    for ref in refs:
+        key = ref_key(ref)
+        seen.add(key)
+        if allow is not None:
+            note = allow(ref)
+            if note:
+                out.notes.append(note)
+                continue
+        sig = ref.signature()
+        if key in old and old[key][1].stamp == sig and len(old[key][1].paths) == len(ref.paths):
+            keep.append((old[key][1], None, old[key][0]))
+            continue
+        if key in failed and failed[key][0] == sig:
+            out.notes.append(failed[key][1])          # no change since it failed: not retried
+            continue
+        try:
+            snap, note = _try_open(ref, run.role_map, usual, True, now)
+        except SwarmAuditError as exc:
+            note = f"{ref.label}: left out, it cannot be opened ({_why(exc)})"
+            snap = None
+        if snap is None:
+            failed[key] = (sig, note)
+            out.notes.append(note)
+            if key in old:
+                out.removed.append(ref.label)     # being rewritten: back once complete
+            continue
+        failed.pop(key, None)
+        ref.stamp = sig
+        ref.order_key = _order_key(ref, snap, by_step)
+        keep.append((ref, snap, None))
+        (out.changed if key in old else out.added).append(ref.label)
+    out.removed += [r.label for k, (_, r) in old.items() if k not in seen]
+    for k in [k for k in failed if k not in seen]:
+        del failed[k]
+    if not out.added and not out.changed and not out.removed:
+        run.skipped = list(out.notes)
+        return out
+    keep.sort(key=lambda item: item[0].order_key)
+    new_open = {}
+    for j, (ref, snap, i) in enumerate(keep):
+        if i is not None:
+            out.moved[i] = j
+            if i in old_open:
+                new_open[j] = old_open[i]
+        else:
+            new_open[j] = snap
+    with run._lock:
+        run.refs = [ref for ref, _, _ in keep]
+        run._open = new_open
+        run.skipped = list(out.notes)
+    return out

@@ -209,8 +209,8 @@ class Dashboard(param.Parameterized):
             frame = s.frame(snapshot)
             if x_range is None or y_range is None:
                 sx, sy = self._ranges(which)
-                x_range = x_range or sx or render.padded_range(*render.data_range(frame, xcol))
-                y_range = y_range or sy or render.padded_range(*render.data_range(frame, ycol))
+                x_range = x_range or sx or render.default_range(frame, xcol)
+                y_range = y_range or sy or render.default_range(frame, ycol)
             else:
                 self._store_ranges(which, x_range, y_range)
             slab = None

@@ -232,7 +232,7 @@ def _is_position(frame, col) -> bool:
 
 def view_ranges(ctx, frames, cols, layout, user) -> dict:
     """One range per column for every view: the user's, the domain for positions, else the data's union."""
-    from .render import data_range
+    from .render import DATA_MARGIN, data_range, padded_range
     out = {}
     for c in cols:
         if c in user:
@@ -249,7 +249,7 @@ def view_ranges(ctx, frames, cols, layout, user) -> dict:
             if c in f and f.length:
                 a, b = data_range(f, c)
                 lo, hi = min(lo, a), max(hi, b)
-        out[c] = (lo, hi) if hi >= lo else (0.0, 1.0)
+        out[c] = padded_range(lo, hi, margin=DATA_MARGIN) if hi >= lo else (0.0, 1.0)
     return out
 
 

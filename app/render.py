@@ -88,13 +88,28 @@ def _stats(frame, col: str):
     return _cached(frame, ("stats", col), lambda: finite_stats(_column(frame, col)))
 
 
-def padded_range(lo: float, hi: float) -> tuple[float, float]:
-    """A range with room for a single value (a zero-width range cannot be binned)."""
+#: share of the span added on each side of a data range that is not a position
+#: (a cold beam sits exactly on its min/max and would vanish into the frame)
+DATA_MARGIN = 0.04
+
+
+def padded_range(lo: float, hi: float, margin: float = 0.0) -> tuple[float, float]:
+    """A range with room for a single value (a zero-width range cannot be binned).
+
+    ``margin`` widens a non-empty range by that share of its span on each side.
+    """
     lo, hi = float(lo), float(hi)
     if hi > lo:
-        return (lo, hi)
+        pad = (hi - lo) * margin
+        return (lo - pad, hi + pad)
     pad = abs(lo) * 1e-6 if lo != 0 else 0.5
     return (lo - pad, hi + pad)
+
+
+def default_range(frame, col: str) -> tuple[float, float]:
+    """The range a view opens on: positions as they are, other columns with a margin."""
+    margin = 0.0 if col in frame.position_names else DATA_MARGIN
+    return padded_range(*data_range(frame, col), margin=margin)
 
 
 def _nonfinite(frame, cols) -> np.ndarray | None:

@@ -197,17 +197,28 @@ class SidePanels(param.Parameterized):
         if s.species != ALL_SPECIES:
             # the species' own totals plus the run-wide scalars (field energy, total energy)
             drift = drift[drift["species"].astype(str).isin([s.species, ALL_SPECIES])]
-        fig = figures.drift_curves(drift, s.rtol, title="drift against the first snapshot")
+        from ..core import audit
+        checked = audit.checked_pairs(drift)
+        fig = figures.drift_curves(drift, s.rtol, title="drift against the first snapshot",
+                                   checked=checked)
         exits = figures.first_exits(drift, s.rtol)
-        if len(exits):
-            exits = exits.sort_values("snapshot", kind="stable")
+        gated = set(checked)
+        is_gated = [(str(r.species), str(r.quantity)) in gated for r in exits.itertuples()]
+        out = exits[is_gated].sort_values("snapshot", kind="stable") if len(exits) else exits
+        if len(out):
             lines = [f"- **{r.quantity}** ({r.species}) first leaves ±{s.rtol:g} at snapshot "
-                     f"{int(r.snapshot)}" for r in exits.head(8).itertuples()]
-            if len(exits) > 8:
-                lines.append(f"- … and {len(exits) - 8} more (every curve is drawn below)")
+                     f"{int(r.snapshot)}" for r in out.head(8).itertuples()]
+            if len(out) > 8:
+                lines.append(f"- … and {len(out) - 8} more (every curve is drawn below)")
             facts = "\n".join(lines)
         else:
-            facts = f"Every total stays within ±{s.rtol:g} of the first snapshot."
+            facts = (f"Every checked total (count, weight and charge per species; momentum and "
+                     f"total energy of all) stays within ±{s.rtol:g} of the first snapshot.")
+        others = len(exits) - len(out) if len(exits) else 0
+        if others:
+            facts += (f"\n\n{others} other curve(s) — per-species momentum and energy, field energy — "
+                      "are drawn for context; they need not be conserved on their own, so no band "
+                      "is drawn for them.")
         # one pane per total, three to a row: a single bokeh grid (or a flex box) of many
         # plots beside the controls and the dynamic views was left unpainted by the browser
         items = list(fig) if isinstance(fig, hv.Layout) else [fig]

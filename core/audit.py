@@ -596,6 +596,12 @@ def _select(df: pd.DataFrame, quantities) -> pd.DataFrame:
     return df[keep]
 
 
+def checked_pairs(drift_df: pd.DataFrame, quantities=None) -> list[tuple[str, str]]:
+    """The (species, quantity) pairs ``check`` judges in a drift table (the default set unless named)."""
+    sel = _select(drift_df, quantities)
+    return list(dict.fromkeys(zip(sel["species"].astype(str), sel["quantity"].astype(str))))
+
+
 def _pct(x: float) -> str:
     if not np.isfinite(x):
         return "n/a"

@@ -132,10 +132,6 @@ def read_column(piece: Piece, name: str) -> np.ndarray:
     return arr
 
 
-def read_piece(piece: Piece, columns) -> dict[str, np.ndarray]:
-    return {c: read_column(piece, c) for c in columns}
-
-
 def frame_pieces(frame: Frame, columns=None, target_bytes: int | None = None) -> list[Piece]:
     """Pieces covering every row of ``frame`` in order.
 

@@ -194,6 +194,10 @@ def _content_box(fig, artists, renderer):
             max(b.x1 for b in boxes) / fw, max(b.y1 for b in boxes) / fh)
 
 
+#: least gap between a plot and its colour bar, as a share of the figure width
+_BAR_GAP = 0.02
+
+
 def _fit(fig) -> None:
     axes = [a for a in fig.axes if a.get_visible()]
     bars = [a for a in axes if _is_colorbar(a)]
@@ -212,7 +216,8 @@ def _fit(fig) -> None:
     # layout without full draws: apply the aspect by hand, measure, move (twice converges)
     ax.apply_aspect()
     box = ax.get_position(original=False)
-    links = [(cb, cb.get_position().x0 - box.x1, cb.get_position().width) for cb in bars]
+    # the bar was placed beside the box before the aspect shrank it: keep it clear of the plot
+    links = [(cb, max(cb.get_position().x0 - box.x1, _BAR_GAP), cb.get_position().width) for cb in bars]
     for _ in range(2):
         x0, y0, x1, y1 = _content_box(fig, [ax, *bars], renderer)
         pos = ax.get_position(original=True)

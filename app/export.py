@@ -12,12 +12,12 @@ import math
 import os
 import re
 import time
-from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from ..core.errors import InputError, OptionError
+from ..core.frame import transient_columns
 from .png import use_headless_matplotlib
 
 TABLE_NAMES = ("census.csv", "migration.csv", "migration_summary.csv", "drift.csv")
@@ -418,7 +418,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
             frames = [run[i].species[sp] for _, i, sp, *_ in group]
             layout = ctx.layout(group[0][1])
             # one range for a pair of columns in every snapshot and species, so views compare
-            with _forgetting(frames):
+            with transient_columns(frames):
                 rng = view_ranges(ctx, frames, (xcol, ycol), layout, opts.ranges)
             equal = all(_is_position(f, xcol) and _is_position(f, ycol) for f in frames)
             grid = view_grid(opts, rng[xcol], rng[ycol], equal, max(f.length for f in frames))
@@ -426,7 +426,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
                 snap = run[i]
                 frame = snap.species[sp]
                 title = f"{name} · {sp} · {_when(snap, i)}"
-                with _forgetting([frame]):
+                with transient_columns([frame]):
                     agg, img = density_view(frame, xcol, ycol, grid=grid, x_range=rng[xcol],
                                             y_range=rng[ycol], cmap=opts.cmap, scaling=opts.scale,
                                             title=title, equal=equal)
@@ -449,7 +449,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
         for i, map_path, bar_path in census_figs:
             snap = run[i]
             layout = ctx.layout(i)
-            blocks, ranks, imb = snapshot_census(ctx, i, census_df)
+            blocks, ranks, imb = audit.snapshot_census(ctx, i, audit.ALL, census_df)
             xl, yl = _position_labels(ctx, i, species)
             title = f"{name} · particles per block, all species · {_when(snap, i)}"
             obj = F.census_map(blocks, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl)
@@ -466,7 +466,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
         # migration -------------------------------------------------------------------------------
         for a, b, heat_path, disp_path in migration_figs:
             table = migration_df[(migration_df["from_snapshot"] == a) & (migration_df["to_snapshot"] == b)]
-            disp, steps = pair_displacements(ctx, a, b, species)
+            disp, steps = audit.pair_displacements(ctx, a, b, species)
             if not len(table) and not disp.size:
                 notes.append(f"snapshots {a} → {b}: no particle could be matched (no ids), so "
                              "there are no migration figures for this pair")
@@ -554,61 +554,6 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
 
 
 # per-snapshot pieces the figures need (compositions of core.audit and diagnostics) ----------
-@contextmanager
-def _forgetting(frames):
-    """Drop afterwards the columns read inside the block (an export of every snapshot stays small)."""
-    before = [(f, set(getattr(f, "_cache", {}))) for f in frames]
-    try:
-        yield
-    finally:
-        for f, had in before:
-            cache = getattr(f, "_cache", None)
-            if cache is not None:
-                for k in [k for k in cache if k not in had]:
-                    del cache[k]
-
-
-def snapshot_census(ctx, i: int, census_df):
-    """(blocks, ranks, imbalance) of snapshot ``i`` over every species, for the census figures."""
-    from ..core import audit
-    blocks = census_df[(census_df["snapshot"] == i) & (census_df["species"] == audit.ALL)]
-    ranks = audit.rank_table(ctx, i)
-    ranks = ranks[ranks["species"] == audit.ALL]
-    imb = audit.imbalance_table(ctx, [i])
-    row = imb[(imb["species"] == audit.ALL) & (imb["by"] == "rank")]
-    figures = row.iloc[0].to_dict() if len(row) else None
-    return blocks, ranks, figures
-
-
-def pair_displacements(ctx, a: int, b: int, species) -> tuple[np.ndarray, int | None]:
-    """Displacement in level-0 cells of every particle matched between snapshots a and b."""
-    from ..diagnostics.migration import DuplicateKeyError, displacement_cells, match_keys
-    sa, sb = ctx.run[a], ctx.run[b]
-    layout = ctx.layout(a)
-    steps = (sb.step - sa.step) if (sa.step is not None and sb.step is not None) else None
-    parts = []
-    for sp in species:
-        fa, fb = sa.species.get(sp), sb.species.get(sp)
-        if fa is None or fb is None or fa.ndim != layout.ndim or fb.ndim != layout.ndim:
-            continue
-        ka, kb = fa.key_columns(), fb.key_columns()
-        if not ka or not kb or len(ka) != len(kb):
-            continue
-        with _forgetting([fa, fb]):
-            keys_a = tuple(fa[c] for c in ka)
-            keys_b = tuple(fb[c] for c in kb)
-            try:
-                m = match_keys(keys_a if len(keys_a) > 1 else keys_a[0],
-                               keys_b if len(keys_b) > 1 else keys_b[0])
-            except DuplicateKeyError:
-                continue   # core.audit has noted it for the migration tables
-            pa = [np.asarray(p)[m.ia] for p in fa.positions()]
-            pb = [np.asarray(p)[m.ib] for p in fb.positions()]
-            parts.append(displacement_cells(pa, pb, layout))
-    disp = np.concatenate(parts) if parts else np.zeros(0)
-    return disp, (int(steps) if steps is not None and steps > 0 else None)
-
-
 def snapshot_deposit(ctx, i: int, species) -> np.ndarray:
     """Cloud-in-cell deposit of weight of every species on the level-0 cells, indexed [ix, iy(, iz)]."""
     from ..diagnostics.deposit import deposit
@@ -619,7 +564,7 @@ def snapshot_deposit(ctx, i: int, species) -> np.ndarray:
         f = snap.species.get(sp)
         if f is None or f.ndim != layout.ndim or not f.length:
             continue
-        with _forgetting([f]):
+        with transient_columns([f]):
             total += deposit(f.positions(), f.per_particle("weight", 1.0), layout, order="cic")
     return total
 

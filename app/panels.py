@@ -340,18 +340,12 @@ def _species_rows(df: pd.DataFrame, species: str) -> pd.DataFrame:
 def snapshot_census(ctx, i: int, species: str):
     """Block census, rank census and rank imbalance of one snapshot for one species (or all)."""
     from ..core import audit
-    blocks = _species_rows(audit.census_table(ctx, [i]), species)
-    ranks = _species_rows(audit.rank_table(ctx, i), species)
-    imb = _species_rows(audit.imbalance_table(ctx, [i]), species)
-    imb = imb[imb["by"] == "rank"] if len(imb) else imb
-    facts = imb.iloc[0].to_dict() if len(imb) else None
-    return blocks, ranks, facts
+    return audit.snapshot_census(ctx, i, species)
 
 
 def snapshot_migration(ctx, a: int, b: int, species: str, progress=None):
     """(moves, summary, displacements in level-0 cells, steps apart) between snapshots a and b."""
     from ..core import audit
-    from ..diagnostics.migration import DuplicateKeyError, displacement_cells, match_keys
     if progress:
         progress(0, 3)
     moves, summary = audit.migration_tables(ctx, [(a, b)])
@@ -359,28 +353,11 @@ def snapshot_migration(ctx, a: int, b: int, species: str, progress=None):
     summary = _species_rows(summary, species)
     if progress:
         progress(2, 3)
-    sa, sb = ctx.run[a], ctx.run[b]
-    layout = ctx.layout(a)
     names = [n for n in ctx.species_names() if species in (ALL_SPECIES, n)]
-    disp = []
-    for n in names:
-        fa, fb = sa.species.get(n), sb.species.get(n)
-        if fa is None or fb is None or fa.ndim != layout.ndim or fb.ndim != layout.ndim:
-            continue
-        ka, kb = fa.key_columns(), fb.key_columns()
-        if not ka or not kb or len(ka) != len(kb):
-            continue
-        try:
-            m = match_keys(tuple(fa[c] for c in ka) if len(ka) > 1 else fa[ka[0]],
-                           tuple(fb[c] for c in kb) if len(kb) > 1 else fb[kb[0]])
-        except DuplicateKeyError:
-            continue
-        disp.append(displacement_cells([p[m.ia] for p in fa.positions()],
-                                       [p[m.ib] for p in fb.positions()], layout))
-    steps = (sb.step - sa.step) if (sa.step is not None and sb.step is not None) else None
+    disp, steps = audit.pair_displacements(ctx, a, b, names)
     if progress:
         progress(3, 3)
-    return moves, summary, (np.concatenate(disp) if disp else np.zeros(0)), steps
+    return moves, summary, disp, steps
 
 
 def run_drift(ctx, progress=None):

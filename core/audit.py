@@ -10,7 +10,6 @@ snapshot's files change).
 from __future__ import annotations
 
 import math
-from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -25,6 +24,7 @@ from .cache import cached_reduction, layout_fingerprint
 from .context import AuditContext
 from .dask_backend import census_if_partitioned, migration_if_partitioned, totals_if_partitioned
 from .errors import OptionError
+from .frame import transient_columns
 from .layout import assign_blocks
 
 CENSUS_COLUMNS = ["snapshot", "step", "time", "species", "block", "level", "rank", "count", "weight"]
@@ -91,19 +91,7 @@ def _present_species(ctx: AuditContext, i: int) -> list[str]:
     return [s for s in ctx.species_names() if s in snap.species]
 
 
-@contextmanager
-def _transient(frames):
-    """Forget afterwards the columns this block read (keep what others had cached)."""
-    before = [(f, set(getattr(f, "_cache", {}))) for f in frames]
-    try:
-        yield
-    finally:
-        for f, had in before:
-            cache = getattr(f, "_cache", None)
-            if cache is None:
-                continue
-            for k in [k for k in cache if k not in had]:
-                del cache[k]
+_transient = transient_columns
 
 
 def _block_ids(ctx: AuditContext, frame, layout, where: str) -> np.ndarray:
@@ -700,3 +688,53 @@ def _format_table(table: pd.DataFrame, limit: int) -> list[str]:
         lines.append(f"... {len(table) - limit} more (all within the band)"
                      if (table["status"].iloc[limit:] == "ok").all() else f"... {len(table) - limit} more")
     return lines
+
+
+def snapshot_census(ctx: AuditContext, i: int, species: str = ALL, census_df: pd.DataFrame | None = None):
+    """(blocks, ranks, rank imbalance facts) of snapshot ``i`` for one species or ``all``.
+
+    What the census figures of the screen and the report draw; ``census_df``
+    (a ``census_table``) spares a second pass when the caller has it.
+    """
+    blocks = census_df if census_df is not None else census_table(ctx, [i])
+    blocks = blocks[(blocks["snapshot"] == i) & (blocks["species"].astype(str) == species)]
+    ranks = rank_table(ctx, i)
+    ranks = ranks[ranks["species"].astype(str) == species]
+    imb = imbalance_table(ctx, [i])
+    row = imb[(imb["species"].astype(str) == species) & (imb["by"] == "rank")] if len(imb) else imb
+    facts = row.iloc[0].to_dict() if len(row) else None
+    return blocks, ranks, facts
+
+
+def pair_displacements(ctx: AuditContext, a: int, b: int, species) -> tuple[np.ndarray, int | None]:
+    """Displacement in level-0 cells of every particle matched between snapshots a and b.
+
+    ``species`` is a list of names; species without a key (or with repeated
+    keys, which the migration tables note) are left out. Returns the
+    displacements and the steps between the snapshots (None when unknown).
+    """
+    from ..diagnostics.migration import displacement_cells, match_keys
+    sa, sb = ctx.run[a], ctx.run[b]
+    layout = ctx.layout(a)
+    steps = (sb.step - sa.step) if (sa.step is not None and sb.step is not None) else None
+    parts = []
+    for sp in species:
+        fa, fb = sa.species.get(sp), sb.species.get(sp)
+        if fa is None or fb is None or fa.ndim != layout.ndim or fb.ndim != layout.ndim:
+            continue
+        ka, kb = fa.key_columns(), fb.key_columns()
+        if not ka or not kb or len(ka) != len(kb):
+            continue
+        with transient_columns([fa, fb]):
+            keys_a = tuple(fa[c] for c in ka)
+            keys_b = tuple(fb[c] for c in kb)
+            try:
+                m = match_keys(keys_a if len(keys_a) > 1 else keys_a[0],
+                               keys_b if len(keys_b) > 1 else keys_b[0])
+            except DuplicateKeyError:
+                continue
+            pa = [np.asarray(p)[m.ia] for p in fa.positions()]
+            pb = [np.asarray(p)[m.ib] for p in fb.positions()]
+            parts.append(displacement_cells(pa, pb, layout))
+    disp = np.concatenate(parts) if parts else np.zeros(0)
+    return disp, (int(steps) if steps is not None and steps > 0 else None)

@@ -8,6 +8,7 @@ touches the other columns.
 
 from __future__ import annotations
 
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from typing import Callable, Mapping
 
@@ -256,3 +257,21 @@ class Snapshot:
         return Snapshot(self.path, {k: f.with_role_map(role_map) for k, f in self.species.items()},
                         self.step, self.time, dict(self.meta), self.layout, list(self.warnings),
                         list(self.parts), self.time_unit)
+
+
+@contextmanager
+def transient_columns(frames):
+    """Forget afterwards the columns read inside the block (keep what was cached before).
+
+    A pass over every snapshot of a run then holds one snapshot's columns at a time.
+    """
+    before = [(f, set(getattr(f, "_cache", {}))) for f in frames]
+    try:
+        yield
+    finally:
+        for f, had in before:
+            cache = getattr(f, "_cache", None)
+            if cache is None:
+                continue
+            for k in [k for k in cache if k not in had]:
+                del cache[k]

@@ -99,20 +99,14 @@ def _line_starts(path: str, offset: int):
     Vectorised: a line starts at ``offset`` or after a newline.
     """
     at_start = True
-    with open(path, "rb") as fh:
-        fh.seek(offset)
-        while True:
-            buf = fh.read(CHUNK)
-            if not buf:
-                return
-            a = np.frombuffer(buf, np.uint8)
-            nl = np.flatnonzero(a == NL)
-            starts = nl + 1
-            if at_start:
-                starts = np.concatenate(([0], starts))
-            at_start = a[-1] == NL
-            starts = starts[starts < a.size]
-            yield a[starts], starts, nl
+    for a in _chunks(path, offset):
+        nl = np.flatnonzero(a == NL)
+        starts = nl + 1
+        if at_start:
+            starts = np.concatenate(([0], starts))
+        at_start = a[-1] == NL
+        starts = starts[starts < a.size]
+        yield a[starts], starts, nl
 
 
 def _count_lines(path: str, offset: int) -> tuple[int, int]:

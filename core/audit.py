@@ -10,6 +10,7 @@ snapshot's files change).
 from __future__ import annotations
 
 import math
+from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -94,6 +95,21 @@ def _present_species(ctx: AuditContext, i: int) -> list[str]:
 _transient = transient_columns
 
 
+@contextmanager
+def _held_open(*frames):
+    """Keep the frames' files open while one reduction reads several of their columns.
+
+    A reader offers this as ``loader.hold()``; other loaders open per read as before.
+    """
+    with ExitStack() as stack:
+        for f in frames:
+            for name in f.columns:
+                hold = getattr(f.loader(name), "hold", None)
+                if hold is not None:
+                    stack.enter_context(hold())
+        yield
+
+
 def _block_ids(ctx: AuditContext, frame, layout, where: str) -> np.ndarray:
     if frame.ndim == layout.ndim and frame.ndim > 0:
         return assign_blocks(frame.positions(), layout)
@@ -165,7 +181,7 @@ def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
         if got is not None:
             out[s] = tuple(got)
             continue
-        with _transient([frame]):
+        with _transient([frame]), _held_open(frame):
             out[s] = _drift.snapshot_totals(frame, ctx.relativistic, ctx.c, with_nonfinite=True)
     return out
 

@@ -98,10 +98,14 @@ def _get(name):
         if name not in _compiled:
             import numba
             g = globals()
-            for helper in ("_axis_cells", "_wider"):
+            for helper in ("_axis_cells", "_wider", "_fin"):
                 if not hasattr(g[helper], "py_func"):
                     g[helper] = numba.njit(nogil=True, inline="always")(g[helper])
-            _compiled[name] = numba.njit(cache=True, nogil=True)(g["_" + name])
+            # IEEE results (inf, NaN) instead of exceptions on a zero division: the totals count
+            # them; 'reassoc' lets the block sums vectorise (no 'nnan'/'ninf': NaNs are counted)
+            opts = {"fastmath": {"reassoc", "nsz"}} if name == "totals" else {}
+            _compiled[name] = numba.njit(cache=True, nogil=True, error_model="numpy",
+                                         **opts)(g["_" + name])
     return _compiled[name]
 
 
@@ -162,3 +166,203 @@ def matched_pairs(ia, ib, block_b, pa, pb, layout):
 def _trim(buf, n):
     # a slice pins the whole buffer: copy when that would waste more than half of it
     return buf[:n] if 2 * n >= buf.shape[0] else buf[:n].copy()
+
+
+# Conserved totals ------------------------------------------------------------------------
+#: slots of the totals accumulators (see :func:`snapshot_sums`)
+TOTAL_SLOTS = ("weight", "charge", "abs_charge", "momentum_0", "momentum_1", "momentum_2",
+               "abs_momentum", "kinetic_energy")
+#: rows summed plainly before their sum joins the compensated total: short enough that the
+#: plain part loses no more than numpy's pairwise sum does, long enough to vectorise
+TOTALS_BLOCK = 256
+#: below this many rows the totals use numpy (no compile)
+TOTALS_MIN_SIZE = 100_000
+
+_INF = np.inf
+
+
+def _fin(t):
+    # a term and whether it is finite (NaN fails the comparison)
+    return t if abs(t) < _INF else 0.0, 0 if abs(t) < _INF else 1
+
+
+def _totals(n, w, sw, q, sq, m, sm, c0, c1, c2, sc, nc, want_q, want_ke, kind, rel, cc,
+            acc, comp, bad):
+    # Every total in one pass over the rows, a short block at a time: the block's columns are
+    # read from memory once and stay in cache while each total's simple loop runs over them
+    # (simple loops vectorise; one loop with every branch inside does not). Terms are formed
+    # with the numpy path's operations in its order; only the summation differs: float64
+    # sums within a block, Neumaier-compensated sums of the blocks. A column given as one
+    # value has stride 0 (sw, sq, sm, sc) and is read from a block-long constant buffer.
+    B = TOTALS_BLOCK
+    c2c = cc * cc
+    f = np.empty(B)
+    mag2 = np.empty(B)
+    q2 = np.empty(B)
+    wk = np.full(B, w[0])
+    qk = np.full(B, q[0])
+    mk = np.full(B, m[0])
+    part = np.zeros(8)
+    nbad = np.zeros(8, np.int64)
+    start = 0
+    while start < n:
+        stop = min(start + B, n)
+        L = stop - start
+        wb = w[start:stop] if sw else wk[:L]
+        mb = m[start:stop] if sm else mk[:L]
+        s = 0.0
+        b = 0
+        for j in range(L):
+            t, k = _fin(np.float64(wb[j]))
+            s += t
+            b += k
+        part[0] = s
+        nbad[0] += b
+        if want_q:
+            qb = q[start:stop] if sq else qk[:L]
+            s = 0.0
+            s2 = 0.0
+            b = 0
+            for j in range(L):
+                t, k = _fin(np.float64(wb[j]) * np.float64(qb[j]))
+                s += t
+                s2 += abs(t)
+                b += k
+            part[1] = s
+            part[2] = s2
+            nbad[1] += b
+            nbad[2] += b
+        if nc > 0:
+            if kind == 2:
+                for j in range(L):
+                    f[j] = np.float64(wb[j])
+            else:
+                for j in range(L):
+                    f[j] = np.float64(wb[j]) * np.float64(mb[j])
+            for a in range(nc):
+                cb = (c0 if a == 0 else c1 if a == 1 else c2)[start:stop]
+                s = 0.0
+                b = 0
+                if a == 0:
+                    for j in range(L):
+                        v = np.float64(cb[j])
+                        p = f[j] * v
+                        mag2[j] = p * p
+                        q2[j] = v * v
+                        t, k = _fin(p)
+                        s += t
+                        b += k
+                else:
+                    for j in range(L):
+                        v = np.float64(cb[j])
+                        p = f[j] * v
+                        mag2[j] = mag2[j] + p * p
+                        q2[j] = q2[j] + v * v
+                        t, k = _fin(p)
+                        s += t
+                        b += k
+                part[3 + a] = s
+                nbad[3 + a] += b
+            s = 0.0
+            b = 0
+            for j in range(L):
+                t, k = _fin(np.sqrt(mag2[j]))
+                s += t
+                b += k
+            part[6] = s
+            nbad[6] += b
+            if want_ke:
+                s = 0.0
+                b = 0
+                if not rel and kind == 2:
+                    for j in range(L):
+                        t, k = _fin(np.float64(wb[j]) * (0.5 * q2[j] / np.float64(mb[j])))
+                        s += t
+                        b += k
+                elif not rel:
+                    for j in range(L):
+                        t, k = _fin(np.float64(wb[j]) * (0.5 * np.float64(mb[j]) * q2[j]))
+                        s += t
+                        b += k
+                elif kind == 2:
+                    for j in range(L):
+                        mi = np.float64(mb[j])
+                        gamma = np.sqrt(1.0 + (q2[j] / (mi * mi)) / c2c)
+                        e = np.sqrt(q2[j]) * cc if mi == 0 else q2[j] / (mi * (gamma + 1.0))
+                        t, k = _fin(np.float64(wb[j]) * e)
+                        s += t
+                        b += k
+                else:
+                    for j in range(L):
+                        mi = np.float64(mb[j])
+                        u2 = q2[j] / (1.0 - q2[j] / c2c) if kind == 0 else q2[j]
+                        gamma = np.sqrt(1.0 + u2 / c2c)
+                        t, k = _fin(np.float64(wb[j]) * (mi * u2 / (gamma + 1.0)))
+                        s += t
+                        b += k
+                part[7] = s
+                nbad[7] += b
+        for k in range(8):
+            # Neumaier: the low bits a large running total would drop are kept in comp
+            x = part[k]
+            t = acc[k] + x
+            if abs(acc[k]) >= abs(x):
+                comp[k] += (acc[k] - t) + x
+            else:
+                comp[k] += (x - t) + acc[k]
+            acc[k] = t
+            part[k] = 0.0
+        start = stop
+    for k in range(8):
+        bad[k] += nbad[k]
+
+
+def _column(value):
+    """(array, stride): a float64 column as it is, anything else as float64; a scalar with stride 0."""
+    a = np.asarray(value)
+    if a.ndim == 0:
+        return np.full(1, a, dtype=np.float64), 0
+    if a.dtype != np.float64 and a.dtype != np.float32:
+        a = a.astype(np.float64)
+    return np.ascontiguousarray(a), 1
+
+
+class TotalSums:
+    """Running compensated sums of the totals; :func:`snapshot_sums` adds rows to them."""
+
+    def __init__(self):
+        self.acc = np.zeros(8)
+        self.comp = np.zeros(8)
+        self.bad = np.zeros(8, np.int64)
+
+    def result(self) -> tuple[np.ndarray, np.ndarray]:
+        return self.acc + self.comp, self.bad
+
+
+def snapshot_sums(n, weight, charge, mass, components, kind: str, relativistic: bool, c: float,
+                  want_ke: bool, into: TotalSums | None = None) -> TotalSums:
+    """Add ``n`` rows to the totals (slots :data:`TOTAL_SLOTS`), reading each column once.
+
+    ``weight``, ``charge``, ``mass`` are arrays or single values (``charge`` None:
+    no charge; ``mass`` None only with ``kind='p'``); ``components`` the 0-3
+    momentum arrays. float32 columns are read as they are and widened per row.
+    """
+    out = into or TotalSums()
+    w, sw = _column(weight)
+    want_q = charge is not None
+    q, sq = _column(charge if want_q else 0.0)
+    m, sm = _column(1.0 if mass is None else mass)
+    comps = [np.asarray(x) for x in components]
+    nc = len(comps)
+    if nc:
+        dt = np.result_type(*[x.dtype for x in comps])
+        dt = dt if dt in (np.float32, np.float64) else np.float64
+        comps = [np.ascontiguousarray(x, dtype=dt) for x in comps]
+        cs = 1
+    else:
+        comps, cs = [np.zeros(1)], 0
+    comps = (comps + [comps[0]] * 3)[:3]
+    code = {"v": 0, "u": 1, "p": 2}[kind]
+    _get("totals")(int(n), w, sw, q, sq, m, sm, comps[0], comps[1], comps[2], cs, nc, want_q,
+                   bool(want_ke and nc), code, bool(relativistic), float(c), out.acc, out.comp, out.bad)
+    return out

@@ -13,6 +13,9 @@ import math
 import numpy as np
 import pandas as pd
 
+from ..core.errors import InputError
+from . import _kernels
+
 #: quantities of one species of one snapshot, in table order
 PARTICLE_QUANTITIES = ("count", "weight", "charge", "momentum_x", "momentum_y", "momentum_z",
                        "kinetic_energy")
@@ -108,6 +111,20 @@ def _frame_mass(frame):
     return frame.per_particle("mass", None)
 
 
+def _totals_inputs(frame):
+    """What the totals read: weight, charge, mass, momentum kind, (axis, column name) pairs."""
+    w = frame.per_particle("weight", 1.0)
+    q = frame.per_particle("charge", None)
+    kind = frame.momentum_kind()
+    m = _frame_mass(frame)
+    axes = []
+    if kind and (kind == "p" or m is not None):
+        roles = {"v": ("vx", "vy", "vz"), "u": ("ux", "uy", "uz"), "p": ("px", "py", "pz")}[kind]
+        axes = [(axis, frame.column_for(r)) for axis, r in zip("xyz", roles)
+                if frame.column_for(r) is not None]
+    return w, q, m, kind, axes
+
+
 def snapshot_totals(frame, relativistic: bool = False, c=None, with_nonfinite: bool = False):
     """Totals of one frame: count, weight, charge, momentum_x/y/z, kinetic_energy, scales.
 
@@ -115,7 +132,113 @@ def snapshot_totals(frame, relativistic: bool = False, c=None, with_nonfinite: b
     are absent. ``abs_momentum`` is Σ |w m v| (the momentum scale) and
     ``abs_charge`` Σ |w q| (the charge scale when the net charge is zero).
     With ``with_nonfinite`` returns ``(values, nonfinite)`` dicts.
+
+    Large frames are reduced by one compiled pass (:func:`fused_totals`);
+    small ones, or without numba, by numpy (:func:`numpy_totals`). The two
+    agree to rounding: both sum float64 terms formed the same way.
     """
+    n = len(frame)
+    if _kernels.available and n >= _kernels.TOTALS_MIN_SIZE:
+        values, bad = fused_totals(frame, relativistic, c)
+    else:
+        values, bad = numpy_totals(frame, relativistic, c)
+    return (values, bad) if with_nonfinite else values
+
+
+def _source(frame, role: str, default):
+    """(column name, None) when a column plays ``role``, else (None, attribute or default); reads nothing."""
+    name = frame.column_for(role)
+    if name is not None:
+        return name, None
+    if role in frame.attrs and frame.attrs[role] is not None:
+        return None, float(frame.attrs[role])
+    return None, default
+
+
+def fused_totals(frame, relativistic: bool = False, c=None) -> tuple[dict, dict]:
+    """``(values, nonfinite)`` of :func:`snapshot_totals` in one compiled pass over the columns."""
+    n = len(frame)
+    sources = {"weight": _source(frame, "weight", 1.0), "charge": _source(frame, "charge", None),
+               "mass": _source(frame, "mass", None)}
+    kind = frame.momentum_kind()
+    has_q = sources["charge"] != (None, None)
+    has_m = sources["mass"] != (None, None)
+    axes = []
+    if kind and (kind == "p" or has_m):
+        roles = {"v": ("vx", "vy", "vz"), "u": ("ux", "uy", "uz"), "p": ("px", "py", "pz")}[kind]
+        axes = [(axis, frame.column_for(r)) for axis, r in zip("xyz", roles)
+                if frame.column_for(r) is not None]
+    cc = _speed_of_light(c) if relativistic and has_m and axes else 1.0
+    names = [nm for nm, _ in sources.values()] + [nm for _, nm in axes]
+    names = [nm for nm in dict.fromkeys(names) if nm is not None]
+    chunks = _row_chunks(frame, names)
+    if chunks is None:
+        chunks = [(0, n, {nm: frame[nm] for nm in names})]
+    sums = _kernels.TotalSums()
+    for start, stop, cols in chunks:
+        got = {r: (cols[nm] if nm is not None else v) for r, (nm, v) in sources.items()}
+        _kernels.snapshot_sums(stop - start, got["weight"], got["charge"], got["mass"],
+                               [cols[nm] for _, nm in axes], kind or "v", relativistic, cc,
+                               want_ke=has_m, into=sums)
+    total, nbad = sums.result()
+    slot = {name: k for k, name in enumerate(_kernels.TOTAL_SLOTS)}
+    values: dict[str, float] = {"count": float(n)}
+    bad: dict[str, int] = {"count": 0}
+
+    def put(name, k):
+        values[name] = float(total[k])
+        bad[name] = int(nbad[k])
+
+    put("weight", slot["weight"])
+    if has_q:
+        put("charge", slot["charge"])
+        put("abs_charge", slot["abs_charge"])
+    for k, (axis, _) in enumerate(axes):
+        put(f"momentum_{axis}", slot[f"momentum_{k}"])
+    if axes:
+        put("abs_momentum", slot["abs_momentum"])
+        if has_m:
+            put("kinetic_energy", slot["kinetic_energy"])
+    return values, bad
+
+
+#: rows read at a time when a frame's columns are streamed (see :func:`_row_chunks`)
+CHUNK_ROWS = 1 << 17
+
+
+def _row_chunks(frame, names):
+    """``(start, stop, {name: rows})`` pieces of the named columns, or None to read them whole.
+
+    Streaming applies when none of the columns is in memory yet and every
+    loader reads row ranges: the pieces stay in cache for the compiled pass
+    and no full-length column is allocated (or kept) for a total.
+    """
+    n = len(frame)
+    cache = getattr(frame, "_cache", {})
+    if n <= CHUNK_ROWS or not names or any(nm in cache for nm in names):
+        return None
+    readers = {nm: getattr(frame.loader(nm), "rows", None) for nm in names}
+    if any(r is None for r in readers.values()):
+        return None
+
+    def pieces():
+        for start in range(0, n, CHUNK_ROWS):
+            stop = min(start + CHUNK_ROWS, n)
+            cols = {}
+            for nm, rows in readers.items():
+                arr = np.asarray(rows(start, stop))
+                if arr.shape != (stop - start,):
+                    raise InputError(frame.source, f"column '{nm}' of species '{frame.species}' "
+                                     f"gave {arr.shape[0] if arr.ndim else 0} rows for the range "
+                                     f"{start}..{stop}")
+                cols[nm] = arr
+            yield start, stop, cols
+        frame.reads += len(readers)
+    return pieces()
+
+
+def numpy_totals(frame, relativistic: bool = False, c=None) -> tuple[dict, dict]:
+    """``(values, nonfinite)`` of :func:`snapshot_totals`, one numpy reduction per total."""
     values: dict[str, float] = {}
     bad: dict[str, int] = {}
 
@@ -127,42 +250,32 @@ def snapshot_totals(frame, relativistic: bool = False, c=None, with_nonfinite: b
     n = len(frame)
     values["count"] = float(n)
     bad["count"] = 0
-    w = frame.per_particle("weight", 1.0)
+    w, q, m, kind, axes = _totals_inputs(frame)
     w_arr = np.asarray(w, dtype=np.float64)
     put("weight", w_arr if w_arr.ndim else np.full(n, float(w_arr)) if n else np.zeros(0))
-    q = frame.per_particle("charge", None)
     if q is not None:
         wq = w_arr * np.asarray(q, dtype=np.float64)
         if wq.ndim == 0:
             wq = np.full(n, float(wq))
         put("charge", wq)
         put("abs_charge", np.abs(wq))
-    kind = frame.momentum_kind()
-    names = frame.momentum_names() if kind else []
-    m = _frame_mass(frame)
-    if names and (kind == "p" or m is not None):
-        comps = [np.asarray(frame[nm], dtype=np.float64) for nm in names]
-        roles = {"v": ("vx", "vy", "vz"), "u": ("ux", "uy", "uz"), "p": ("px", "py", "pz")}[kind]
+    if axes:
+        comps = [np.asarray(frame[nm], dtype=np.float64) for _, nm in axes]
         factor = w_arr if kind == "p" else w_arr * np.asarray(m, dtype=np.float64)
-        present = {r: frame.column_for(r) for r in roles}
         mag2 = None
-        for axis, r in zip("xyz", roles):
-            col = present.get(r)
-            if col is None:
-                continue
-            p = factor * np.asarray(frame[col], dtype=np.float64)
+        for (axis, _), comp in zip(axes, comps):
+            p = factor * comp
             if p.ndim == 0:
                 p = np.full(n, float(p))
             put(f"momentum_{axis}", p)
             mag2 = p * p if mag2 is None else mag2 + p * p
-        if mag2 is not None:
-            put("abs_momentum", np.sqrt(mag2))
+        put("abs_momentum", np.sqrt(mag2))
         if m is not None:
             terms = kinetic_energy_terms(m, w_arr, comps, kind, relativistic, c)
             if terms.ndim == 0:
                 terms = np.full(n, float(terms))
             put("kinetic_energy", terms)
-    return (values, bad) if with_nonfinite else values
+    return values, bad
 
 
 def _scale_for(quantity: str, ref_row: dict, run_max: float) -> tuple[float, str | None]:

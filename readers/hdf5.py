@@ -1,5 +1,9 @@
 """HDF5 snapshots (h5py, read-only; every column read opens, reads one dataset or field, closes).
 
+A caller reducing several columns of one file can hold it open for the while
+(``loader.hold()``, a context manager): the reads inside share one read-only
+handle, closed when the last holder leaves.
+
 How a file becomes columns:
 
 * a group with datasets of one leading length is a particle table (a species named after the
@@ -15,6 +19,8 @@ How a file becomes columns:
 from __future__ import annotations
 
 import os
+import threading
+from contextlib import contextmanager
 
 import numpy as np
 
@@ -237,6 +243,62 @@ def _read_scalar(ds):
         return None
 
 
+_held = threading.local()
+
+
+def _held_files() -> dict:
+    files = getattr(_held, "files", None)
+    if files is None:
+        files = _held.files = {}
+    return files
+
+
+@contextmanager
+def _hold(path: str):
+    """Keep ``path`` open read-only in this thread until the outermost holder leaves."""
+    import h5py
+    files = _held_files()
+    entry = files.get(path)
+    if entry is None:
+        try:
+            fh = h5py.File(path, "r")
+        except H5_ERRORS as exc:
+            raise InputError(path, _problem(exc)) from None
+        entry = files[path] = [fh, 0, {}]
+    entry[1] += 1
+    try:
+        yield
+    finally:
+        entry[1] -= 1
+        if entry[1] == 0:
+            del files[path]
+            entry[0].close()
+
+
+@contextmanager
+def _dataset(path: str, dsname: str):
+    """The dataset, from the file held open (looked up once per hold) or opened for this read."""
+    held = _held_files().get(path)
+    if held is not None:
+        ds = held[2].get(dsname)
+        if ds is None:
+            ds = held[2][dsname] = held[0][dsname]
+        yield ds
+        return
+    import h5py
+    with h5py.File(path, "r") as fh:
+        yield fh[dsname]
+
+
+#: reads smaller than this skip the free-memory check (it costs more than such a read)
+CHECK_MEMORY_FROM = 16 * 2**20
+
+
+def _check_memory(path, what, nbytes):
+    if nbytes >= CHECK_MEMORY_FROM:
+        check_fits_memory(path, what, nbytes)
+
+
 def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=None):
     """Read one column: the whole 1-D dataset, one column slice, or one compound field.
 
@@ -244,10 +306,8 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
     partitioned engines that split one big file into row ranges.
     """
     def load(rows=None) -> np.ndarray:
-        import h5py
         try:
-            with h5py.File(path, "r") as fh:
-                ds = fh[dsname]
+            with _dataset(path, dsname) as ds:
                 sl = slice(None) if rows is None else slice(*rows)
                 n = len(range(*sl.indices(int(ds.shape[0]))))
                 if field is not None:
@@ -255,12 +315,12 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
                     sub = ds.dtype
                     for name in fpath:
                         sub = sub.fields[name][0]
-                    check_fits_memory(path, f"dataset '{dsname}'", n * sub.itemsize)
+                    _check_memory(path, f"dataset '{dsname}'", n * sub.itemsize)
                     # h5py converts only the named field: the other fields never reach memory
                     got = ds[fpath[0]] if rows is None else ds[fpath[0], sl]
                     arr = take_field(got, fpath[1:], fcomp)
                 else:
-                    check_fits_memory(path, f"dataset '{dsname}'", n * ds.dtype.itemsize)
+                    _check_memory(path, f"dataset '{dsname}'", n * ds.dtype.itemsize)
                     if rows is None:
                         arr = ds[()] if comp is None else ds[:, comp]
                     else:
@@ -276,7 +336,9 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
         arr.flags.writeable = False     # like the other readers' columns: the frame's cache is shared
         return arr
     hint = None if dtype is None else np.dtype(dtype).newbyteorder("=")
-    return sliceable(lambda: load(), lambda start, stop: load((start, stop)), hint)
+    out = sliceable(lambda: load(), lambda start, stop: load((start, stop)), hint)
+    out.hold = lambda: _hold(path)
+    return out
 
 
 def _has_signature(path: str) -> bool:

@@ -1,0 +1,131 @@
+"""The one-pass compiled totals equal the numpy totals (one numpy reduction per quantity).
+
+Reference: numpy's own sums (pairwise summation) over the same per-particle terms. Both paths
+form each term with the same float64 operations, so they differ only in summation order; the
+tolerance is 1e-12 of the quantity's absolute scale (Σ|term|): numpy's pairwise sum is
+accurate to about log2(n)·eps of that scale, the compiled pass (plain sums over 256 rows,
+compensated sums of the blocks) to about 256·eps ≈ 6e-14 (Higham, "Accuracy and Stability
+of Numerical Algorithms", ch. 4, from memory). Non-finite counts must match exactly.
+"""
+
+from __future__ import annotations
+
+import h5py
+import numpy as np
+import pytest
+
+from _audit_runs import frame
+from swarmaudit.diagnostics import _kernels, drift
+from swarmaudit.readers.hdf5 import HDF5Reader
+
+pytestmark = pytest.mark.skipif(not _kernels.available, reason="numba is not installed")
+
+RTOL = 1e-12
+
+
+def _scale(values, quantity):
+    if quantity.startswith("momentum_"):
+        return values["abs_momentum"]
+    if quantity == "charge":
+        return values["abs_charge"]
+    return abs(values[quantity])
+
+
+def _assert_same(a, b):
+    (va, ba), (vb, bb) = a, b
+    assert ba == bb
+    assert va.keys() == vb.keys()
+    for q in va:
+        assert abs(va[q] - vb[q]) <= RTOL * max(_scale(va, q), 1e-300), (q, va[q], vb[q])
+
+
+def _columns(rng, n, kind, dtype, array_weight, array_mass, nan):
+    cols = {"x": rng.random(n)}
+    for axis in "xyz":
+        cols[f"{kind}{axis}"] = rng.normal(0.0, 0.3, n).astype(dtype)
+    attrs = {}
+    if array_weight:
+        cols["w"] = (rng.random(n) + 0.5).astype(dtype)
+        cols["q"] = rng.normal(0.0, 1.0, n).astype(dtype)
+    else:
+        attrs["charge"] = -1.0
+    if array_mass:
+        cols["mass"] = (rng.random(n) + 0.5).astype(dtype)
+        if kind == "p":
+            cols["mass"][:3] = 0.0          # massless particles carry E = |p| c
+    else:
+        attrs["mass"] = 2.0
+    if nan:
+        cols[f"{kind}y"][5] = np.nan
+        cols[f"{kind}x"][7] = np.inf
+        if array_weight:
+            cols["w"][11] = np.nan
+            cols["q"][13] = -np.inf
+    return cols, attrs
+
+
+@pytest.mark.parametrize("kind", ["v", "u", "p"])
+@pytest.mark.parametrize("relativistic", [False, True])
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("array_weight,array_mass", [(True, True), (False, False), (True, False)])
+def test_fused_equals_numpy(kind, relativistic, dtype, array_weight, array_mass):
+    rng = np.random.default_rng([ord(kind), relativistic, array_weight, array_mass])
+    cols, attrs = _columns(rng, 5000, kind, dtype, array_weight, array_mass, nan=True)
+    f = frame("e", cols, attrs)
+    c = 1.0 if relativistic else None      # c = 1: speeds of 0.3 c make γ matter
+    want = drift.numpy_totals(f, relativistic, c)
+    got = drift.fused_totals(f, relativistic, c)
+    _assert_same(got, want)
+    assert got[1]["kinetic_energy"] > 0      # the NaN/inf rows were counted, not summed
+
+
+def test_faster_than_light_and_missing_columns():
+    n = 1000
+    vx = np.linspace(-2.0, 2.0, n)           # |v| >= c = 1 for half of them: non-finite energy
+    f = frame("e", {"x": np.zeros(n), "vx": vx, "vz": vx[::-1].copy()}, {"mass": 1.0})
+    _assert_same(drift.fused_totals(f, True, 1.0), drift.numpy_totals(f, True, 1.0))
+    no_mass = frame("e", {"x": np.zeros(n), "px": vx}, {})        # momentum, no mass: no energy
+    got = drift.fused_totals(no_mass)
+    _assert_same(got, drift.numpy_totals(no_mass))
+    assert "kinetic_energy" not in got[0] and "charge" not in got[0]
+    bare = frame("e", {"x": np.zeros(n)}, {})
+    _assert_same(drift.fused_totals(bare), drift.numpy_totals(bare))
+
+
+def test_snapshot_totals_takes_the_compiled_path_for_large_frames(monkeypatch):
+    rng = np.random.default_rng(7)
+    cols, attrs = _columns(rng, 3000, "u", np.float64, True, True, nan=True)
+    f = frame("e", cols, attrs)
+    calls = []
+    real = _kernels.snapshot_sums
+    monkeypatch.setattr(_kernels, "snapshot_sums", lambda *a, **k: calls.append(1) or real(*a, **k))
+    monkeypatch.setattr(_kernels, "TOTALS_MIN_SIZE", 1000)
+    fast = drift.snapshot_totals(f, True, 1.0, with_nonfinite=True)
+    assert calls
+    monkeypatch.setattr(_kernels, "available", False)
+    _assert_same(fast, drift.snapshot_totals(f, True, 1.0, with_nonfinite=True))
+
+
+def test_streamed_rows_from_hdf5_equal_whole_columns(tmp_path, monkeypatch):
+    rng = np.random.default_rng(11)
+    n = 10_007                                          # not a multiple of the piece size
+    path = tmp_path / "s.h5"
+    with h5py.File(path, "w") as fh:
+        g = fh.create_group("e")
+        g.attrs["mass"] = 3.0
+        g["x"] = rng.random(n)
+        g["vx"] = rng.normal(size=n).astype(np.float32)
+        g["vy"] = rng.normal(size=n)
+        g["weight"] = rng.random(n)
+        g["charge"] = rng.normal(size=n)
+        g["vy"][17] = np.nan
+    monkeypatch.setattr(drift, "CHUNK_ROWS", 1000)
+    f = HDF5Reader().open(str(path)).species["e"]
+    streamed = drift.fused_totals(f)
+    assert f._cache == {}                               # pieces only: no column kept
+    whole = HDF5Reader().open(str(path)).species["e"]
+    for name in whole.columns:
+        whole[name]                                     # in memory: read whole, not streamed
+    _assert_same(streamed, drift.fused_totals(whole))
+    _assert_same(streamed, drift.numpy_totals(whole))
+    assert streamed[1]["momentum_y"] == 1

@@ -93,6 +93,77 @@ def _pairs(ia, ib, want_block, block_b, tb, d, xa, ya, za, xb, yb, zb, h, per, n
         disp[k] = w
 
 
+# A migration summary of dense keys (counts, moves, displacement; no per-pair arrays). The
+# second snapshot's block and coordinates are scattered into one record per key (write-only:
+# no read stalls), so that the pass over the first snapshot finds all it needs about a
+# particle's partner in one cache line, and stayers are counted per block on the spot.
+# Record field 0 says what is known of the key: 0 never seen, 0.5 seen only in a, -1 matched,
+# >= 1 in b and not (yet) matched, as 1 + its block - blo.
+def _dense_summary(ka, kb, rec, block_a, block_b, blo, diag, d, xa, ya, za, xb, yb, zb, h, per, n,
+                   steps, mf, mt, stats):
+    nb = kb.shape[0]
+    for j in range(nb):
+        k = kb[j]
+        rec[k, 0] = 1.0 + (block_b[j] - blo)
+        if d > 0:
+            rec[k, 1] = xb[j]
+        if d > 1:
+            rec[k, 2] = yb[j]
+        if d > 2:
+            rec[k, 3] = zb[j]
+    h0, h1, h2, p0, p1, p2, n0, n1, n2 = h[0], h[1], h[2], per[0], per[1], per[2], n[0], n[1], n[2]
+    m = 0
+    nl = 0
+    dup_a = 0
+    moved = 0
+    nonfinite = 0
+    over = 0
+    widest = 0.0
+    for i in range(ka.shape[0]):
+        k = ka[i]
+        r = rec[k, 0]
+        if r >= 1.0:
+            fb = block_a[i]
+            tb = np.int64(r - 1.0) + blo
+            if fb == tb:
+                diag[fb - blo] += 1
+            else:
+                mf[moved] = fb
+                mt[moved] = tb
+                moved += 1
+            if d > 0:
+                w = _axis_cells(xa[i], rec[k, 1], h0, p0, n0)
+                if d > 1:
+                    w = _wider(w, _axis_cells(ya[i], rec[k, 2], h1, p1, n1))
+                if d > 2:
+                    w = _wider(w, _axis_cells(za[i], rec[k, 3], h2, p2, n2))
+                if abs(w) < np.inf:
+                    if w > widest:
+                        widest = w
+                else:
+                    nonfinite += 1
+                over += w > steps
+            m += 1
+            rec[k, 0] = -1.0
+        elif r == 0.0:
+            nl += 1
+            rec[k, 0] = 0.5
+        else:
+            dup_a += 1
+    nc = 0
+    for k in range(rec.shape[0]):
+        nc += rec[k, 0] >= 1.0
+    stats[0] = m
+    stats[1] = nl
+    stats[2] = nc
+    stats[3] = dup_a
+    stats[4] = nb - nc - m          # rows of b beyond the distinct keys: repeated ids
+    stats[5] = moved
+    stats[6] = nonfinite
+    stats[7] = over
+    return widest
+
+
 def _get(name):
     with _lock:
         if name not in _compiled:
@@ -161,6 +232,41 @@ def matched_pairs(ia, ib, block_b, pa, pb, layout):
     disp = np.empty(ia.shape[0], dtype=np.float64)
     _get("pairs")(ia, ib, want, blocks, tb, d, *pa, *pb, h, per, n, disp)
     return (tb if want else None), disp
+
+
+def dense_summary(ka, kb, span, block_a, block_b, pa, pb, layout, steps):
+    """Match dense keys and summarise the moves in one compiled pass, or None.
+
+    Returns ``("dup", side, count)``, or ``(counts, stats, moved_from, moved_to, blo)``:
+    ``counts[b - blo]`` particles stayed in block ``b``; the movers' blocks; stats
+    ``matched, lost, created, migrated, nonfinite, over, widest`` (over: displacement >
+    ``steps``; widest: the largest finite displacement, 0.0 when none). None when the
+    block ids span too wide a range to count stayers in an array.
+    """
+    na, nb = ka.shape[0], kb.shape[0]
+    block_a = np.ascontiguousarray(block_a, dtype=np.int64)
+    block_b = np.ascontiguousarray(block_b, dtype=np.int64)
+    lo = min(int(block_a.min(initial=0)), int(block_b.min(initial=0)))
+    hi = max(int(block_a.max(initial=0)), int(block_b.max(initial=0)))
+    if hi - lo >= 2 ** 26:
+        return None
+    d, pa, pb, h, per, n = _geometry(pa, pb, layout)
+    rec = np.zeros((span, 1 + d))
+    diag = np.zeros(hi - lo + 1, dtype=np.int64)
+    k = min(na, nb)
+    mf = np.empty(k, dtype=np.int64)
+    mt = np.empty(k, dtype=np.int64)
+    stats = np.zeros(8, dtype=np.int64)
+    widest = _get("dense_summary")(np.ascontiguousarray(ka), np.ascontiguousarray(kb), rec, block_a,
+                                    block_b, lo, diag, d, *pa, *pb, h, per, n, float(steps), mf, mt,
+                                    stats)
+    del rec
+    m, nl, nc, dup_a, dup_b, moved, nonfinite, over = (int(v) for v in stats)
+    if dup_b:
+        return ("dup", "second", dup_b)
+    if dup_a:
+        return ("dup", "first", dup_a)
+    return diag, (m, nl, nc, moved, nonfinite, over, float(widest)), mf[:moved].copy(), mt[:moved].copy(), lo
 
 
 def _trim(buf, n):

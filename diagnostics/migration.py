@@ -255,19 +255,7 @@ def transfer_matrix(from_block, to_block, sparse: bool = False):
             fs -= lo
         diag = np.bincount(fs, minlength=span) if fs.size else np.zeros(span, np.int64)
         dblk = np.flatnonzero(diag) + lo
-        dcnt = diag[dblk - lo]
-        fm, tm = f[~stay], t[~stay]
-        if span < 2 ** 31:
-            code = (fm - lo) * span + (tm - lo)
-            u, c = np.unique(code, return_counts=True)
-            mf, mt = u // span + lo, u % span + lo
-        else:
-            uu, c = np.unique(np.stack([fm, tm], axis=1), axis=0, return_counts=True)
-            mf, mt = uu[:, 0], uu[:, 1]
-        pairs = np.concatenate([np.stack([dblk, dblk], axis=1), np.stack([mf, mt], axis=1)])
-        counts = np.concatenate([dcnt, c]).astype(np.int64)
-        order = np.lexsort((pairs[:, 1], pairs[:, 0]))
-        pairs, counts = pairs[order], counts[order]
+        pairs, counts = _moves_table(dblk, diag[dblk - lo], f[~stay], t[~stay])
     if sparse:
         from scipy import sparse as sp
         labels = np.unique(pairs.reshape(-1)) if pairs.size else np.zeros(0, dtype=np.int64)
@@ -275,6 +263,33 @@ def transfer_matrix(from_block, to_block, sparse: bool = False):
         j = np.searchsorted(labels, pairs[:, 1])
         m = sp.coo_array((counts, (i, j)), shape=(labels.size, labels.size))
         return m, labels
+    return _transfer_frame(pairs, counts)
+
+
+def _moves_table(dblk, dcnt, fm, tm):
+    """(pairs, counts) sorted by from, to: stayers ``dcnt`` per block ``dblk``, then each mover."""
+    fm = np.asarray(fm, dtype=np.int64)
+    tm = np.asarray(tm, dtype=np.int64)
+    if fm.size:
+        lo = int(min(fm.min(), tm.min()))
+        span = int(max(fm.max(), tm.max())) - lo + 1
+    else:
+        lo, span = 0, 1
+    if span < 2 ** 31:
+        code = (fm - lo) * span + (tm - lo)
+        u, c = np.unique(code, return_counts=True)
+        mf, mt = u // span + lo, u % span + lo
+    else:
+        uu, c = np.unique(np.stack([fm, tm], axis=1), axis=0, return_counts=True)
+        mf, mt = uu[:, 0], uu[:, 1]
+    dblk = np.asarray(dblk, dtype=np.int64)
+    pairs = np.concatenate([np.stack([dblk, dblk], axis=1), np.stack([mf, mt], axis=1)])
+    counts = np.concatenate([dcnt, c]).astype(np.int64)
+    order = np.lexsort((pairs[:, 1], pairs[:, 0]))
+    return pairs[order], counts[order]
+
+
+def _transfer_frame(pairs, counts) -> pd.DataFrame:
     return pd.DataFrame({"from_block": pairs[:, 0], "to_block": pairs[:, 1], "count": counts})
 
 
@@ -377,30 +392,49 @@ def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: Bl
     pb = [np.asarray(p) for p in pos_b] if with_pos else None
     fast = (_kernels.available and max(block_a.shape[0], block_b.shape[0]) >= _kernels.MIN_SIZE
             and (not with_pos or (layout.ndim <= 3 and len(pa) == len(pb) == layout.ndim)))
-    m = match_keys(keys_a, keys_b)
-    disp = None
-    if fast and with_pos:
-        # the b side's block and displacement gathered in one pass over the pairs
-        tb, disp = _kernels.matched_pairs(m.ia, m.ib, block_b, pa, pb, layout)
-    else:
-        tb = block_b[m.ib]
-    fb = block_a[m.ia]
-    migrated = int(np.count_nonzero(fb != tb))
-    transfer = transfer_matrix(fb, tb)
     nsteps = int(steps) if steps is not None and np.isfinite(steps) and steps >= 1 else 1
+    plan = _plan(keys_a, keys_b) if fast else None
     notes = []
     max_disp, over, nonfinite = np.nan, 0, 0
-    if with_pos:
-        if disp is None:
-            disp = matched_displacement(pa, pb, m.ia, m.ib, layout)
-        finite = np.isfinite(disp)
-        nonfinite = int(disp.size - np.count_nonzero(finite))
-        if nonfinite:
-            notes.append(f"{nonfinite} matched particle(s) have a non-finite position; "
-                         "their displacement is left out")
-        if disp.size - nonfinite:
-            max_disp = float(np.max(disp, where=finite, initial=0.0))
-        over = int(np.count_nonzero(disp > nsteps))   # more than one cell per step; NaN never counts
+    got = None
+    if plan is not None and plan[0] == "dense" and rank_a is None and rank_b is None:
+        # match, both sides' blocks, displacement and the moves in one compiled pass
+        got = _kernels.dense_summary(plan[1], plan[2], plan[3], block_a, block_b, pa, pb, layout,
+                                     nsteps)
+    if got is not None:
+        if isinstance(got[0], str):
+            raise DuplicateKeyError(got[2], got[1])
+        diag, (matched, nlost, ncreated, migrated, nonfinite, over, widest), mf, mt, blo = got
+        if with_pos and matched - nonfinite:
+            max_disp = widest
+        dblk = np.flatnonzero(diag)
+        transfer = _transfer_frame(*_moves_table(dblk + blo, diag[dblk], mf, mt))
+    else:
+        if plan is None:
+            m = match_keys(keys_a, keys_b)
+        else:
+            m = plan[1] if plan[0] == "done" else _dense_match(*plan[1:])
+        matched, nlost, ncreated = int(m.ia.size), int(m.lost.size), int(m.created.size)
+        disp = None
+        if fast and with_pos:
+            # the b side's block and displacement gathered in one pass over the pairs
+            tb, disp = _kernels.matched_pairs(m.ia, m.ib, block_b, pa, pb, layout)
+        else:
+            tb = block_b[m.ib]
+        fb = block_a[m.ia]
+        migrated = int(np.count_nonzero(fb != tb))
+        if with_pos:
+            if disp is None:
+                disp = matched_displacement(pa, pb, m.ia, m.ib, layout)
+            finite = np.isfinite(disp)
+            nonfinite = int(disp.size - np.count_nonzero(finite))
+            if disp.size - nonfinite:
+                max_disp = float(np.max(disp, where=finite, initial=0.0))
+            over = int(np.count_nonzero(disp > nsteps))   # more than one cell per step; NaN never counts
+        transfer = transfer_matrix(fb, tb)
+    if nonfinite:
+        notes.append(f"{nonfinite} matched particle(s) have a non-finite position; "
+                     "their displacement is left out")
     lb = layout_b if layout_b is not None else layout
     if rank_a is None and rank_b is None:
         # ranks follow the blocks: the transfer table already holds every move, per block pair
@@ -420,7 +454,7 @@ def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: Bl
         else:
             rb = _owner(lb, tb) if lb is not None else np.full(tb.shape, -1, dtype=np.int64)
         traffic = rank_traffic(ra, rb)
-    return MigrationResult(matched=int(m.ia.size), migrated=migrated, created=int(m.created.size),
-                           lost=int(m.lost.size), max_displacement_cells=max_disp, over_one_cell=over,
+    return MigrationResult(matched=matched, migrated=migrated, created=ncreated,
+                           lost=nlost, max_displacement_cells=max_disp, over_one_cell=over,
                            steps=nsteps, transfer=transfer, traffic=traffic,
                            nonfinite_displacement=nonfinite, notes=notes)

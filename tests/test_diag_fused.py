@@ -129,3 +129,92 @@ def test_streamed_rows_from_hdf5_equal_whole_columns(tmp_path, monkeypatch):
     _assert_same(streamed, drift.fused_totals(whole))
     _assert_same(streamed, drift.numpy_totals(whole))
     assert streamed[1]["momentum_y"] == 1
+
+
+# migration: the one-pass summary of dense ids against match_keys + gathers (numpy path) ---------
+import pandas as pd  # noqa: E402
+
+from swarmaudit.core.layout import assign_blocks, regular_layout  # noqa: E402
+from swarmaudit.diagnostics.migration import DuplicateKeyError, migrate  # noqa: E402
+
+
+def _pair(rng, n, d, lay, dtype=np.float64):
+    """Two snapshots: 2 % lost, 1 % created, shuffled, small moves (some across blocks)."""
+    ids_a = rng.permutation(n).astype(np.int64) + 5           # dense, not starting at 0
+    pa = [rng.random(n) * (lay.domain_upper[k] - lay.domain_lower[k]) + lay.domain_lower[k]
+          for k in range(d)]
+    keep = rng.random(n) > 0.02
+    born = np.arange(n + 5, n + 5 + n // 100, dtype=np.int64)
+    order = rng.permutation(int(keep.sum()) + born.size)
+    ids_b = np.concatenate([ids_a[keep], born])[order]
+    pb = []
+    for k in range(d):
+        lo, hi = lay.domain_lower[k], lay.domain_upper[k]
+        moved = pa[k][keep] + rng.normal(0, 0.05 * (hi - lo), int(keep.sum()))
+        moved = lo + np.mod(moved - lo, hi - lo)
+        pb.append(np.concatenate([moved, lo + rng.random(born.size) * (hi - lo)])[order].astype(dtype))
+    return ids_a, ids_b, pa, pb
+
+
+def _both_paths(monkeypatch, *args, **kw):
+    calls = []
+    real = _kernels.dense_summary
+    monkeypatch.setattr(_kernels, "dense_summary", lambda *a, **k: calls.append(1) or real(*a, **k))
+    fast = migrate(*args, **kw)
+    assert calls, "the one-pass summary was not used"
+    monkeypatch.setattr(_kernels, "available", False)
+    slow = migrate(*args, **kw)
+    monkeypatch.setattr(_kernels, "available", True)
+    s_fast, s_slow = fast.summary(), slow.summary()
+    assert np.isnan(s_fast.pop("max_displacement_cells")) == np.isnan(s_slow["max_displacement_cells"])
+    if not np.isnan(s_slow["max_displacement_cells"]):
+        assert fast.max_displacement_cells == s_slow["max_displacement_cells"]
+    s_slow.pop("max_displacement_cells")
+    assert s_fast == s_slow
+    assert fast.nonfinite_displacement == slow.nonfinite_displacement and fast.notes == slow.notes
+    pd.testing.assert_frame_equal(fast.transfer, slow.transfer)
+    pd.testing.assert_frame_equal(fast.traffic, slow.traffic)
+    return fast
+
+
+@pytest.mark.parametrize("d", [1, 2, 3])
+def test_migration_summary_equals_numpy_path(monkeypatch, d):
+    rng = np.random.default_rng(40 + d)
+    bounds = [0, 1, -1, 1, 0, 2][:2 * d]
+    lay = regular_layout(bounds, [16, 8, 4][:d], [4, 2, 2][:d], periodic=("x", "z")[: max(1, d - 1)],
+                         ranks=3)
+    ids_a, ids_b, pa, pb = _pair(rng, _kernels.MIN_SIZE + 700, d, lay,
+                                 dtype=np.float32 if d == 2 else np.float64)
+    pa[0][3] = np.nan                                          # non-finite: counted, left out
+    ba, bb = assign_blocks(pa, lay), assign_blocks(pb, lay)    # NaN position: block -1
+    res = _both_paths(monkeypatch, ids_a, ids_b, ba, bb, pa, pb, lay, steps=3)
+    assert res.migrated > 0 and res.created > 0 and res.lost > 0 and res.nonfinite_displacement >= 1
+
+
+def test_migration_summary_without_positions_and_with_float_ids(monkeypatch):
+    rng = np.random.default_rng(50)
+    lay = regular_layout([0, 1, 0, 1], [8, 8], [2, 2], ranks=2)
+    ids_a, ids_b, pa, pb = _pair(rng, _kernels.MIN_SIZE + 100, 2, lay)
+    ba, bb = assign_blocks(pa, lay), assign_blocks(pb, lay)
+    res = _both_paths(monkeypatch, ids_a.astype(np.float64), ids_b.astype(np.float64), ba, bb,
+                      layout=lay)
+    assert np.isnan(res.max_displacement_cells)
+
+
+@pytest.mark.parametrize("side", ["first", "second"])
+def test_migration_summary_reports_repeated_ids_like_the_numpy_path(monkeypatch, side):
+    rng = np.random.default_rng(60)
+    lay = regular_layout([0, 1, 0, 1], [8, 8], [2, 2])
+    ids_a, ids_b, pa, pb = _pair(rng, _kernels.MIN_SIZE + 100, 2, lay)
+    if side == "first":
+        ids_a[10:13] = ids_a[0]
+    else:
+        ids_b[10:12] = ids_b[0]
+    ba, bb = assign_blocks(pa, lay), assign_blocks(pb, lay)
+    errors = []
+    for available in (True, False):
+        monkeypatch.setattr(_kernels, "available", available)
+        with pytest.raises(DuplicateKeyError) as exc:
+            migrate(ids_a, ids_b, ba, bb, pa, pb, lay)
+        errors.append((exc.value.side, exc.value.count))
+    assert errors[0] == errors[1] == (side, 3 if side == "first" else 2)

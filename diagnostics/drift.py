@@ -325,11 +325,17 @@ def drift_table(rows) -> pd.DataFrame:
     scale = np.full(n, np.nan)
     ref_snap = np.zeros(n, dtype=np.int64)
     note = np.full(n, "", dtype=object)
+    # plain arrays: a few hundred rows in many small groups, where pandas indexing would dominate
+    all_vals = df["value"].to_numpy(dtype=np.float64)
+    abs_m = df["abs_momentum"].to_numpy(dtype=np.float64)
+    abs_q = df["abs_charge"].to_numpy(dtype=np.float64)
+    snaps = df["snapshot"].to_numpy()
     for (species, quantity), idx in df.groupby(["species", "quantity"], sort=False).indices.items():
-        g = df.iloc[idx]
-        first = g.iloc[0].to_dict()
+        i0 = idx[0]
+        first = {"value": all_vals[i0], "abs_momentum": abs_m[i0], "abs_charge": abs_q[i0],
+                 "snapshot": snaps[i0]}
         r = float(first["value"])
-        vals = g["value"].to_numpy(dtype=np.float64)
+        vals = all_vals[idx]
         finite = np.isfinite(vals)
         run_max = float(np.max(np.abs(vals[finite]))) if finite.any() else np.nan
         sc, why = _scale_for(quantity, first, run_max)

@@ -21,6 +21,11 @@ from ..core.errors import OptionError
 from ..core.run import Run
 from .state import SCAN_SECONDS, SERVED, URL_KEYS, ServedRuns
 
+#: how long a page's session waits for its browser to connect. Bokeh's 15 s is short when many
+#: pages load at once on a busy machine: a session dropped before its browser connects is made
+#: again on connect without the server's own style sheet addresses, and the page then asks a
+#: public CDN for them (missing styles on a machine without internet)
+UNUSED_SESSION_MS = 120_000
 #: how often each page looks for a rescan (the folders are listed at most every SCAN_SECONDS)
 FOLLOW_SECONDS = SCAN_SECONDS
 
@@ -192,7 +197,8 @@ def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
     origins = [f"{h}:{port}" for h in hosts]
 
     kwargs = dict(port=port, address=address, websocket_origin=origins, show=False, start=False,
-                  title="swarmaudit", verbose=False, cookie_secret=secrets.token_urlsafe(32))
+                  title="swarmaudit", verbose=False, cookie_secret=secrets.token_urlsafe(32),
+                  unused_session_lifetime_milliseconds=UNUSED_SESSION_MS)
     if share:
         kwargs.update(basic_auth=password)
         tmpl = _login_template()

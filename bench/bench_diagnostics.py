@@ -100,9 +100,14 @@ def run(n: int = 10_000_000, repeat: int = 3) -> list[dict]:
         _kernels.available = True
         row("  match_keys, numpy path", t, "numpy.argsort(ids)", base, "")
     t, base = side_by_side(migration, argsort, r)
-    row("migrate (match + moves + displacement)", t, "numpy.argsort(ids)", base, "")
+    row("migrate (match + moves + displacement)", t, "numpy.argsort(ids)", base, "<= 1")
     t, base = side_by_side(migration, merge, max(1, r - 1))
     row("migrate (match + moves + displacement)", t, "pandas.merge on id", base, "")
+    if _kernels.available:
+        _kernels.available = False
+        t, base = side_by_side(migration, argsort, r)
+        _kernels.available = True
+        row("  migrate, numpy path", t, "numpy.argsort(ids)", base, "")
 
     def hist2d():
         return np.histogram2d(x, y, bins=512, range=[[0, 1], [0, 1]])

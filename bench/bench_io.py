@@ -8,8 +8,9 @@
   binning them over their finite range: what a hand-written script does;
 * drift over a run: the drift table of ``S`` snapshots (a fresh context, no
   persistent cache), against h5py reading the columns the totals need from
-  every file; and the same drift table again on a new context, served by
-  the persistent cache.
+  every file, run in turn with it; the same with the numpy totals (numba
+  off); and the same drift table again on a new context, served by the
+  persistent cache (what opening the run and its metadata costs).
 
 The data (one 8-column float64 file, and a run) is written under ``--dir``
 (default: a temporary folder in /tmp) and removed afterwards. Both sides read
@@ -22,8 +23,10 @@ from __future__ import annotations
 import argparse
 import os
 import shutil
+import statistics
 import sys
 import tempfile
+import time
 
 import h5py
 import numpy as np
@@ -97,6 +100,17 @@ def first_frame_rows(path: str, repeat: int) -> list[dict]:
                 "h5py read x, y + datashader", t_base, "<= 1.3")]
 
 
+def alternating(fn, base, repeat: int) -> tuple[float, float]:
+    """Medians of fn and base run in turn, so that a change in machine load hits both alike."""
+    a, b = [], []
+    for _ in range(max(1, repeat)):
+        for f, out in ((fn, a), (base, b)):
+            t = time.perf_counter()
+            f()
+            out.append(time.perf_counter() - t)
+    return statistics.median(a), statistics.median(b)
+
+
 def drift_rows(folder: str, paths: list[str], repeat: int) -> list[dict]:
     from swarmaudit.core import audit
     from swarmaudit.core.context import AuditContext
@@ -117,8 +131,18 @@ def drift_rows(folder: str, paths: list[str], repeat: int) -> list[dict]:
         return out
 
     ours()
-    t_ours = timed(ours, repeat, warm=False)
-    t_base = timed(baseline, repeat)
+    baseline()
+    t_ours, t_base = alternating(ours, baseline, repeat)
+    from swarmaudit.diagnostics import _kernels
+    numpy_rows = []
+    if _kernels.available:
+        _kernels.available = False           # the same table from one numpy pass per total
+        try:
+            t_numpy, t_base2 = alternating(ours, baseline, repeat)
+        finally:
+            _kernels.available = True
+        numpy_rows = [row("  drift, numpy totals", t_numpy, f"h5py reads of weight, vx, vy ({len(paths)} files)",
+                          t_base2, "")]
     cache_dir = tempfile.mkdtemp(prefix="swarmaudit-bench-cache-")
     old = os.environ.get("SWARMAUDIT_CACHE")
     os.environ["SWARMAUDIT_CACHE"] = cache_dir
@@ -133,7 +157,7 @@ def drift_rows(folder: str, paths: list[str], repeat: int) -> list[dict]:
         shutil.rmtree(cache_dir, ignore_errors=True)
     n = len(paths)
     return [row(f"drift over a run of {n} snapshots", t_ours, f"h5py reads of weight, vx, vy ({n} files)",
-                t_base, "<= 1.5"),
+                t_base, "<= 1.5")] + numpy_rows + [
             row(f"drift over the same run, reopened (reduction cache)", t_cached,
                 f"h5py reads of weight, vx, vy ({n} files)", t_base, "",
                 note="open and metadata only")]

@@ -1,4 +1,4 @@
-"""Compiled loops for the migration diagnostics, where numpy would need several passes.
+"""Compiled loops for the migration and drift diagnostics, where numpy would need several passes.
 
 Optional: numba comes with datashader; when it is missing, or an input is
 small, callers use their numpy path (same answers; tests compare both).
@@ -6,7 +6,9 @@ Kernels compile on first use and numba caches them on disk.
 
 Matching two snapshots of N particles is bound by random memory access
 (looking ids up, gathering the second snapshot's blocks and positions). The
-kernels avoid numpy's full-size temporaries and extra passes.
+kernels avoid numpy's full-size temporaries and extra passes. The totals of a
+snapshot (count, weight, charge, momentum, kinetic energy, their non-finite
+counts) are one pass over its columns instead of one numpy pass per total.
 """
 
 from __future__ import annotations

@@ -187,6 +187,24 @@ def guard_outputs(paths, inputs: set[str]) -> None:
                                  "overwrites an input", "choose another --out folder")
 
 
+def guard_run_folder(out: str, ctx) -> None:
+    """Refuse to write into a folder the run's snapshots are found in.
+
+    The tables are CSV files: written beside the snapshots, the next command
+    on that folder would read them as snapshots of the run.
+    """
+    folders = set()
+    for ref in ctx.run.refs:
+        if len(ref.paths) == 1:
+            folders.add(os.path.realpath(os.path.dirname(os.path.abspath(ref.paths[0]))))
+        else:      # a folder of per-rank files, inside the run folder
+            folders.add(os.path.realpath(os.path.abspath(ref.path)))
+            folders.add(os.path.realpath(os.path.dirname(os.path.abspath(ref.path))))
+    if os.path.realpath(out) in folders:
+        raise OptionError(f"--out {out} is a folder of the run itself: the tables written there "
+                          "would be read as snapshots next time; choose another folder")
+
+
 def _safe(name: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(name)).strip("_") or "species"
 
@@ -375,6 +393,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     report_path = plan.file(REPORT_NAME)
     ctx.layout(chosen[0])   # finds a layout file beside the run, which is an input too
     guard_outputs(plan.paths, input_files(ctx, args))
+    guard_run_folder(out, ctx)
     os.makedirs(plan.figdir, exist_ok=True)
 
     total = (len(views) + 2 * len(census_figs) + 2 * len(migration_figs) + (1 if drift_fig else 0)

@@ -84,6 +84,19 @@ def context_from_options(args, follow: bool = True) -> AuditContext:
                        relativistic=getattr(args, "relativistic", False), c=getattr(args, "c", None),
                        use_cache=not getattr(args, "no_cache", False))
     ctx.notes.extend(run.skipped)
+    check_role_columns(role_map, run)
     from ..core.dask_backend import configure
     configure(ctx.engine, ctx.scheduler)   # images follow the same engine as the tables
     return ctx
+
+
+def check_role_columns(role_map: RoleMap, run) -> None:
+    """A role or key the user named must point at a column some species of the run has."""
+    first = run[0]
+    columns = {c for f in first.species.values() for c in f.columns}
+    named = [(f"--role {r}={c}", c) for r, c in role_map.overrides.items()]
+    named += [(f"--id {','.join(role_map.key)}", c) for c in (role_map.key or ())]
+    for what, col in named:
+        if col not in columns:
+            raise OptionError(f"{what}: no species of {first.path} has a column '{col}'; "
+                              f"columns are: {', '.join(sorted(columns))}")

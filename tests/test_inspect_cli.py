@@ -67,6 +67,8 @@ def test_inspect_text_mentions_problems(tmp_path, capsys):
     (["inspect", "{tmp}", "--domain", "0,1,0,1", "--cells", "10,10", "--blocks", "3,3"], "multiple"),
     (["inspect", "{tmp}", "--periodic", "q"], "--periodic"),
     (["inspect", "{tmp}", "--role", "bogus=x"], "unknown role"),
+    (["inspect", "{tmp}", "--role", "weight=nope"], "no species"),
+    (["inspect", "{tmp}", "--id", "id,cpu"], "'cpu'"),
 ])
 def test_inspect_bad_options_exit_2(tmp_path, capsys, args, needle):
     _write_run(tmp_path, snapshots=1)

@@ -176,7 +176,7 @@ def _why(exc: SwarmAuditError) -> str:
     path, problem = getattr(exc, "path", None), getattr(exc, "problem", None)
     if problem is None:
         return str(exc)
-    return f"{os.path.basename(path)} {problem}" if path else problem
+    return f"{os.path.basename(path)}: {problem}" if path else problem
 
 
 def _order_key(ref: SnapshotRef, snap: Snapshot, by_step: bool) -> tuple:
@@ -215,6 +215,15 @@ def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True) -> R
         opened.append((ref, snap))
     if not opened:
         if skipped:
+            # nothing opens at all: a file being written is the less likely story, so say what
+            # is wrong with the first one plainly
+            for ref in refs:
+                try:
+                    open_ref(ref, role_map)
+                except InputError as exc:
+                    hint = "; ".join(h for h in (exc.hint, "if the simulation is still writing it, "
+                                                 "try again when it is done") if h)
+                    raise InputError(exc.path or ref.path, exc.problem, hint) from None
             raise InputError(source, "no snapshot can be opened yet: " + "; ".join(skipped))
         raise InputError(source, "holds no snapshot files")
     have_steps = all(s.step is not None for _, s in opened)

@@ -76,3 +76,12 @@ def test_inspect_bad_options_exit_2(tmp_path, capsys, args, needle):
     assert main(args) == 2
     err = capsys.readouterr().err
     assert needle in err and "Traceback" not in err
+
+
+def test_a_run_where_nothing_opens_says_what_is_wrong(tmp_path, capsys):
+    # freshly written, so it could be "still being written" — but when no snapshot opens at all,
+    # the real problem of the file is what the user needs to read
+    np.savez(tmp_path / "a_0001.npz", x=np.zeros(3), y=np.zeros(4))
+    assert main(["inspect", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert "a_0001.npz" in err and "length" in err and "Traceback" not in err

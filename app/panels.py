@@ -90,7 +90,8 @@ class SidePanels(param.Parameterized):
         """(block table, rank table, imbalance over ranks) of snapshot ``i``, species in view."""
         s = self.state
         key = ("census", _run_key(s), int(i), s.species)
-        return _cached(key, lambda: snapshot_census(s.served.ctx, int(i), s.species))
+        from ..core import audit
+        return _cached(key, lambda: audit.snapshot_census(s.served.ctx, int(i), s.species))
 
     def block_counts(self, i: int):
         """Particles per layout row of snapshot ``i`` (for tinting the block overlay)."""
@@ -335,12 +336,6 @@ def _species_rows(df: pd.DataFrame, species: str) -> pd.DataFrame:
     if df is None or not len(df) or "species" not in df:
         return df
     return df[df["species"].astype(str) == species]
-
-
-def snapshot_census(ctx, i: int, species: str):
-    """Block census, rank census and rank imbalance of one snapshot for one species (or all)."""
-    from ..core import audit
-    return audit.snapshot_census(ctx, i, species)
 
 
 def snapshot_migration(ctx, a: int, b: int, species: str, progress=None):

@@ -392,14 +392,10 @@ def _compute_migration(ctx: AuditContext, a: int, b: int, la, lb) -> dict:
 
 def _migrate_in_memory(ctx, fa, fb, a, b, la, lb, steps) -> MigrationResult:
     with _transient([fa, fb]):
-        keys_a = tuple(fa[c] for c in fa.key_columns())
-        keys_b = tuple(fb[c] for c in fb.key_columns())
         both = fa.ndim == la.ndim and fb.ndim == lb.ndim
         block_a = _block_ids(ctx, fa, la, _where(ctx, a))
         block_b = _block_ids(ctx, fb, lb, _where(ctx, b))
-        return migrate(keys_a if len(keys_a) > 1 else keys_a[0],
-                       keys_b if len(keys_b) > 1 else keys_b[0],
-                       block_a, block_b,
+        return migrate(fa.key(), fb.key(), block_a, block_b,
                        fa.positions() if both else None, fb.positions() if both else None,
                        la, steps, fa.role("rank"), fb.role("rank"), layout_b=lb)
 
@@ -729,7 +725,7 @@ def pair_displacements(ctx: AuditContext, a: int, b: int, species) -> tuple[np.n
     keys, which the migration tables note) are left out. Returns the
     displacements and the steps between the snapshots (None when unknown).
     """
-    from ..diagnostics.migration import displacement_cells, match_keys
+    from ..diagnostics.migration import match_keys, matched_displacement
     sa, sb = ctx.run[a], ctx.run[b]
     layout = ctx.layout(a)
     steps = (sb.step - sa.step) if (sa.step is not None and sb.step is not None) else None
@@ -742,15 +738,10 @@ def pair_displacements(ctx: AuditContext, a: int, b: int, species) -> tuple[np.n
         if not ka or not kb or len(ka) != len(kb):
             continue
         with transient_columns([fa, fb]):
-            keys_a = tuple(fa[c] for c in ka)
-            keys_b = tuple(fb[c] for c in kb)
             try:
-                m = match_keys(keys_a if len(keys_a) > 1 else keys_a[0],
-                               keys_b if len(keys_b) > 1 else keys_b[0])
+                m = match_keys(fa.key(), fb.key())
             except DuplicateKeyError:
                 continue
-            pa = [np.asarray(p)[m.ia] for p in fa.positions()]
-            pb = [np.asarray(p)[m.ib] for p in fb.positions()]
-            parts.append(displacement_cells(pa, pb, layout))
+            parts.append(matched_displacement(fa.positions(), fb.positions(), m.ia, m.ib, layout))
     disp = np.concatenate(parts) if parts else np.zeros(0)
     return disp, (int(steps) if steps is not None and steps > 0 else None)

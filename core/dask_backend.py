@@ -675,10 +675,8 @@ def _migration_result(acc, lost, nsteps, with_pos, mig):
 
 
 def _migrate_in_memory(frame_a, frame_b, layout, layout_b, steps, positions, mig):
-    keys_a = tuple(frame_a[c] for c in frame_a.key_columns())
-    keys_b = tuple(frame_b[c] for c in frame_b.key_columns())
     pa, pb = frame_a.positions(), frame_b.positions()
-    res = mig.migrate(keys_a if len(keys_a) > 1 else keys_a[0], keys_b if len(keys_b) > 1 else keys_b[0],
+    res = mig.migrate(frame_a.key(), frame_b.key(),
                       assign_blocks(pa, layout), assign_blocks(pb, layout_b),
                       pa if positions else None, pb if positions else None, layout, steps=steps,
                       rank_a=frame_a.role("rank"), rank_b=frame_b.role("rank"), layout_b=layout_b)

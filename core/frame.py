@@ -63,6 +63,13 @@ class Frame:
     def __getitem__(self, name: str) -> np.ndarray:
         if name in self._cache:
             return self._cache[name]
+        arr = self.read_uncached(name)
+        if self._cache_enabled:
+            self._cache[name] = arr
+        return arr
+
+    def read_uncached(self, name: str) -> np.ndarray:
+        """Read a column from its file, checked, without keeping it (counts in ``reads``)."""
         try:
             loader = self._loaders[name]
         except KeyError:
@@ -74,8 +81,6 @@ class Frame:
         if arr.ndim != 1 or arr.shape[0] != self.length:
             raise InputError(self.source, f"column '{name}' of species '{self.species}' has "
                              f"shape {arr.shape}, expected ({self.length},)")
-        if self._cache_enabled:
-            self._cache[name] = arr
         return arr
 
     def loader(self, name: str) -> Loader:
@@ -144,6 +149,14 @@ class Frame:
     def key_columns(self) -> tuple[str, ...] | None:
         return self.role_map.key_columns(self.columns, self.roles)
 
+    def key(self):
+        """The particle key as the matching functions take it: one array, or a tuple of arrays
+        for a key made of several columns; None when the frame has no key."""
+        cols = self.key_columns()
+        if not cols:
+            return None
+        return self[cols[0]] if len(cols) == 1 else tuple(self[c] for c in cols)
+
     def per_particle(self, role: str, default: float | None = None):
         """A column for ``role`` if there is one, else the species attribute, else ``default``.
 
@@ -197,7 +210,7 @@ def concat_frames(parts: list[Frame], *, species: str, rank_values=None, source=
 def _join_column(parts: list[Frame], name: str) -> np.ndarray:
     """One column of every part in one array, filled part by part.
 
-    Each part is read through its loader (not ``part[name]``) so the parts do
+    Each part is read with ``read_uncached`` (not ``part[name]``) so the parts do
     not keep their pieces cached beside the joined column, and at most one
     part is in memory next to the result: peak is the result plus one part,
     not twice the result as with ``np.concatenate`` of all parts.
@@ -208,12 +221,7 @@ def _join_column(parts: list[Frame], name: str) -> np.ndarray:
     at = 0
     total = sum(p.length for p in parts)
     for p in parts:
-        arr = p.loader(name)()
-        p.reads += 1
-        arr = np.asarray(arr)
-        if arr.shape != (p.length,):
-            raise InputError(p.source, f"column '{name}' of species '{p.species}' has shape "
-                             f"{arr.shape}, expected ({p.length},)")
+        arr = p.read_uncached(name)
         if out is None:
             out = np.empty(total, dtype=arr.dtype)
         elif np.result_type(out.dtype, arr.dtype) != out.dtype:   # parts disagree: widen once

@@ -172,17 +172,58 @@ def _compute_census(ctx: AuditContext, i: int, layout) -> dict:
     return out
 
 
+#: snapshots whose totals are computed together when one of them is asked for and the next
+#: ones are not known yet either (a pass over a run): their pieces share the threads
+TOTALS_AHEAD = 8
+
+
 def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
-    snap = ctx.run[i]
-    out = {}
-    for s in _present_species(ctx, i):
-        frame = snap.species[s]
-        got = totals_if_partitioned(ctx, frame)
-        if got is not None:
-            out[s] = tuple(got)
-            continue
-        with _transient([frame]), _held_open(frame):
-            out[s] = _drift.snapshot_totals(frame, ctx.relativistic, ctx.c, with_nonfinite=True)
+    ahead = ctx.__dict__.setdefault("_totals_ahead", {})
+    sig = ctx.run.refs[i].signature()
+    got = ahead.pop((i, sig), None)
+    if got is not None:
+        return got
+    later = [j for j in range(i + 1, min(i + TOTALS_AHEAD, len(ctx.run))) if not _known_totals(ctx, j)]
+    if later:
+        try:
+            done = _totals_of(ctx, [i] + later)
+        except Exception:   # SwarmAuditError or otherwise: a later snapshot must not fail this one
+            done = None
+        if done is not None:
+            for j in later:
+                ahead[(j, ctx.run.refs[j].signature())] = done[j]
+            return done[i]
+    return _totals_of(ctx, [i])[i]
+
+
+def _known_totals(ctx: AuditContext, j: int) -> bool:
+    """Whether snapshot ``j``'s totals are in this context already (computed or computed ahead)."""
+    sig = ctx.run.refs[j].signature()
+    if (j, sig) in ctx.__dict__.get("_totals_ahead", {}):
+        return True
+    return any(k[0] == "totals" and k[1] == j and k[2] == sig for k in _cache(ctx))
+
+
+def _totals_of(ctx: AuditContext, indices) -> dict:
+    """``{snapshot: {species: (values, nonfinite)}}``; the in-memory frames of all of them reduced
+    together (:func:`diagnostics.drift.snapshot_totals_many`)."""
+    out: dict = {i: {} for i in indices}
+    together = []
+    for i in indices:
+        snap = ctx.run[i]
+        for s in _present_species(ctx, i):
+            frame = snap.species[s]
+            got = totals_if_partitioned(ctx, frame)
+            if got is not None:
+                out[i][s] = tuple(got)
+            else:
+                out[i][s] = None
+                together.append((i, s, frame))
+    frames = [f for _, _, f in together]
+    with _transient(frames), _held_open(*frames):
+        results = _drift.snapshot_totals_many(frames, ctx.relativistic, ctx.c)
+    for (i, s, _), got in zip(together, results):
+        out[i][s] = got
     return out
 
 

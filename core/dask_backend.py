@@ -25,6 +25,7 @@ import atexit
 import itertools
 import os
 import threading
+import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
@@ -62,8 +63,24 @@ def use_dask(ctx, frame: Frame, columns) -> bool:
         return False
     if engine == "dask" or getattr(ctx, "scheduler", None):
         return True
-    import psutil
-    return memory_needed(frame, columns) > MEMORY_SHARE * psutil.virtual_memory().available
+    return memory_needed(frame, columns) > MEMORY_SHARE * available_memory()
+
+
+_available = [0.0, 0]   # when last read (monotonic seconds), bytes
+
+
+def available_memory(max_age: float = 0.5) -> int:
+    """Memory available now (psutil), read again when the last reading is older than ``max_age`` s.
+
+    Asked once per snapshot of a pass over a run: a fresh reading each time costs
+    more than a small snapshot's totals.
+    """
+    now = time.monotonic()
+    if now - _available[0] > max_age:
+        import psutil
+        _available[1] = int(psutil.virtual_memory().available)
+        _available[0] = now
+    return _available[1]
 
 
 # where it runs -------------------------------------------------------------------------

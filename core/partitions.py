@@ -31,12 +31,36 @@ TARGET_PIECE_BYTES = 128 * 2**20
 DEFAULT_ITEMSIZE = 8
 
 
-def sliceable(load: Loader, rows: Callable[[int, int], np.ndarray], dtype=None) -> Loader:
-    """Mark ``load`` as able to read rows ``[start, stop)`` alone (and, optionally, its dtype)."""
+def sliceable(load: Loader, rows: Callable[[int, int], np.ndarray], dtype=None,
+              rows_into: Callable[[int, int, np.ndarray], np.ndarray] | None = None) -> Loader:
+    """Mark ``load`` as able to read rows ``[start, stop)`` alone (and, optionally, its dtype).
+
+    ``rows_into(start, stop, out)``, when given, reads the rows into ``out`` (a
+    native-order array of ``dtype`` and of their length) and returns it: a
+    reduction streaming a column reuses one buffer instead of allocating (and
+    faulting in) fresh memory for every piece.
+    """
     load.rows = rows
     if dtype is not None:
         load.dtype = np.dtype(dtype)
+    if rows_into is not None:
+        load.rows_into = rows_into
     return load
+
+
+def read_fully(fh, view: memoryview) -> int:
+    """Fill ``view`` from the unbuffered file ``fh`` at its position; the bytes read (fewer at its end).
+
+    Short reads happen on pipes and network file systems: read until full or end of file.
+    """
+    got = 0
+    total = len(view)
+    while got < total:
+        k = fh.readinto(view[got:])
+        if not k:
+            break
+        got += k
+    return got
 
 
 def row_reader(load: Loader):
@@ -229,12 +253,9 @@ def read_record_field(path, offset: int, dtype, take, start: int, stop: int) -> 
         fh.seek(int(offset) + int(start) * rec)
         for a in range(0, n, chunk):
             m = min(chunk, n - a)
-            got = fh.readinto(memoryview(raw[: m * rec]))
-            while got < m * rec:   # short reads happen on pipes and network file systems
-                more = fh.readinto(memoryview(raw[got: m * rec]))
-                if not more:
-                    raise InputError(path, f"ends after {start + a + got // rec} of {stop} records",
-                                     "the file is truncated or still being written")
-                got += more
+            got = read_fully(fh, memoryview(raw[: m * rec]))
+            if got < m * rec:
+                raise InputError(path, f"ends after {start + a + got // rec} of {stop} records",
+                                 "the file is truncated or still being written")
             out[a:a + m] = take(buf[:m])
     return out

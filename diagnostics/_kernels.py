@@ -171,7 +171,7 @@ def _get(name):
         if name not in _compiled:
             import numba
             g = globals()
-            for helper in ("_axis_cells", "_wider", "_fin"):
+            for helper in ("_axis_cells", "_wider", "_fin", "_terms"):
                 if not hasattr(g[helper], "py_func"):
                     g[helper] = numba.njit(nogil=True, inline="always")(g[helper])
             # IEEE results (inf, NaN) instead of exceptions on a zero division: the totals count
@@ -294,22 +294,53 @@ def _fin(t):
     return t if abs(t) < _INF else 0.0, 0 if abs(t) < _INF else 1
 
 
+def _terms(j, wb, qb, mb, ab, bb, cb, kind, ke, cc, c2c):
+    # The eight terms of row j (TOTAL_SLOTS order), formed with the numpy path's operations in
+    # its order. A missing momentum component is read as 0 (its terms add exactly nothing).
+    wj = np.float64(wb[j])
+    mj = np.float64(mb[j])
+    t = wj * np.float64(qb[j])
+    f = wj if kind == 2 else wj * mj
+    va = np.float64(ab[j])
+    vb = np.float64(bb[j])
+    vc = np.float64(cb[j])
+    pa = f * va
+    pb = f * vb
+    pc = f * vc
+    q2 = va * va + vb * vb + vc * vc
+    if ke == 1:
+        e = wj * (0.5 * mj * q2)
+    elif ke == 2:
+        e = wj * (0.5 * q2 / mj)
+    elif ke == 3:
+        gamma = np.sqrt(1.0 + (q2 / (mj * mj)) / c2c)
+        e = wj * (np.sqrt(q2) * cc if mj == 0 else q2 / (mj * (gamma + 1.0)))
+    elif ke == 4:
+        u2 = q2 / (1.0 - q2 / c2c) if kind == 0 else q2
+        gamma = np.sqrt(1.0 + u2 / c2c)
+        e = wj * (mj * u2 / (gamma + 1.0))
+    else:
+        e = 0.0
+    return wj, t, abs(t), pa, pb, pc, np.sqrt(pa * pa + pb * pb + pc * pc), e
+
+
 def _totals(n, w, sw, q, sq, m, sm, c0, c1, c2, sc, nc, want_q, want_ke, kind, rel, cc,
             acc, comp, bad):
-    # Every total in one pass over the rows, a short block at a time: the block's columns are
-    # read from memory once and stay in cache while each total's simple loop runs over them
-    # (simple loops vectorise; one loop with every branch inside does not). Terms are formed
-    # with the numpy path's operations in its order; only the summation differs: float64
-    # sums within a block, Neumaier-compensated sums of the blocks. A column given as one
-    # value has stride 0 (sw, sq, sm, sc) and is read from a block-long constant buffer.
+    # Every total in one pass over the rows, a short block at a time. Within a block each
+    # total is a plain float64 sum held in a register (the loop vectorises); the block sums
+    # join the running totals by Neumaier-compensated addition. A block whose sums are not
+    # all finite (a NaN or infinite term, or an overflow) is summed again term by term,
+    # leaving the non-finite terms out and counting them: finite terms give the same sums
+    # either way. A column given as one value has stride 0 (sw, sq, sm) and is read from a
+    # block-long constant buffer; an absent momentum component from a block of zeros.
     B = TOTALS_BLOCK
     c2c = cc * cc
-    f = np.empty(B)
-    mag2 = np.empty(B)
-    q2 = np.empty(B)
     wk = np.full(B, w[0])
     qk = np.full(B, q[0])
     mk = np.full(B, m[0])
+    zk = np.zeros(B, c0.dtype)     # same type as the components (float32 stays float32)
+    # the kinetic-energy term: 0 none, 1 w ½ m v², 2 w p²/2m, 3 and 4 relativistic (p; v or u)
+    ke = 0 if not (want_ke and nc > 0) else (3 if kind == 2 else 4) if rel else (2 if kind == 2 else 1)
     part = np.zeros(8)
     nbad = np.zeros(8, np.int64)
     start = 0
@@ -317,99 +348,41 @@ def _totals(n, w, sw, q, sq, m, sm, c0, c1, c2, sc, nc, want_q, want_ke, kind, r
         stop = min(start + B, n)
         L = stop - start
         wb = w[start:stop] if sw else wk[:L]
+        qb = q[start:stop] if sq else qk[:L]
         mb = m[start:stop] if sm else mk[:L]
-        s = 0.0
-        b = 0
+        ab = c0[start:stop] if nc > 0 else zk[:L]
+        bb = c1[start:stop] if nc > 1 else zk[:L]
+        cb = c2[start:stop] if nc > 2 else zk[:L]
+        s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = 0.0
         for j in range(L):
-            t, k = _fin(np.float64(wb[j]))
-            s += t
-            b += k
-        part[0] = s
-        nbad[0] += b
-        if want_q:
-            qb = q[start:stop] if sq else qk[:L]
-            s = 0.0
-            s2 = 0.0
-            b = 0
+            t0, t1, t2, t3, t4, t5, t6, t7 = _terms(j, wb, qb, mb, ab, bb, cb, kind, ke, cc, c2c)
+            s0 += t0
+            s1 += t1
+            s2 += t2
+            s3 += t3
+            s4 += t4
+            s5 += t5
+            s6 += t6
+            s7 += t7
+        part[0] = s0
+        part[1] = s1
+        part[2] = s2
+        part[3] = s3
+        part[4] = s4
+        part[5] = s5
+        part[6] = s6
+        part[7] = s7
+        finite = True
+        for k in range(8):
+            finite = finite and abs(part[k]) < _INF
+        if not finite:
+            part[:] = 0.0
             for j in range(L):
-                t, k = _fin(np.float64(wb[j]) * np.float64(qb[j]))
-                s += t
-                s2 += abs(t)
-                b += k
-            part[1] = s
-            part[2] = s2
-            nbad[1] += b
-            nbad[2] += b
-        if nc > 0:
-            if kind == 2:
-                for j in range(L):
-                    f[j] = np.float64(wb[j])
-            else:
-                for j in range(L):
-                    f[j] = np.float64(wb[j]) * np.float64(mb[j])
-            for a in range(nc):
-                cb = (c0 if a == 0 else c1 if a == 1 else c2)[start:stop]
-                s = 0.0
-                b = 0
-                if a == 0:
-                    for j in range(L):
-                        v = np.float64(cb[j])
-                        p = f[j] * v
-                        mag2[j] = p * p
-                        q2[j] = v * v
-                        t, k = _fin(p)
-                        s += t
-                        b += k
-                else:
-                    for j in range(L):
-                        v = np.float64(cb[j])
-                        p = f[j] * v
-                        mag2[j] = mag2[j] + p * p
-                        q2[j] = q2[j] + v * v
-                        t, k = _fin(p)
-                        s += t
-                        b += k
-                part[3 + a] = s
-                nbad[3 + a] += b
-            s = 0.0
-            b = 0
-            for j in range(L):
-                t, k = _fin(np.sqrt(mag2[j]))
-                s += t
-                b += k
-            part[6] = s
-            nbad[6] += b
-            if want_ke:
-                s = 0.0
-                b = 0
-                if not rel and kind == 2:
-                    for j in range(L):
-                        t, k = _fin(np.float64(wb[j]) * (0.5 * q2[j] / np.float64(mb[j])))
-                        s += t
-                        b += k
-                elif not rel:
-                    for j in range(L):
-                        t, k = _fin(np.float64(wb[j]) * (0.5 * np.float64(mb[j]) * q2[j]))
-                        s += t
-                        b += k
-                elif kind == 2:
-                    for j in range(L):
-                        mi = np.float64(mb[j])
-                        gamma = np.sqrt(1.0 + (q2[j] / (mi * mi)) / c2c)
-                        e = np.sqrt(q2[j]) * cc if mi == 0 else q2[j] / (mi * (gamma + 1.0))
-                        t, k = _fin(np.float64(wb[j]) * e)
-                        s += t
-                        b += k
-                else:
-                    for j in range(L):
-                        mi = np.float64(mb[j])
-                        u2 = q2[j] / (1.0 - q2[j] / c2c) if kind == 0 else q2[j]
-                        gamma = np.sqrt(1.0 + u2 / c2c)
-                        t, k = _fin(np.float64(wb[j]) * (mi * u2 / (gamma + 1.0)))
-                        s += t
-                        b += k
-                part[7] = s
-                nbad[7] += b
+                terms = _terms(j, wb, qb, mb, ab, bb, cb, kind, ke, cc, c2c)
+                for k in range(8):
+                    x, b = _fin(terms[k])
+                    part[k] += x
+                    nbad[k] += b
         for k in range(8):
             # Neumaier: the low bits a large running total would drop are kept in comp
             x = part[k]
@@ -419,8 +392,9 @@ def _totals(n, w, sw, q, sq, m, sm, c0, c1, c2, sc, nc, want_q, want_ke, kind, r
             else:
                 comp[k] += (x - t) + acc[k]
             acc[k] = t
-            part[k] = 0.0
         start = stop
+    if not want_q:
+        nbad[1] = nbad[2] = 0
     for k in range(8):
         bad[k] += nbad[k]
 
@@ -445,6 +419,17 @@ class TotalSums:
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
         return self.acc + self.comp, self.bad
+
+    def add(self, other: "TotalSums") -> "TotalSums":
+        """Add another piece's sums (compensated, like the blocks inside a piece)."""
+        x = other.acc
+        t = self.acc + x
+        big = np.abs(self.acc) >= np.abs(x)
+        with np.errstate(invalid="ignore"):
+            self.comp += np.where(big, (self.acc - t) + x, (x - t) + self.acc) + other.comp
+        self.acc = t
+        self.bad += other.bad
+        return self
 
 
 def snapshot_sums(n, weight, charge, mass, components, kind: str, relativistic: bool, c: float,

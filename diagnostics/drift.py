@@ -9,6 +9,9 @@ values are left out of a total and counted, never propagated silently.
 from __future__ import annotations
 
 import math
+import os
+import threading
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
@@ -145,6 +148,19 @@ def snapshot_totals(frame, relativistic: bool = False, c=None, with_nonfinite: b
     return (values, bad) if with_nonfinite else values
 
 
+def snapshot_totals_many(frames, relativistic: bool = False, c=None) -> list[tuple[dict, dict]]:
+    """``snapshot_totals(frame, ..., with_nonfinite=True)`` of each frame; the large ones together
+    (:func:`fused_totals_many`), so that their reading and reducing overlap."""
+    out: list = [None] * len(frames)
+    big = [i for i, f in enumerate(frames) if _kernels.available and len(f) >= _kernels.TOTALS_MIN_SIZE]
+    for i, got in zip(big, fused_totals_many([frames[i] for i in big], relativistic, c)):
+        out[i] = got
+    for i, f in enumerate(frames):
+        if out[i] is None:
+            out[i] = numpy_totals(f, relativistic, c)
+    return out
+
+
 def _source(frame, role: str, default):
     """(column name, None) when a column plays ``role``, else (None, attribute or default); reads nothing."""
     name = frame.column_for(role)
@@ -157,84 +173,196 @@ def _source(frame, role: str, default):
 
 def fused_totals(frame, relativistic: bool = False, c=None) -> tuple[dict, dict]:
     """``(values, nonfinite)`` of :func:`snapshot_totals` in one compiled pass over the columns."""
-    n = len(frame)
-    sources = {"weight": _source(frame, "weight", 1.0), "charge": _source(frame, "charge", None),
-               "mass": _source(frame, "mass", None)}
-    kind = frame.momentum_kind()
-    has_q = sources["charge"] != (None, None)
-    has_m = sources["mass"] != (None, None)
-    axes = []
-    if kind and (kind == "p" or has_m):
-        roles = {"v": ("vx", "vy", "vz"), "u": ("ux", "uy", "uz"), "p": ("px", "py", "pz")}[kind]
-        axes = [(axis, frame.column_for(r)) for axis, r in zip("xyz", roles)
-                if frame.column_for(r) is not None]
-    cc = _speed_of_light(c) if relativistic and has_m and axes else 1.0
-    names = [nm for nm, _ in sources.values()] + [nm for _, nm in axes]
-    names = [nm for nm in dict.fromkeys(names) if nm is not None]
-    chunks = _row_chunks(frame, names)
-    if chunks is None:
-        chunks = [(0, n, {nm: frame[nm] for nm in names})]
-    sums = _kernels.TotalSums()
-    for start, stop, cols in chunks:
-        got = {r: (cols[nm] if nm is not None else v) for r, (nm, v) in sources.items()}
-        _kernels.snapshot_sums(stop - start, got["weight"], got["charge"], got["mass"],
-                               [cols[nm] for _, nm in axes], kind or "v", relativistic, cc,
-                               want_ke=has_m, into=sums)
-    total, nbad = sums.result()
-    slot = {name: k for k, name in enumerate(_kernels.TOTAL_SLOTS)}
-    values: dict[str, float] = {"count": float(n)}
-    bad: dict[str, int] = {"count": 0}
-
-    def put(name, k):
-        values[name] = float(total[k])
-        bad[name] = int(nbad[k])
-
-    put("weight", slot["weight"])
-    if has_q:
-        put("charge", slot["charge"])
-        put("abs_charge", slot["abs_charge"])
-    for k, (axis, _) in enumerate(axes):
-        put(f"momentum_{axis}", slot[f"momentum_{k}"])
-    if axes:
-        put("abs_momentum", slot["abs_momentum"])
-        if has_m:
-            put("kinetic_energy", slot["kinetic_energy"])
-    return values, bad
+    return fused_totals_many([frame], relativistic, c)[0]
 
 
-#: rows read at a time when a frame's columns are streamed (see :func:`_row_chunks`)
-CHUNK_ROWS = 1 << 17
+def fused_totals_many(frames, relativistic: bool = False, c=None) -> list[tuple[dict, dict]]:
+    """:func:`fused_totals` of several frames, their pieces sharing the threads.
+
+    The pieces of every frame go to the threads as one queue, so reading and
+    reducing one frame's last pieces overlaps the next frame's first ones (no
+    wait between frames). Each frame's piece sums join in row order whoever
+    computed them: the same totals, bit for bit, as one frame at a time, with
+    one thread or several.
+    """
+    plans = [_TotalsPlan(f, relativistic, c) for f in frames]
+    parts: list[list] = [[None] * len(p.bounds) for p in plans]
+    queued = []
+    for i, p in enumerate(plans):
+        if not p.parallel:      # a loader may look its storage up on its first read
+            parts[i][0] = p.piece(0)
+        queued += [(i, k) for k in range(len(p.bounds)) if parts[i][k] is None]
+    pooled = [(i, k) for i, k in queued if plans[i].parallel]
+    serial = [(i, k) for i, k in queued if not plans[i].parallel]
+    if len(pooled) > 1 and _piece_workers() > 1:
+        for (i, k), got in zip(pooled, _piece_pool().map(lambda ik: plans[ik[0]].piece(ik[1]), pooled)):
+            parts[i][k] = got
+    else:
+        serial = pooled + serial
+    for i, k in serial:
+        parts[i][k] = plans[i].piece(k)
+    return [p.finish(got) for p, got in zip(plans, parts)]
 
 
-def _row_chunks(frame, names):
-    """``(start, stop, {name: rows})`` pieces of the named columns, or None to read them whole.
+class _TotalsPlan:
+    """What the compiled totals of one frame read, in which pieces, and how they are put together."""
 
-    Streaming applies when none of the columns is in memory yet and every
-    loader reads row ranges: the pieces stay in cache for the compiled pass
-    and no full-length column is allocated (or kept) for a total.
+    def __init__(self, frame, relativistic: bool, c):
+        self.frame = frame
+        self.relativistic = relativistic
+        self.sources = {"weight": _source(frame, "weight", 1.0), "charge": _source(frame, "charge", None),
+                        "mass": _source(frame, "mass", None)}
+        kind = self.kind = frame.momentum_kind()
+        self.has_q = self.sources["charge"] != (None, None)
+        self.has_m = self.sources["mass"] != (None, None)
+        axes = []
+        if kind and (kind == "p" or self.has_m):
+            roles = {"v": ("vx", "vy", "vz"), "u": ("ux", "uy", "uz"), "p": ("px", "py", "pz")}[kind]
+            axes = [(axis, frame.column_for(r)) for axis, r in zip("xyz", roles)
+                    if frame.column_for(r) is not None]
+        self.axes = axes
+        self.cc = _speed_of_light(c) if relativistic and self.has_m and axes else 1.0
+        names = [nm for nm, _ in self.sources.values()] + [nm for _, nm in axes]
+        self.names = [nm for nm in dict.fromkeys(names) if nm is not None]
+        self.bounds, self.read, parallel = _row_pieces(frame, self.names)
+        self._parallel = parallel
+
+    @property
+    def parallel(self) -> bool:
+        return len(self.bounds) > 1 and bool(self._parallel)
+
+    def piece(self, k: int):
+        start, stop = self.bounds[k]
+        cols = self.read(start, stop)
+        got = {r: (cols[nm] if nm is not None else v) for r, (nm, v) in self.sources.items()}
+        return _kernels.snapshot_sums(stop - start, got["weight"], got["charge"], got["mass"],
+                                      [cols[nm] for _, nm in self.axes], self.kind or "v",
+                                      self.relativistic, self.cc, want_ke=self.has_m)
+
+    def finish(self, parts) -> tuple[dict, dict]:
+        sums = parts[0]
+        for part in parts[1:]:
+            sums.add(part)
+        if self.read.streamed:
+            self.frame.reads += len(self.names)
+        total, nbad = sums.result()
+        slot = {name: k for k, name in enumerate(_kernels.TOTAL_SLOTS)}
+        values: dict[str, float] = {"count": float(len(self.frame))}
+        bad: dict[str, int] = {"count": 0}
+
+        def put(name, k):
+            values[name] = float(total[k])
+            bad[name] = int(nbad[k])
+
+        put("weight", slot["weight"])
+        if self.has_q:
+            put("charge", slot["charge"])
+            put("abs_charge", slot["abs_charge"])
+        for k, (axis, _) in enumerate(self.axes):
+            put(f"momentum_{axis}", slot[f"momentum_{k}"])
+        if self.axes:
+            put("abs_momentum", slot["abs_momentum"])
+            if self.has_m:
+                put("kinetic_energy", slot["kinetic_energy"])
+        return values, bad
+
+
+#: rows reduced at a time (see :func:`_row_pieces`): the pieces stay in cache for the
+#: compiled pass, and pieces can be reduced on several cores at once
+CHUNK_ROWS = 1 << 18
+
+_pool_lock = threading.Lock()
+_pools: dict = {}
+
+
+def _piece_workers() -> int:
+    try:
+        return max(1, min(4, len(os.sched_getaffinity(0))))
+    except (AttributeError, OSError):
+        return max(1, min(4, os.cpu_count() or 1))
+
+
+def _piece_pool() -> ThreadPoolExecutor:
+    """Threads that reduce the pieces of one frame (the compiled pass releases the GIL)."""
+    with _pool_lock:
+        pid = os.getpid()
+        pool = _pools.get(pid)
+        if pool is None:           # a forked worker does not inherit its parent's threads
+            pool = _pools[pid] = ThreadPoolExecutor(_piece_workers(), thread_name_prefix="swarmaudit-sum")
+        return pool
+
+
+_buffers = threading.local()
+
+
+def _buffer(name: str, dtype, n: int) -> np.ndarray:
+    """This thread's piece buffer for a column: reused from piece to piece (a reduction keeps
+    no piece), so streaming a run allocates, and faults in, its buffers once."""
+    held = getattr(_buffers, "arrays", None)
+    if held is None:
+        held = _buffers.arrays = {}
+    key = (name, np.dtype(dtype).str)
+    buf = held.get(key)
+    if buf is None or buf.shape[0] < n:
+        buf = held[key] = np.empty(max(n, CHUNK_ROWS), dtype=dtype)
+    return buf[:n]
+
+
+def _row_pieces(frame, names):
+    """``(bounds, read, parallel)``: row ranges of the frame, ``read(start, stop) -> {name: rows}``.
+
+    * the columns all in memory: slices of them, reduced in parallel;
+    * none in memory and every loader reads row ranges: the pieces are read
+      from the files (``read.streamed``), so no full-length column is allocated
+      (or kept) for a total; in parallel when every loader reads straight from
+      its file (``loader.direct()``: no shared handle, other threads run meanwhile);
+    * otherwise, or for a small frame: the whole columns, one piece.
     """
     n = len(frame)
     cache = getattr(frame, "_cache", {})
-    if n <= CHUNK_ROWS or not names or any(nm in cache for nm in names):
-        return None
-    readers = {nm: getattr(frame.loader(nm), "rows", None) for nm in names}
-    if any(r is None for r in readers.values()):
-        return None
+    whole = [(0, n)]
 
-    def pieces():
-        for start in range(0, n, CHUNK_ROWS):
-            stop = min(start + CHUNK_ROWS, n)
-            cols = {}
-            for nm, rows in readers.items():
+    def columns(start, stop):
+        return {nm: frame[nm] for nm in names}
+    columns.streamed = False
+    if n <= CHUNK_ROWS or not names:
+        return whole, columns, False
+    bounds = [(start, min(start + CHUNK_ROWS, n)) for start in range(0, n, CHUNK_ROWS)]
+    if all(nm in cache for nm in names):
+        def sliced(start, stop):
+            return {nm: cache[nm][start:stop] for nm in names}
+        sliced.streamed = False
+        return bounds, sliced, True
+    if any(nm in cache for nm in names):
+        return whole, columns, False
+    loaders = {nm: frame.loader(nm) for nm in names}
+    readers = {nm: getattr(ld, "rows", None) for nm, ld in loaders.items()}
+    if any(r is None for r in readers.values()):
+        return whole, columns, False
+
+    into = {nm: getattr(ld, "rows_into", None) for nm, ld in loaders.items()}
+    dtypes = {nm: getattr(ld, "dtype", None) for nm, ld in loaders.items()}
+
+    def streamed(start, stop):
+        cols = {}
+        for nm, rows in readers.items():
+            if into[nm] is not None and dtypes[nm] is not None:
+                arr = into[nm](start, stop, _buffer(nm, dtypes[nm], stop - start))
+            else:
                 arr = np.asarray(rows(start, stop))
-                if arr.shape != (stop - start,):
-                    raise InputError(frame.source, f"column '{nm}' of species '{frame.species}' "
-                                     f"gave {arr.shape[0] if arr.ndim else 0} rows for the range "
-                                     f"{start}..{stop}")
-                cols[nm] = arr
-            yield start, stop, cols
-        frame.reads += len(readers)
-    return pieces()
+            if arr.shape != (stop - start,):
+                raise InputError(frame.source, f"column '{nm}' of species '{frame.species}' "
+                                 f"gave {arr.shape[0] if arr.ndim else 0} rows for the range "
+                                 f"{start}..{stop}")
+            cols[nm] = arr
+        return cols
+    streamed.streamed = True
+
+    class _Direct:
+        # asked after the first piece: a loader may only know then whether it reads directly
+        def __bool__(self):
+            return all(getattr(ld, "direct", lambda: False)() for ld in loaders.values())
+    return bounds, streamed, _Direct()
 
 
 def numpy_totals(frame, relativistic: bool = False, c=None) -> tuple[dict, dict]:

@@ -1,8 +1,12 @@
 """HDF5 snapshots (h5py, read-only; every column read opens, reads one dataset or field, closes).
 
-A caller reducing several columns of one file can hold it open for the while
-(``loader.hold()``, a context manager): the reads inside share one read-only
-handle, closed when the last holder leaves.
+A plain 1-D dataset stored contiguously (the usual layout h5py writes) is read
+straight from the file at its offset, without HDF5 (:class:`_Extent`): such
+reads let other threads run, so a reduction reads and reduces pieces on
+several cores. A caller reducing several columns of one file can hold it open
+for the while (``loader.hold()``, a context manager): the reads inside share
+one read-only handle (a descriptor for direct reads), closed when the last
+holder leaves.
 
 How a file becomes columns:
 
@@ -18,6 +22,7 @@ How a file becomes columns:
 
 from __future__ import annotations
 
+import math
 import os
 import threading
 from contextlib import contextmanager
@@ -26,7 +31,7 @@ import numpy as np
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot
-from ..core.partitions import sliceable
+from ..core.partitions import read_fully, sliceable
 from ..core.roles import _VECTOR_STEMS
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        make_snapshot, native, reject_non_numeric, scalar_value, split_scalars, take_field)
@@ -60,9 +65,14 @@ def _text(name) -> str:
 
 
 def _units(obj) -> str | None:
-    # a failed attribute lookup costs HDF5 an error stack: look at the names first
-    for key in _attr_names(obj):
-        if key in ("units", "unit"):
+    import h5py
+    # a failed attribute lookup costs HDF5 an error stack: ask whether the name exists first
+    for key in ("units", "unit"):
+        try:
+            there = h5py.h5a.exists(obj.id, key.encode())
+        except H5_ERRORS:
+            return None
+        if there:
             v = _attr(obj, key)
             return v if isinstance(v, str) else None
     return None
@@ -77,27 +87,45 @@ class _Scan:
         self.warnings: list[str] = []
         self.layout = None
         self._seen: dict = {}     # group name -> members (each group is listed once)
+        self.stat = None          # the file's os.stat, taken with the first dataset's extent
 
     # datasets -> columns ---------------------------------------------------
-    def _check_stored(self, ds) -> None:
-        """A dataset must hold the bytes its shape claims (else truncated, sparse or forged)."""
+    def _check_stored(self, ds, dsname: str, dtype):
+        """A dataset must hold the bytes its shape claims (else truncated, sparse or forged).
+
+        Returns where a plain contiguous 1-D dataset's values lie (:class:`_Extent`), or None.
+        """
+        import h5py
         try:
-            if ds.is_virtual or ds.external:
-                return
-            n = int(np.prod(ds.shape, dtype=np.float64))
-            need = n * ds.id.get_type().get_size()
+            # h5py fetched the creation properties when it made the Dataset: use those
+            dcpl = getattr(ds, "_dcpl", None) or ds.id.get_create_plist()
+            layout = dcpl.get_layout()
+            if layout == h5py.h5d.VIRTUAL or dcpl.get_external_count() > 0:
+                return None
+            tid = ds.id.get_type()
+            need = math.prod(ds.shape) * tid.get_size()
             stored = ds.id.get_storage_size()
-            filtered = ds.id.get_create_plist().get_nfilters() > 0
+            filtered = dcpl.get_nfilters() > 0
         except H5_ERRORS as exc:
-            raise InputError(self.path, f"dataset '{_text(ds.name)}' cannot be inspected ({exc})") from None
+            raise InputError(self.path, f"dataset '{dsname}' cannot be inspected ({exc})") from None
         # deflate cannot shrink data more than ~1000x; far beyond that, chunks were never written
         if need and (stored == 0 or (not filtered and stored < need) or need > MAX_RATIO * stored):
-            raise InputError(self.path, f"dataset '{_text(ds.name)}' declares {ds.shape[0]} rows "
+            raise InputError(self.path, f"dataset '{dsname}' declares {ds.shape[0]} rows "
                              f"({need} bytes) but the file stores {stored} bytes of it",
                              "the file is truncated or was not completely written")
+        if filtered or len(ds.shape) != 1 or layout != h5py.h5d.CONTIGUOUS:
+            return None
+        if self.stat is None:
+            try:
+                self.stat = os.stat(self.path)
+            except OSError:
+                return None
+        return _Extent.of(ds, self.path, dcpl=dcpl, stored=stored, stat=self.stat, tid=tid,
+                          dtype=dtype, name=dsname, checked=True)
 
     def add_dataset(self, table: Table, ds, name: str, unit: str | None) -> None:
-        where = f"dataset '{_text(ds.name)}'"
+        dsname = _text(ds.name)
+        where = f"dataset '{dsname}'"
         shape = ds.shape
         if shape is None or len(shape) == 0:
             return
@@ -112,15 +140,15 @@ class _Scan:
             if len(shape) != 1:
                 self.warnings.append(f"{where} is a table of shape {shape}, not one row per particle; left out")
                 return
-            self._check_stored(ds)
+            self._check_stored(ds, dsname, dtype)
             for col, fpath, comp, fdt in flatten_fields(dtype):
                 if comp == "skip":
                     self.warnings.append(f"field '{col}' of {where} has shape {fdt.shape}; left out")
                     continue
                 label = col if col not in table.loaders else f"{name}/{col}"
                 if reject_non_numeric(self.path, label, fdt, f"field '{col}' of {where}", self.warnings):
-                    table.add(label, shape[0], _loader(self.path, ds.name, field=(fpath, comp), dtype=fdt),
-                              _text(ds.name), unit)
+                    table.add(label, shape[0], _loader(self.path, dsname, field=(fpath, comp), dtype=fdt),
+                              dsname, unit)
             return
         if len(shape) > 2 or (len(shape) == 2 and not 1 <= shape[1] <= MAX_COMPONENTS):
             self.warnings.append(f"{where} has shape {shape}, not (N,) or (N, d); left out")
@@ -128,11 +156,11 @@ class _Scan:
         names = [name] if len(shape) == 1 else component_names(name, shape[1])
         if not reject_non_numeric(self.path, names[0], dtype, where, self.warnings):
             return
-        self._check_stored(ds)
+        extent = self._check_stored(ds, dsname, dtype)
         for k, col in enumerate(names):
-            table.add(col, shape[0], _loader(self.path, ds.name, comp=None if len(shape) == 1 else k,
-                                                  dtype=dtype),
-                      _text(ds.name), unit)
+            table.add(col, shape[0], _loader(self.path, dsname, comp=None if len(shape) == 1 else k,
+                                                  dtype=dtype, extent=extent),
+                      dsname, unit)
 
     # groups -> tables ---------------------------------------------------------
     def _members(self, group):
@@ -145,12 +173,15 @@ class _Scan:
         import h5py
         out = []
         try:
-            names = list(group.keys())
+            names = list(group.id)     # the member names, as HDF5 stores them (bytes)
         except H5_ERRORS as exc:
             raise InputError(self.path, f"group '{_text(group.name)}' cannot be listed ({exc})") from None
         for n in names:
             try:
-                obj = group[n]
+                # the object itself, as group[n] would give it, without h5py's high-level lookup
+                oid = h5py.h5o.open(group.id, n)
+                obj = (h5py.Dataset(oid, readonly=True) if isinstance(oid, h5py.h5d.DatasetID) else
+                       h5py.Group(oid) if isinstance(oid, h5py.h5g.GroupID) else None)
             except H5_ERRORS as exc:
                 self.warnings.append(f"'{_text(group.name).rstrip('/')}/{_text(n)}' cannot be opened "
                                      f"({exc}); left out")
@@ -207,10 +238,9 @@ class _Scan:
         if not table.loaders:
             return
         if not is_root:
-            for k in _attr_names(group):
-                v = _attr(group, k)
+            for k, v in _attr_items(group):
                 if isinstance(v, (int, float)):
-                    table.attrs[_text(k)] = float(v)
+                    table.attrs[k] = float(v)
             for n, ds in scalars:
                 v = _read_scalar(ds)
                 if isinstance(v, (int, float)):
@@ -220,15 +250,51 @@ class _Scan:
         self.tables[label] = table
 
 
-def _attr_names(obj) -> list[str]:
+def _attr_items(obj) -> list[tuple[str, object]]:
+    """``(name, value)`` of every attribute of ``obj``; numbers read by HDF5's own conversion.
+
+    A one-value integer or float attribute is converted by HDF5 to int64,
+    uint64 or float64 as it is read (cheaper than h5py's general path); any
+    other attribute goes through h5py as in :func:`_attr`.
+    """
+    import h5py
+    h5a, h5t = h5py.h5a, h5py.h5t
+    out = []
     try:
-        return list(obj.attrs.keys())
+        count = h5a.get_num_attrs(obj.id)
     except H5_ERRORS:
-        return []
+        return out
+    for i in range(count):
+        try:
+            a = h5a.open(obj.id, index=i)
+            name = _text(a.name)
+            t = a.get_type()
+            cls = t.get_class()
+            if cls in (h5t.FLOAT, h5t.INTEGER) and a.get_space().get_simple_extent_npoints() == 1:
+                if cls == h5t.FLOAT:
+                    v, mtype = np.empty((), np.float64), h5t.NATIVE_DOUBLE
+                elif t.get_sign() == h5t.SGN_NONE:
+                    v, mtype = np.empty((), np.uint64), h5t.NATIVE_UINT64
+                else:
+                    v, mtype = np.empty((), np.int64), h5t.NATIVE_INT64
+                a.read(v, mtype=mtype)
+                out.append((name, scalar_value(v)))
+            else:
+                out.append((name, _attr(obj, name)))
+        except H5_ERRORS:
+            continue
+    return out
 
 
 def _attr(obj, key):
+    import h5py
     try:
+        a = h5py.h5a.open(obj.id, key.encode() if isinstance(key, str) else key)
+        dt = a.dtype
+        if dt.kind in "biuf" and dt.names is None and dt.subdtype is None and a.shape in ((), (1,)):
+            value = np.empty(a.shape, dt)            # a number: read it without h5py's high-level path
+            a.read(value)
+            return scalar_value(value)
         return scalar_value(obj.attrs[key])
     except H5_ERRORS:
         return None
@@ -275,6 +341,44 @@ def _hold(path: str):
             entry[0].close()
 
 
+_fds: dict = {}                 # path -> [descriptor, holders, stamp]: direct reads while held
+_fds_lock = threading.Lock()
+
+
+@contextmanager
+def _hold_fd(path: str):
+    """Keep one read-only descriptor of ``path`` for direct reads, shared by every thread.
+
+    Positioned reads (``os.pread``) do not move a file offset, so threads reducing
+    pieces of one frame read through it at once; closed when the last holder leaves.
+    Where positioned reads are missing, or the file cannot be opened, reads open
+    the file themselves as without a hold.
+    """
+    with _fds_lock:
+        entry = _fds.get(path)
+        if entry is None and hasattr(os, "preadv"):
+            try:
+                fd = os.open(path, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0))
+            except OSError:
+                fd = None
+            if fd is not None:
+                try:
+                    entry = _fds[path] = [fd, 0, _stamp(os.fstat(fd))]
+                except OSError:
+                    os.close(fd)
+        if entry is not None:
+            entry[1] += 1
+    try:
+        yield
+    finally:
+        if entry is not None:
+            with _fds_lock:
+                entry[1] -= 1
+                if entry[1] == 0:
+                    del _fds[path]
+                    os.close(entry[0])
+
+
 @contextmanager
 def _dataset(path: str, dsname: str):
     """The dataset, from the file held open (looked up once per hold) or opened for this read."""
@@ -299,14 +403,136 @@ def _check_memory(path, what, nbytes):
         check_fits_memory(path, what, nbytes)
 
 
-def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=None):
+class _Extent:
+    """Where a contiguous, unfiltered dataset's values lie in its file, to read them directly.
+
+    HDF5 stores such a dataset as one run of bytes at a fixed offset. Reading
+    that run with a plain file read skips HDF5's per-read set-up and lets other
+    threads run meanwhile (a reduction computes on one piece while the next is
+    read). Taken from the file's own metadata when the file is scanned (or on the
+    first read), and trusted only while the file is unchanged (same inode, size
+    and mtime); anything else -
+    chunked, compressed, compact, virtual or external storage, a type HDF5
+    would convert, a changed file - reads through h5py.
+    """
+
+    __slots__ = ("name", "offset", "length", "dtype", "stamp")
+
+    def __init__(self, name: str, offset: int, length: int, dtype, stamp):
+        self.name, self.offset, self.length, self.dtype, self.stamp = name, offset, length, dtype, stamp
+
+    @staticmethod
+    def of(ds, path: str, dcpl=None, stored=None, stat=None, tid=None, dtype=None, name=None,
+           checked=False):
+        """The extent of dataset ``ds`` of file ``path``, or None when it cannot be read directly.
+
+        ``dcpl``, ``stored``, ``stat``, ``tid``, ``dtype`` and ``name`` (its creation
+        properties, stored bytes, the file's ``os.stat``, the stored type, its numpy
+        type and path) are looked up unless the caller has them; ``checked``: the
+        caller found it 1-D, contiguous, unfiltered, neither virtual nor external.
+        """
+        import h5py
+        try:
+            if not checked and (len(ds.shape) != 1 or ds.is_virtual or ds.external):
+                return None
+            dt = ds.dtype if dtype is None else dtype
+            if dt.kind not in "fiu" or dt.names is not None or dt.subdtype is not None:
+                return None
+            if not checked:
+                dcpl = ds.id.get_create_plist()
+                if dcpl.get_layout() != h5py.h5d.CONTIGUOUS or dcpl.get_nfilters():
+                    return None
+            if not (tid or ds.id.get_type()) == _h5_type(dt):   # bit-for-bit the numpy type
+                return None
+            nbytes = int(ds.shape[0]) * dt.itemsize
+            offset = ds.id.get_offset()
+            stored = ds.id.get_storage_size() if stored is None else stored
+            if offset is None or offset < 0 or stored < nbytes:
+                return None       # not allocated (HDF5 gives an undefined address then)
+            st = stat or os.stat(path)
+        except (*H5_ERRORS, OverflowError):
+            return None
+        if offset + nbytes > st.st_size:
+            return None
+        return _Extent(name or _text(ds.name), int(offset), int(ds.shape[0]), dt, _stamp(st))
+
+    def read(self, path: str, start: int, count: int, out=None):
+        """``count`` values from row ``start`` (into ``out`` when given, of the file's dtype).
+
+        None when the file changed since the extent was taken.
+        """
+        out = np.empty(count, dtype=self.dtype) if out is None else out
+        view = memoryview(out).cast("B")
+        where = self.offset + start * self.dtype.itemsize
+        held = _fds.get(path)
+        if held is not None and held[2] == self.stamp:   # the descriptor a hold keeps open
+            got = 0
+            while got < len(view):
+                k = os.preadv(held[0], [view[got:]], where + got)
+                if not k:
+                    return None        # shorter than when the extent was taken: a changed file
+                got += k
+            return out
+        with open(path, "rb", buffering=0) as fh:
+            if _stamp(os.fstat(fh.fileno())) != self.stamp:
+                return None
+            fh.seek(where)
+            if read_fully(fh, view) < len(view):
+                return None            # shorter than when the extent was taken: a changed file
+        return out
+
+
+_h5_types: dict = {}
+
+
+def _h5_type(dt):
+    """HDF5's type for a plain numpy dtype (made once per dtype)."""
+    t = _h5_types.get(dt.str)
+    if t is None:
+        import h5py
+        t = _h5_types[dt.str] = h5py.h5t.py_create(dt)
+    return t
+
+
+def _stamp(st) -> tuple:
+    return (st.st_ino, st.st_dev, st.st_size, st.st_mtime_ns)
+
+
+_NO_EXTENT = object()
+
+
+def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=None, extent=None):
     """Read one column: the whole 1-D dataset, one column slice, or one compound field.
 
     The loader can also read rows ``[start, stop)`` alone (a hyperslab), for
-    partitioned engines that split one big file into row ranges.
+    partitioned engines that split one big file into row ranges and for
+    reductions that stream a column in pieces. A plain 1-D dataset stored
+    contiguously is read straight from the file (:class:`_Extent`; the scan
+    gives it as ``extent``, else it is looked up on the first read).
     """
-    def load(rows=None) -> np.ndarray:
+    extent = [extent if comp is None and field is None else _NO_EXTENT]
+
+    def load(rows=None, into=None) -> np.ndarray:
         try:
+            ext = extent[0]
+            if ext is None:     # first read: look the storage up (metadata only)
+                with _dataset(path, dsname) as ds:
+                    ext = extent[0] = _Extent.of(ds, path) or _NO_EXTENT
+            if ext is not _NO_EXTENT:
+                start, stop, _ = (slice(None) if rows is None else slice(*rows)).indices(ext.length)
+                count = max(0, stop - start)
+                _check_memory(path, f"dataset '{dsname}'", count * ext.dtype.itemsize)
+                fits = into is not None and into.dtype == ext.dtype and into.shape == (count,)
+                arr = ext.read(path, start, count, into if fits else None)
+                if arr is not None:
+                    if into is not None:        # the caller's buffer, to be filled again later
+                        if not fits:
+                            into[...] = arr
+                        return into
+                    arr = native(arr)
+                    arr.flags.writeable = False
+                    return arr
+                extent[0] = None    # the file changed: h5py reads it, and the storage is looked up again
             with _dataset(path, dsname) as ds:
                 sl = slice(None) if rows is None else slice(*rows)
                 n = len(range(*sl.indices(int(ds.shape[0]))))
@@ -332,12 +558,18 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
         except H5_ERRORS as exc:
             raise InputError(path, f"dataset '{dsname}' cannot be read ({exc})",
                              "the file may be damaged or still being written") from None
+        if into is not None:
+            into[...] = arr
+            return into
         arr = native(np.ascontiguousarray(arr))
         arr.flags.writeable = False     # like the other readers' columns: the frame's cache is shared
         return arr
     hint = None if dtype is None else np.dtype(dtype).newbyteorder("=")
-    out = sliceable(lambda: load(), lambda start, stop: load((start, stop)), hint)
-    out.hold = lambda: _hold(path)
+    out = sliceable(lambda: load(), lambda start, stop: load((start, stop)), hint,
+                    lambda start, stop, into: load((start, stop), into))
+    # True while reads go straight to the file: they need no shared handle and let other threads run
+    out.direct = lambda: isinstance(extent[0], _Extent)
+    out.hold = lambda: _hold_fd(path) if out.direct() else _hold(path)
     return out
 
 
@@ -374,7 +606,7 @@ class HDF5Reader:
         try:
             with fh:
                 scan = _Scan(path)
-                items = [(_text(k), _attr(fh, k)) for k in _attr_names(fh)]
+                items = _attr_items(fh)
                 for n, obj in scan._members(fh):
                     if isinstance(obj, h5py.Dataset) and obj.shape is not None and len(obj.shape) == 0:
                         items.append((n, _read_scalar(obj)))

@@ -281,6 +281,7 @@ def test_engine_choice(monkeypatch):
     class Small:
         available = 16_000 * 3       # bytes: two float64 columns of 1000 rows fit, times 3 do not
     monkeypatch.setattr(psutil, "virtual_memory", lambda: Small)
+    monkeypatch.setattr(dk, "_available", [float("-inf"), 0])    # forget the last reading
     assert dk.use_dask(ctx, frame, ["x", "y"])
     assert not dk.use_dask(ctx, frame, ["x"])
 

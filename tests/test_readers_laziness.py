@@ -1,7 +1,7 @@
 """Asking for x and y of an 8-column file reads neither of the other six.
 
-Proven per format by watching the library calls that touch data: h5py dataset reads, the zip
-members opened, the memory map behind .npy columns, the columns pyarrow is told to convert.
+Proven per format by watching the library calls that touch data: h5py dataset reads and direct
+reads of contiguous HDF5 datasets, the zip members opened, the memory map behind .npy columns, the columns pyarrow is told to convert.
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ import pytest
 
 from _readers_samples import (particles, write_csv, write_h5_compound, write_h5_nd, write_h5_soa,
                               write_npy, write_npz)
-from swarmaudit.readers import csv_files
+from swarmaudit.readers import csv_files, hdf5
 from swarmaudit.readers.csv_files import CSVReader
 from swarmaudit.readers.hdf5 import HDF5Reader
 from swarmaudit.readers.numpy_files import NumpyReader
@@ -34,6 +34,12 @@ def h5_reads(monkeypatch):
             seen[-1] = seen[-1] + (new_dtype,)
         return original(self, args, new_dtype)
     monkeypatch.setattr(h5py.Dataset, "__getitem__", spy)
+    direct = hdf5._Extent.read
+
+    def spy_direct(self, path, start, count, out=None):  # a contiguous dataset read from the file
+        seen.append((self.name, (start, count)))
+        return direct(self, path, start, count, out)
+    monkeypatch.setattr(hdf5._Extent, "read", spy_direct)
     return seen
 
 

@@ -146,11 +146,13 @@ def _reduce(ctx: AuditContext, i: int, kind: str):
            id(layout), bool(ctx.relativistic), ctx.c)
     cache = _cache(ctx)
     if key not in cache:
-        stale = [k for k in cache if k[:2] == (kind, i)]   # an older version of the same file
-        for k in stale:
-            del cache[k]
+        latest = ctx.__dict__.setdefault("_latest", {})     # (kind, snapshot) -> its key in cache
+        stale = latest.pop((kind, i), None)                 # an older version of the same file
+        if stale is not None:
+            cache.pop(stale, None)
         params = {"layout": layout_fingerprint(layout)} if layout is not None else {}
         cache[key] = cached_reduction(ctx, i, kind, params, lambda: _COMPUTE[kind](ctx, i, layout))
+        latest[(kind, i)] = key
     return cache[key]
 
 
@@ -201,7 +203,8 @@ def _known_totals(ctx: AuditContext, j: int) -> bool:
     sig = ctx.run.refs[j].signature()
     if (j, sig) in ctx.__dict__.get("_totals_ahead", {}):
         return True
-    return any(k[0] == "totals" and k[1] == j and k[2] == sig for k in _cache(ctx))
+    key = ctx.__dict__.get("_latest", {}).get(("totals", j))
+    return key is not None and key[2] == sig
 
 
 def _totals_of(ctx: AuditContext, indices) -> dict:

@@ -7,6 +7,7 @@ Columns keep their own names; roles only point at them.
 
 from __future__ import annotations
 
+import functools
 import re
 from dataclasses import dataclass, field
 
@@ -57,8 +58,9 @@ def _normalise(name: str) -> str:
     return name.strip().lower().replace("-", "_").replace(" ", "_")
 
 
+@functools.lru_cache(maxsize=4096)
 def _guess(name: str) -> str | None:
-    """The role a column name suggests, or None."""
+    """The role a column name suggests, or None (a pure function of the name: remembered)."""
     n = _normalise(name)
     for role, names in _SCALAR_NAMES.items():
         if n in names:

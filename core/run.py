@@ -51,6 +51,8 @@ class Run:
     follow: bool = True        # a fresh snapshot that cannot be opened is left out, not an error
     # a live rescan replaces refs and _open together; a reader must not pair one with the other
     _lock: threading.RLock = field(default_factory=threading.RLock, repr=False, compare=False)
+    _species: tuple = field(default=(None, None), repr=False, compare=False)   # (key, names)
+    _version: int = field(default=0, repr=False, compare=False)
 
     def __len__(self) -> int:
         return len(self.refs)
@@ -79,16 +81,25 @@ class Run:
         return [r.label for r in self.refs]
 
     def species_names(self) -> list[str]:
+        """Every species of the run, in order of first appearance (kept until the run changes)."""
+        with self._lock:
+            key = (id(self.refs), id(self._open), len(self.refs), self._version)
+            if self._species[0] == key:
+                return list(self._species[1])
         names: list[str] = []
         for snap in self:
             for s in snap.species:
                 if s not in names:
                     names.append(s)
+        with self._lock:
+            if key == (id(self.refs), id(self._open), len(self.refs), self._version):
+                self._species = (key, tuple(names))
         return names
 
     def forget(self, i: int | None = None) -> None:
         """Drop opened snapshots (and their cached columns)."""
         with self._lock:
+            self._version += 1
             if i is None:
                 self._open.clear()
             else:

@@ -14,6 +14,7 @@ counts) are one pass over its columns instead of one numpy pass per total.
 from __future__ import annotations
 
 import importlib.util
+import os
 import threading
 
 import numpy as np
@@ -171,15 +172,37 @@ def _get(name):
         if name not in _compiled:
             import numba
             g = globals()
-            for helper in ("_axis_cells", "_wider", "_fin", "_terms"):
+            for helper in ("_axis_cells", "_wider", "_fin", "_terms", "_fill"):
                 if not hasattr(g[helper], "py_func"):
                     g[helper] = numba.njit(nogil=True, inline="always")(g[helper])
-            # IEEE results (inf, NaN) instead of exceptions on a zero division: the totals count
-            # them; 'reassoc' lets the block sums vectorise (no 'nnan'/'ninf': NaNs are counted)
-            opts = {"fastmath": {"reassoc", "nsz"}} if name == "totals" else {}
-            _compiled[name] = numba.njit(cache=True, nogil=True, error_model="numpy",
-                                         **opts)(g["_" + name])
+            if name == "totals_file":
+                _get_unlocked("totals")
+                g["_totals_rows"] = _compiled["totals"]
+                g["_pread"] = _pread_function()
+            _get_unlocked(name)
     return _compiled[name]
+
+
+def _get_unlocked(name):
+    if name not in _compiled:
+        import numba
+        # IEEE results (inf, NaN) instead of exceptions on a zero division: the totals count
+        # them; 'reassoc' lets the block sums vectorise (no 'nnan'/'ninf': NaNs are counted)
+        opts = {"fastmath": {"reassoc", "nsz"}} if name == "totals" else {}
+        _compiled[name] = numba.njit(cache=True, nogil=True, error_model="numpy",
+                                     **opts)(globals()["_" + name])
+    return _compiled[name]
+
+
+def _pread_function():
+    """libc's ``pread`` for compiled code (POSIX; found by name when the kernel is linked)."""
+    from numba import types
+    return types.ExternalFunction("pread", types.intp(types.intc, types.uintp, types.uintp,
+                                                      types.int64))
+
+
+#: whether compiled code can read files itself (a POSIX ``pread``; not on Windows)
+can_read_files = available and hasattr(os, "pread")
 
 
 def _geometry(pa, pb, layout):
@@ -399,6 +422,60 @@ def _totals(n, w, sw, q, sq, m, sm, c0, c1, c2, sc, nc, want_q, want_ke, kind, r
         bad[k] += nbad[k]
 
 
+def _fill(fd, buf, size, where, L):
+    # L values of `size` bytes from byte `where` of descriptor fd into buf; False when short
+    want = L * size
+    got = 0
+    addr = buf.ctypes.data
+    while got < want:
+        k = _pread(fd, addr + got, want - got, where + got)
+        if k <= 0:
+            return False
+        got += k
+    return True
+
+
+def _totals_file(fds, offs, sizes, w, sw, q, sq, m, sm, c0, c1, c2, nc, want_q, want_ke, kind,
+                 rel, cc, bounds, acc, comp, bad):
+    # The totals of pieces read straight from files: piece p is rows bounds[p, 0]..bounds[p, 1],
+    # its sums go to acc[p], comp[p], bad[p] (as _totals would give them for those rows in
+    # memory, bit for bit). Column j (weight, charge, mass, components 0-2) with sizes[j] > 0
+    # is read from descriptor fds[j], row 0 at byte offs[j], a buffer-full of rows at a time
+    # into its buffer (w, q, m, c0, c1, c2); the others are single values (stride 0) or absent.
+    # Returns 0, or 1 + the piece whose rows could not all be read (a file changed meanwhile).
+    R = c0.shape[0] if nc > 0 else w.shape[0] if sw else 1 << 14
+    if sw:
+        R = min(R, w.shape[0])
+    if sq:
+        R = min(R, q.shape[0])
+    if sm:
+        R = min(R, m.shape[0])
+    for p in range(bounds.shape[0]):
+        r = bounds[p, 0]
+        end = bounds[p, 1]
+        while r < end:
+            L = min(R, end - r)
+            ok = True
+            if sizes[0] > 0:
+                ok = ok and _fill(fds[0], w, sizes[0], offs[0] + r * sizes[0], L)
+            if sizes[1] > 0:
+                ok = ok and _fill(fds[1], q, sizes[1], offs[1] + r * sizes[1], L)
+            if sizes[2] > 0:
+                ok = ok and _fill(fds[2], m, sizes[2], offs[2] + r * sizes[2], L)
+            if sizes[3] > 0:
+                ok = ok and _fill(fds[3], c0, sizes[3], offs[3] + r * sizes[3], L)
+            if sizes[4] > 0:
+                ok = ok and _fill(fds[4], c1, sizes[4], offs[4] + r * sizes[4], L)
+            if sizes[5] > 0:
+                ok = ok and _fill(fds[5], c2, sizes[5], offs[5] + r * sizes[5], L)
+            if not ok:
+                return 1 + p
+            _totals_rows(L, w, sw, q, sq, m, sm, c0, c1, c2, 1, nc, want_q, want_ke, kind, rel, cc,
+                         acc[p], comp[p], bad[p])
+            r += L
+    return 0
+
+
 def _column(value):
     """(array, stride): a float64 column as it is, anything else as float64; a scalar with stride 0."""
     a = np.asarray(value)
@@ -430,6 +507,60 @@ class TotalSums:
         self.acc = t
         self.bad += other.bad
         return self
+
+
+def file_piece_sums(bounds, sources, kind: str, relativistic: bool, c: float, want_ke: bool,
+                    buffer) -> list["TotalSums"] | None:
+    """The totals of row ranges ``bounds`` (``[(start, stop), ...]``) read straight from files.
+
+    ``sources`` maps ``weight``, ``charge``, ``mass`` to ``(fd, offset, dtype)``
+    of a file column or to a single value (charge None: no charge; mass None:
+    none), and ``components`` to a list of 0-3 ``(fd, offset, dtype)`` of one
+    dtype. ``buffer(key, dtype)`` gives this thread's read buffer for a column.
+    One compiled call reads and reduces all the ranges without Python's lock.
+    Returns one :class:`TotalSums` per range (what :func:`snapshot_sums` gives for
+    the same rows in memory, bit for bit), or None when a file gave fewer bytes
+    than expected (it changed: the caller reads through the usual path).
+    """
+    fds = np.zeros(6, np.int32)
+    offs = np.zeros(6, np.int64)
+    sizes = np.zeros(6, np.int64)
+    arrays = []
+    for j, role in enumerate(("weight", "charge", "mass")):
+        src = sources[role]
+        if isinstance(src, tuple):
+            fds[j], offs[j], dt = src[0], src[1], np.dtype(src[2])
+            sizes[j] = dt.itemsize
+            arrays.append((buffer(role, dt), 1))
+        else:
+            default = {"weight": 1.0, "charge": 0.0, "mass": 1.0}[role]
+            arrays.append(_column(default if src is None else src))
+    comps = list(sources["components"])
+    nc = len(comps)
+    if nc:
+        cols = []
+        for a, (fd, off, dt) in enumerate(comps):
+            fds[3 + a], offs[3 + a], sizes[3 + a] = fd, off, np.dtype(dt).itemsize
+            cols.append(buffer(f"component{a}", np.dtype(dt)))
+    else:
+        cols = [np.zeros(1)]
+    cols = (cols + [cols[0]] * 3)[:3]
+    (w, sw), (q, sq), (m, sm) = arrays
+    k = len(bounds)
+    acc, comp, bad = np.zeros((k, 8)), np.zeros((k, 8)), np.zeros((k, 8), np.int64)
+    code = {"v": 0, "u": 1, "p": 2}[kind]
+    status = _get("totals_file")(fds, offs, sizes, w, sw, q, sq, m, sm, cols[0], cols[1], cols[2], nc,
+                                 sources["charge"] is not None, bool(want_ke and nc), code,
+                                 bool(relativistic), float(c), np.asarray(bounds, np.int64).reshape(k, 2),
+                                 acc, comp, bad)
+    if status:
+        return None
+    out = []
+    for p in range(k):
+        t = TotalSums()
+        t.acc, t.comp, t.bad = acc[p], comp[p], bad[p]
+        out.append(t)
+    return out
 
 
 def snapshot_sums(n, weight, charge, mass, components, kind: str, relativistic: bool, c: float,

@@ -226,6 +226,21 @@ class _TotalsPlan:
         self.names = [nm for nm in dict.fromkeys(names) if nm is not None]
         self.bounds, self.read, parallel = _row_pieces(frame, self.names)
         self._parallel = parallel
+        self._files = None        # checked at the first piece (a hold may start after planning)
+
+    def _file_sources(self):
+        """What the compiled reader needs, when every column comes straight from a held file."""
+        if self._files is None:
+            self._files = False
+            if _kernels.can_read_files and self.read.streamed:
+                raw = {nm: getattr(self.frame.loader(nm), "raw", lambda: None)() for nm in self.names}
+                if all(r is not None for r in raw.values()):
+                    comps = [raw[nm] for _, nm in self.axes]
+                    if len({np.dtype(dt) for _, _, dt in comps}) <= 1:
+                        src = {r: (raw[nm] if nm is not None else v) for r, (nm, v) in self.sources.items()}
+                        src["components"] = comps
+                        self._files = src
+        return self._files
 
     @property
     def parallel(self) -> bool:
@@ -233,6 +248,14 @@ class _TotalsPlan:
 
     def piece(self, k: int):
         start, stop = self.bounds[k]
+        files = self._file_sources()
+        if files:
+            got = _kernels.file_piece_sums([(start, stop)], files, self.kind or "v", self.relativistic,
+                                           self.cc, self.has_m,
+                                           lambda key, dt: _buffer("file " + key, dt, FILE_ROWS, FILE_ROWS))
+            if got is not None:
+                return got[0]
+            # a file gave fewer bytes than its metadata said: the usual reads say why
         cols = self.read(start, stop)
         got = {r: (cols[nm] if nm is not None else v) for r, (nm, v) in self.sources.items()}
         return _kernels.snapshot_sums(stop - start, got["weight"], got["charge"], got["mass"],
@@ -295,7 +318,7 @@ def _piece_pool() -> ThreadPoolExecutor:
 _buffers = threading.local()
 
 
-def _buffer(name: str, dtype, n: int) -> np.ndarray:
+def _buffer(name: str, dtype, n: int, least: int | None = None) -> np.ndarray:
     """This thread's piece buffer for a column: reused from piece to piece (a reduction keeps
     no piece), so streaming a run allocates, and faults in, its buffers once."""
     held = getattr(_buffers, "arrays", None)
@@ -304,8 +327,13 @@ def _buffer(name: str, dtype, n: int) -> np.ndarray:
     key = (name, np.dtype(dtype).str)
     buf = held.get(key)
     if buf is None or buf.shape[0] < n:
-        buf = held[key] = np.empty(max(n, CHUNK_ROWS), dtype=dtype)
+        buf = held[key] = np.empty(max(n, CHUNK_ROWS if least is None else least), dtype=dtype)
     return buf[:n]
+
+
+#: rows the compiled reader takes from each file at a time: a few such buffers stay in a core's
+#: cache between the read and the sums
+FILE_ROWS = 1 << 14
 
 
 def _row_pieces(frame, names):
@@ -437,29 +465,36 @@ def drift_table(rows) -> pd.DataFrame:
     Extra columns: ``nonfinite`` (values left out), ``scale`` (what
     :func:`first_violation` judges the change against) and ``note``.
     """
-    df = pd.DataFrame(list(rows))
+    rows = list(rows)
     extra = ["nonfinite", "scale", "reference_snapshot", "note"]
-    if df.empty:
+    if not rows:
         return pd.DataFrame(columns=DRIFT_COLUMNS + extra)
-    for col in ("nonfinite", "abs_momentum", "abs_charge"):
-        if col not in df:
-            df[col] = 0 if col == "nonfinite" else np.nan
-    df["nonfinite"] = df["nonfinite"].fillna(0).astype(np.int64)
-    # keep the callers' row order within a snapshot (species, then quantities as given)
-    df = df.sort_values("snapshot", kind="stable").reset_index(drop=True)
-    n = len(df)
+    # plain lists and arrays: a few hundred rows in many small groups, where pandas would dominate
+    snaps = np.array([r["snapshot"] for r in rows])
+    if snaps.size > 1 and np.any(np.diff(snaps) < 0):
+        # keep the callers' row order within a snapshot (species, then quantities as given)
+        order = np.argsort(snaps, kind="stable")
+        rows = [rows[i] for i in order]
+        snaps = snaps[order]
+    n = len(rows)
+    nan = np.nan
+    all_vals = np.array([r["value"] for r in rows], dtype=np.float64)
+    abs_m = np.array([r.get("abs_momentum", nan) for r in rows], dtype=np.float64)
+    abs_q = np.array([r.get("abs_charge", nan) for r in rows], dtype=np.float64)
+    nonfinite = np.array([r.get("nonfinite", 0) or 0 for r in rows], dtype=np.int64)
+    species_col = [r["species"] for r in rows]
+    quantity_col = [r["quantity"] for r in rows]
     ref = np.full(n, np.nan)
     rel = np.full(n, np.nan)
     scale = np.full(n, np.nan)
     ref_snap = np.zeros(n, dtype=np.int64)
-    note = np.full(n, "", dtype=object)
-    # plain arrays: a few hundred rows in many small groups, where pandas indexing would dominate
-    all_vals = df["value"].to_numpy(dtype=np.float64)
-    abs_m = df["abs_momentum"].to_numpy(dtype=np.float64)
-    abs_q = df["abs_charge"].to_numpy(dtype=np.float64)
-    snaps = df["snapshot"].to_numpy()
-    for (species, quantity), idx in df.groupby(["species", "quantity"], sort=False).indices.items():
-        i0 = idx[0]
+    note = [""] * n
+    groups: dict = {}
+    for i, key in enumerate(zip(species_col, quantity_col)):
+        groups.setdefault(key, []).append(i)
+    for (species, quantity), members in groups.items():
+        idx = np.asarray(members)
+        i0 = members[0]
         first = {"value": all_vals[i0], "abs_momentum": abs_m[i0], "abs_charge": abs_q[i0],
                  "snapshot": snaps[i0]}
         r = float(first["value"])
@@ -476,13 +511,15 @@ def drift_table(rows) -> pd.DataFrame:
         ref[idx] = r
         scale[idx] = sc if (sc and np.isfinite(sc) and sc > 0) else np.nan
         ref_snap[idx] = int(first["snapshot"])
-        note[idx] = f"{quantity} of species {species}: {why}" if why else ""
-    df["reference"] = ref
-    df["relative_drift"] = rel
-    df["scale"] = scale
-    df["reference_snapshot"] = ref_snap
-    df["note"] = note.astype(str)
-    return df[DRIFT_COLUMNS + extra]
+        if why:
+            text = f"{quantity} of species {species}: {why}"
+            for i in members:
+                note[i] = text
+    return pd.DataFrame({
+        "snapshot": snaps, "step": [r["step"] for r in rows], "time": [r["time"] for r in rows],
+        "species": species_col, "quantity": quantity_col, "value": all_vals, "reference": ref,
+        "relative_drift": rel, "nonfinite": nonfinite, "scale": scale, "reference_snapshot": ref_snap,
+        "note": note})
 
 
 def violations(drift_df: pd.DataFrame, rtol: float) -> pd.Series:

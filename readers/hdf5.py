@@ -570,6 +570,17 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
     # True while reads go straight to the file: they need no shared handle and let other threads run
     out.direct = lambda: isinstance(extent[0], _Extent)
     out.hold = lambda: _hold_fd(path) if out.direct() else _hold(path)
+
+    def raw():
+        """``(descriptor, offset of row 0, dtype)`` while a hold keeps this unchanged file open."""
+        ext = extent[0]
+        if not isinstance(ext, _Extent) or not ext.dtype.isnative:
+            return None
+        held = _fds.get(path)
+        if held is None or held[2] != ext.stamp:
+            return None
+        return held[0], ext.offset, ext.dtype
+    out.raw = raw
     return out
 
 

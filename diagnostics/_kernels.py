@@ -450,6 +450,8 @@ def _totals_file(fds, offs, sizes, w, sw, q, sq, m, sm, c0, c1, c2, nc, want_q, 
         R = min(R, q.shape[0])
     if sm:
         R = min(R, m.shape[0])
+    if R >= TOTALS_BLOCK:
+        R -= R % TOTALS_BLOCK   # reads end on a piece's block edges: the blocks summed are _totals' own
     for p in range(bounds.shape[0]):
         r = bounds[p, 0]
         end = bounds[p, 1]

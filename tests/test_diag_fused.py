@@ -296,3 +296,55 @@ def test_a_damaged_later_snapshot_does_not_fail_an_earlier_one(tmp_path, monkeyp
     assert audit._reduce(ctx, 1, "totals")["e"][0]["count"] == 9_001
     with pytest.raises(InputError, match="snap_02"):
         audit._reduce(ctx, 2, "totals")
+
+
+def test_compiled_file_reads_equal_the_piece_path(tmp_path, monkeypatch):
+    from swarmaudit.core.audit import _held_open
+    if not _kernels.can_read_files:
+        pytest.skip("no positioned reads on this platform")
+    rng = np.random.default_rng(5)
+    n = 20_011
+    path = tmp_path / "s.h5"
+    with h5py.File(path, "w") as fh:
+        g = fh.create_group("e")
+        g.attrs["charge"] = -1.0
+        for name in ("x", "ux", "uy", "uz"):
+            g[name] = rng.normal(size=n).astype(np.float32)
+        g["weight"] = rng.random(n) + 0.5
+        g["mass"] = rng.random(n) + 1.0
+        g["ux"][9] = np.nan
+    monkeypatch.setattr(drift, "CHUNK_ROWS", 4096)
+    monkeypatch.setattr(drift, "FILE_ROWS", 1000)         # not a divisor of the piece: partial reads
+    calls = []
+    real = _kernels.file_piece_sums
+    monkeypatch.setattr(_kernels, "file_piece_sums", lambda *a, **k: calls.append(1) or real(*a, **k))
+    frame = HDF5Reader().open(str(path)).species["e"]
+    with _held_open(frame):
+        from_files = drift.fused_totals(frame, True, 1.0)
+    assert calls
+    calls.clear()
+    frame = HDF5Reader().open(str(path)).species["e"]
+    pieces = drift.fused_totals(frame, True, 1.0)           # no hold: Python reads, same pieces
+    assert not calls and from_files == pieces
+    _assert_same(from_files, drift.numpy_totals(frame, True, 1.0))
+    assert from_files[1]["momentum_x"] == 1
+
+
+def test_a_file_cut_short_under_the_compiled_reader_is_a_clear_error(tmp_path):
+    from swarmaudit.core.audit import _held_open
+    from swarmaudit.core.errors import InputError
+    if not _kernels.can_read_files:
+        pytest.skip("no positioned reads on this platform")
+    path = tmp_path / "s.h5"
+    with h5py.File(path, "w") as fh:
+        g = fh.create_group("e")
+        g.attrs["mass"] = 1.0
+        for name in ("x", "vx", "vy", "weight"):
+            g[name] = np.ones(300_000)
+    frame = HDF5Reader().open(str(path)).species["e"]
+    with _held_open(frame):
+        with open(path, "r+b") as fh:                        # the writer truncates it meanwhile
+            fh.truncate(os.path.getsize(path) // 2)
+        with pytest.raises(InputError) as err:
+            drift.fused_totals(frame)
+    assert "s.h5" in str(err.value)

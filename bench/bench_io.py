@@ -8,7 +8,7 @@
   binning them over their finite range: what a hand-written script does;
 * drift over a run: the drift table of ``S`` snapshots (a fresh context, no
   persistent cache), against h5py reading the columns the totals need from
-  every file, run in turn with it; the same with the numpy totals (numba
+  every file, run in turn with it (at least ``DRIFT_TURNS`` turns each); the same with the numpy totals (numba
   off); and the same drift table again on a new context, served by the
   persistent cache (what opening the run and its metadata costs).
 
@@ -35,6 +35,8 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 from _rows import row, timed  # noqa: E402
 
 COLUMNS = ("x", "y", "z", "vx", "vy", "vz", "weight", "charge")
+#: turns of the drift measurement (ours and the baseline in turn) at the least
+DRIFT_TURNS = 11
 
 
 def write_wide(path: str, n: int, seed: int = 0) -> None:
@@ -132,13 +134,16 @@ def drift_rows(folder: str, paths: list[str], repeat: int) -> list[dict]:
 
     ours()
     baseline()
-    t_ours, t_base = alternating(ours, baseline, repeat)
+    # each side takes a few hundredths of a second: more turns than --repeat, so that one
+    # disturbed turn does not decide the median
+    turns = max(repeat, DRIFT_TURNS)
+    t_ours, t_base = alternating(ours, baseline, turns)
     from swarmaudit.diagnostics import _kernels
     numpy_rows = []
     if _kernels.available:
         _kernels.available = False           # the same table from one numpy pass per total
         try:
-            t_numpy, t_base2 = alternating(ours, baseline, repeat)
+            t_numpy, t_base2 = alternating(ours, baseline, repeat)  # the slow path: --repeat turns
         finally:
             _kernels.available = True
         numpy_rows = [row("  drift, numpy totals", t_numpy, f"h5py reads of weight, vx, vy ({len(paths)} files)",
@@ -148,7 +153,7 @@ def drift_rows(folder: str, paths: list[str], repeat: int) -> list[dict]:
     os.environ["SWARMAUDIT_CACHE"] = cache_dir
     try:
         ours(use_cache=True)                             # fills the cache
-        t_cached = timed(lambda: ours(use_cache=True), repeat, warm=False)
+        t_cached = timed(lambda: ours(use_cache=True), turns, warm=False)
     finally:
         if old is None:
             os.environ.pop("SWARMAUDIT_CACHE", None)

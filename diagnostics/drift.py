@@ -190,18 +190,34 @@ def fused_totals_many(frames, relativistic: bool = False, c=None) -> list[tuple[
     queued = []
     for i, p in enumerate(plans):
         if not p.parallel:      # a loader may look its storage up on its first read
-            parts[i][0] = p.piece(0)
+            parts[i][0] = p.pieces([0])[0]
         queued += [(i, k) for k in range(len(p.bounds)) if parts[i][k] is None]
     pooled = [(i, k) for i, k in queued if plans[i].parallel]
     serial = [(i, k) for i, k in queued if not plans[i].parallel]
-    if len(pooled) > 1 and _piece_workers() > 1:
-        for (i, k), got in zip(pooled, _piece_pool().map(lambda ik: plans[ik[0]].piece(ik[1]), pooled)):
-            parts[i][k] = got
+    workers = _piece_workers()
+    if len(pooled) > 1 and workers > 1:
+        # a few tasks per thread, each a run of one frame's pieces (one compiled call reads them)
+        size = max(1, len(pooled) // (TASKS_PER_WORKER * workers))
+        tasks, run = [], []
+        for ik in pooled:
+            if run and (ik[0] != run[0][0] or len(run) == size):
+                tasks.append(run)
+                run = []
+            run.append(ik)
+        tasks.append(run)
+        done = _piece_pool().map(lambda t: plans[t[0][0]].pieces([k for _, k in t]), tasks)
+        for task, got in zip(tasks, done):
+            for (i, k), sums in zip(task, got):
+                parts[i][k] = sums
     else:
         serial = pooled + serial
     for i, k in serial:
-        parts[i][k] = plans[i].piece(k)
+        parts[i][k] = plans[i].pieces([k])[0]
     return [p.finish(got) for p, got in zip(plans, parts)]
+
+
+#: tasks per thread when several frames' pieces are shared out: enough to even out the load
+TASKS_PER_WORKER = 4
 
 
 class _TotalsPlan:
@@ -246,16 +262,20 @@ class _TotalsPlan:
     def parallel(self) -> bool:
         return len(self.bounds) > 1 and bool(self._parallel)
 
-    def piece(self, k: int):
-        start, stop = self.bounds[k]
+    def pieces(self, ks) -> list:
+        """The sums of pieces ``ks`` (one compiled call when the columns come from held files)."""
         files = self._file_sources()
         if files:
-            got = _kernels.file_piece_sums([(start, stop)], files, self.kind or "v", self.relativistic,
-                                           self.cc, self.has_m,
+            got = _kernels.file_piece_sums([self.bounds[k] for k in ks], files, self.kind or "v",
+                                           self.relativistic, self.cc, self.has_m,
                                            lambda key, dt: _buffer("file " + key, dt, FILE_ROWS, FILE_ROWS))
             if got is not None:
-                return got[0]
+                return got
             # a file gave fewer bytes than its metadata said: the usual reads say why
+        return [self.piece(k) for k in ks]
+
+    def piece(self, k: int):
+        start, stop = self.bounds[k]
         cols = self.read(start, stop)
         got = {r: (cols[nm] if nm is not None else v) for r, (nm, v) in self.sources.items()}
         return _kernels.snapshot_sums(stop - start, got["weight"], got["charge"], got["mass"],

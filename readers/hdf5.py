@@ -90,7 +90,7 @@ class _Scan:
         self.stat = None          # the file's os.stat, taken with the first dataset's extent
 
     # datasets -> columns ---------------------------------------------------
-    def _check_stored(self, ds, dsname: str, dtype):
+    def _check_stored(self, ds, dsname: str, dtype, shape):
         """A dataset must hold the bytes its shape claims (else truncated, sparse or forged).
 
         Returns where a plain contiguous 1-D dataset's values lie (:class:`_Extent`), or None.
@@ -103,17 +103,17 @@ class _Scan:
             if layout == h5py.h5d.VIRTUAL or dcpl.get_external_count() > 0:
                 return None
             tid = ds.id.get_type()
-            need = math.prod(ds.shape) * tid.get_size()
+            need = math.prod(shape) * tid.get_size()
             stored = ds.id.get_storage_size()
             filtered = dcpl.get_nfilters() > 0
         except H5_ERRORS as exc:
             raise InputError(self.path, f"dataset '{dsname}' cannot be inspected ({exc})") from None
         # deflate cannot shrink data more than ~1000x; far beyond that, chunks were never written
         if need and (stored == 0 or (not filtered and stored < need) or need > MAX_RATIO * stored):
-            raise InputError(self.path, f"dataset '{dsname}' declares {ds.shape[0]} rows "
+            raise InputError(self.path, f"dataset '{dsname}' declares {shape[0]} rows "
                              f"({need} bytes) but the file stores {stored} bytes of it",
                              "the file is truncated or was not completely written")
-        if filtered or len(ds.shape) != 1 or layout != h5py.h5d.CONTIGUOUS:
+        if filtered or len(shape) != 1 or layout != h5py.h5d.CONTIGUOUS:
             return None
         if self.stat is None:
             try:
@@ -121,7 +121,7 @@ class _Scan:
             except OSError:
                 return None
         return _Extent.of(ds, self.path, dcpl=dcpl, stored=stored, stat=self.stat, tid=tid,
-                          dtype=dtype, name=dsname, checked=True)
+                          dtype=dtype, name=dsname, checked=True, length=shape[0])
 
     def add_dataset(self, table: Table, ds, name: str, unit: str | None) -> None:
         dsname = _text(ds.name)
@@ -140,7 +140,7 @@ class _Scan:
             if len(shape) != 1:
                 self.warnings.append(f"{where} is a table of shape {shape}, not one row per particle; left out")
                 return
-            self._check_stored(ds, dsname, dtype)
+            self._check_stored(ds, dsname, dtype, shape)
             for col, fpath, comp, fdt in flatten_fields(dtype):
                 if comp == "skip":
                     self.warnings.append(f"field '{col}' of {where} has shape {fdt.shape}; left out")
@@ -156,7 +156,7 @@ class _Scan:
         names = [name] if len(shape) == 1 else component_names(name, shape[1])
         if not reject_non_numeric(self.path, names[0], dtype, where, self.warnings):
             return
-        extent = self._check_stored(ds, dsname, dtype)
+        extent = self._check_stored(ds, dsname, dtype, shape)
         for k, col in enumerate(names):
             table.add(col, shape[0], _loader(self.path, dsname, comp=None if len(shape) == 1 else k,
                                                   dtype=dtype, extent=extent),
@@ -197,8 +197,9 @@ class _Scan:
         for _, obj in self._members(group):
             if not isinstance(obj, h5py.Dataset):
                 return None
-            if obj.shape:
-                sizes.add(obj.shape[0])
+            shape = obj.shape
+            if shape:
+                sizes.add(shape[0])
         return sizes
 
     def walk(self, group, depth: int = 0) -> None:
@@ -213,7 +214,8 @@ class _Scan:
         scalars = []
         for n, obj in members:
             if isinstance(obj, h5py.Dataset):
-                if obj.shape is not None and len(obj.shape) == 0:
+                shape = obj.shape
+                if shape is not None and len(shape) == 0:
                     scalars.append((n, obj))
                 else:
                     self.add_dataset(table, obj, n, None)
@@ -423,7 +425,7 @@ class _Extent:
 
     @staticmethod
     def of(ds, path: str, dcpl=None, stored=None, stat=None, tid=None, dtype=None, name=None,
-           checked=False):
+           checked=False, length=None):
         """The extent of dataset ``ds`` of file ``path``, or None when it cannot be read directly.
 
         ``dcpl``, ``stored``, ``stat``, ``tid``, ``dtype`` and ``name`` (its creation
@@ -444,7 +446,8 @@ class _Extent:
                     return None
             if not (tid or ds.id.get_type()) == _h5_type(dt):   # bit-for-bit the numpy type
                 return None
-            nbytes = int(ds.shape[0]) * dt.itemsize
+            length = int(ds.shape[0] if length is None else length)
+            nbytes = length * dt.itemsize
             offset = ds.id.get_offset()
             stored = ds.id.get_storage_size() if stored is None else stored
             if offset is None or offset < 0 or stored < nbytes:
@@ -454,7 +457,7 @@ class _Extent:
             return None
         if offset + nbytes > st.st_size:
             return None
-        return _Extent(name or _text(ds.name), int(offset), int(ds.shape[0]), dt, _stamp(st))
+        return _Extent(name or _text(ds.name), int(offset), length, dt, _stamp(st))
 
     def read(self, path: str, start: int, count: int, out=None):
         """``count`` values from row ``start`` (into ``out`` when given, of the file's dtype).
@@ -614,8 +617,9 @@ class HDF5Reader:
             fh = h5py.File(path, "r")
         except H5_ERRORS as exc:
             raise InputError(path, _problem(exc)) from None
+        scan = None
         try:
-            with fh:
+            try:
                 scan = _Scan(path)
                 items = _attr_items(fh)
                 for n, obj in scan._members(fh):
@@ -627,6 +631,16 @@ class HDF5Reader:
                     if t.where == "/":
                         # a single-species file may keep its species attributes at the root
                         t.attrs.update({k: meta[k] for k in ("mass", "charge") if k in meta})
+            finally:
+                # the scan's objects go first, then the file (without h5py's sweep over every
+                # object still open in it: the scan holds the only ones)
+                if scan is not None:
+                    scan._seen.clear()
+                obj = None
+                try:
+                    fh.id.close()
+                except H5_ERRORS:
+                    fh.close()
         except SwarmAuditError:
             raise
         except MemoryError:

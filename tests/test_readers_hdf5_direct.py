@@ -103,3 +103,16 @@ def test_a_hold_shares_one_descriptor_and_closes_it(tmp_path):
         assert hdf5._fds[path][1] >= 1
         np.testing.assert_array_equal(frame.loader("x").rows(0, 10), _h5(path, "x")[:10])
     assert path not in hdf5._fds
+
+
+@pytest.mark.skipif(not os.path.isdir("/proc/self/fd"), reason="needs /proc")
+def test_opening_and_reading_leave_no_file_open(tmp_path):
+    paths = [str(_write(tmp_path / f"s{i}.h5")) for i in range(5)]
+    before = len(os.listdir("/proc/self/fd"))
+    frames = [HDF5Reader().open(p).species["beam"] for p in paths]
+    for f in frames:
+        f["x"], f["y"], f.loader("tag").rows(0, 10)
+        with _held_open(f):
+            f.loader("vx").rows(0, 10)
+    assert len(os.listdir("/proc/self/fd")) == before
+    assert hdf5._fds == {}

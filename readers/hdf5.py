@@ -90,7 +90,7 @@ class _Scan:
         self.stat = None          # the file's os.stat, taken with the first dataset's extent
 
     # datasets -> columns ---------------------------------------------------
-    def _check_stored(self, ds, dsname: str, dtype, shape):
+    def _check_stored(self, ds, dsname: str, dtype, shape, tid):
         """A dataset must hold the bytes its shape claims (else truncated, sparse or forged).
 
         Returns where a plain contiguous 1-D dataset's values lie (:class:`_Extent`), or None.
@@ -102,7 +102,6 @@ class _Scan:
             layout = dcpl.get_layout()
             if layout == h5py.h5d.VIRTUAL or dcpl.get_external_count() > 0:
                 return None
-            tid = ds.id.get_type()
             need = math.prod(shape) * tid.get_size()
             stored = ds.id.get_storage_size()
             filtered = dcpl.get_nfilters() > 0
@@ -130,7 +129,8 @@ class _Scan:
         if shape is None or len(shape) == 0:
             return
         try:
-            dtype = ds.dtype
+            tid = ds.id.get_type()     # the stored type, once: its numpy dtype and its size
+            dtype = tid.dtype
         except H5_ERRORS:
             reject_non_numeric(self.path, name, np.dtype("V1"), where + " (a type numpy has no match for)",
                                self.warnings)
@@ -140,7 +140,7 @@ class _Scan:
             if len(shape) != 1:
                 self.warnings.append(f"{where} is a table of shape {shape}, not one row per particle; left out")
                 return
-            self._check_stored(ds, dsname, dtype, shape)
+            self._check_stored(ds, dsname, dtype, shape, tid)
             for col, fpath, comp, fdt in flatten_fields(dtype):
                 if comp == "skip":
                     self.warnings.append(f"field '{col}' of {where} has shape {fdt.shape}; left out")
@@ -156,7 +156,7 @@ class _Scan:
         names = [name] if len(shape) == 1 else component_names(name, shape[1])
         if not reject_non_numeric(self.path, names[0], dtype, where, self.warnings):
             return
-        extent = self._check_stored(ds, dsname, dtype, shape)
+        extent = self._check_stored(ds, dsname, dtype, shape, tid)
         for k, col in enumerate(names):
             table.add(col, shape[0], _loader(self.path, dsname, comp=None if len(shape) == 1 else k,
                                                   dtype=dtype, extent=extent),
@@ -272,7 +272,8 @@ def _attr_items(obj) -> list[tuple[str, object]]:
             name = _text(a.name)
             t = a.get_type()
             cls = t.get_class()
-            if cls in (h5t.FLOAT, h5t.INTEGER) and a.get_space().get_simple_extent_npoints() == 1:
+            # one value: it takes the bytes of one (a scalar or a one-element array)
+            if cls in (h5t.FLOAT, h5t.INTEGER) and a.get_storage_size() == t.get_size():
                 if cls == h5t.FLOAT:
                     v, mtype = np.empty((), np.float64), h5t.NATIVE_DOUBLE
                 elif t.get_sign() == h5t.SGN_NONE:

@@ -185,7 +185,9 @@ def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
     got = ahead.pop((i, sig), None)
     if got is not None:
         return got
-    later = [j for j in range(i + 1, min(i + TOTALS_AHEAD, len(ctx.run))) if not _known_totals(ctx, j)]
+    # together only what is read in pieces: a batch must not hold several snapshots' columns
+    later = [j for j in range(i + 1, min(i + TOTALS_AHEAD, len(ctx.run)))
+             if not _known_totals(ctx, j) and _in_pieces(ctx, j)] if _in_pieces(ctx, i) else []
     if later:
         try:
             done = _totals_of(ctx, [i] + later)
@@ -196,6 +198,15 @@ def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
                 ahead[(j, ctx.run.refs[j].signature())] = done[j]
             return done[i]
     return _totals_of(ctx, [i])[i]
+
+
+def _in_pieces(ctx: AuditContext, j: int) -> bool:
+    """Whether snapshot ``j``'s totals keep no full column of it in memory (see TOTALS_AHEAD)."""
+    try:
+        snap = ctx.run[j]
+        return all(_drift.totals_read_in_pieces(snap.species[s]) for s in _present_species(ctx, j))
+    except Exception:   # SwarmAuditError or otherwise: it is computed (and reported) on its own
+        return False
 
 
 def _known_totals(ctx: AuditContext, j: int) -> bool:

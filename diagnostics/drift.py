@@ -220,6 +220,16 @@ def fused_totals_many(frames, relativistic: bool = False, c=None) -> list[tuple[
 TASKS_PER_WORKER = 4
 
 
+def totals_read_in_pieces(frame) -> bool:
+    """Whether the totals of ``frame`` keep no full column in memory: its columns are streamed in
+    pieces, are in memory already, or are short (a pass may then reduce several frames at once)."""
+    plan = _TotalsPlan(frame, False, None)
+    if plan.read.streamed or len(frame) <= CHUNK_ROWS:
+        return True
+    cache = getattr(frame, "_cache", {})
+    return all(nm in cache for nm in plan.names)
+
+
 class _TotalsPlan:
     """What the compiled totals of one frame read, in which pieces, and how they are put together."""
 

@@ -348,3 +348,26 @@ def test_a_file_cut_short_under_the_compiled_reader_is_a_clear_error(tmp_path):
         with pytest.raises(InputError) as err:
             drift.fused_totals(frame)
     assert "s.h5" in str(err.value)
+
+
+def test_only_streamed_snapshots_are_reduced_together(tmp_path, monkeypatch):
+    from swarmaudit.core import audit
+    from swarmaudit.core.context import AuditContext
+    from swarmaudit.readers.discover import open_run
+    rng = np.random.default_rng(2)
+    h5_dir, npz_dir = tmp_path / "h5", tmp_path / "npz"
+    npz_dir.mkdir()
+    h5_dir.mkdir()
+    _h5_run(h5_dir, snapshots=3, n=600)
+    for s in range(3):                                   # whole columns: read in one go
+        np.savez(npz_dir / f"snap_{s}.npz", x=rng.random(600), vx=rng.normal(size=600),
+                 weight=np.ones(600), mass=np.ones(600))
+    monkeypatch.setattr(drift, "CHUNK_ROWS", 256)
+    sizes = []
+    real = drift.snapshot_totals_many
+    monkeypatch.setattr(drift, "snapshot_totals_many", lambda frames, *a: sizes.append(len(frames)) or real(frames, *a))
+    audit.drift_table(AuditContext(open_run(str(npz_dir)), use_cache=False))
+    assert sizes == [1, 1, 1]                          # one snapshot's columns in memory at a time
+    sizes.clear()
+    audit.drift_table(AuditContext(open_run(str(h5_dir)), use_cache=False))
+    assert sizes[0] == 3                               # read in pieces: together

@@ -78,6 +78,44 @@ def _units(obj) -> str | None:
     return None
 
 
+class _Node:
+    """A dataset or group met by the scan: its low-level id and path, without h5py's object.
+
+    h5py's ``Dataset``/``Group`` objects cost more to make than most of what the
+    scan asks of them; the few uses that need one (a value read, an attribute of
+    an unusual type, the ``blocks`` group) make it on demand (:meth:`hl`).
+    """
+
+    __slots__ = ("id", "name", "is_dataset", "_shape", "_hl")
+
+    def __init__(self, oid, name: str, is_dataset: bool):
+        self.id, self.name, self.is_dataset = oid, name, is_dataset
+        self._shape = self._hl = None
+
+    @property
+    def shape(self):
+        if self._shape is None and self.is_dataset:
+            self._shape = self.id.shape
+        return self._shape
+
+    @property
+    def dtype(self):
+        return self.id.dtype
+
+    def hl(self):
+        import h5py
+        if self._hl is None:
+            self._hl = h5py.Dataset(self.id, readonly=True) if self.is_dataset else h5py.Group(self.id)
+        return self._hl
+
+    @property
+    def attrs(self):
+        return self.hl().attrs
+
+    def __getitem__(self, key):
+        return self.hl()[key]
+
+
 class _Scan:
     """One walk over an open file, collecting tables (nothing but metadata is read)."""
 
@@ -123,7 +161,7 @@ class _Scan:
                           dtype=dtype, name=dsname, checked=True, length=shape[0])
 
     def add_dataset(self, table: Table, ds, name: str, unit: str | None) -> None:
-        dsname = _text(ds.name)
+        dsname = ds.name
         where = f"dataset '{dsname}'"
         shape = ds.shape
         if shape is None or len(shape) == 0:
@@ -175,19 +213,18 @@ class _Scan:
         try:
             names = list(group.id)     # the member names, as HDF5 stores them (bytes)
         except H5_ERRORS as exc:
-            raise InputError(self.path, f"group '{_text(group.name)}' cannot be listed ({exc})") from None
+            raise InputError(self.path, f"group '{group.name}' cannot be listed ({exc})") from None
+        base = group.name.rstrip("/")
         for n in names:
+            text = _text(n)
             try:
                 # the object itself, as group[n] would give it, without h5py's high-level lookup
                 oid = h5py.h5o.open(group.id, n)
-                obj = (h5py.Dataset(oid, readonly=True) if isinstance(oid, h5py.h5d.DatasetID) else
-                       h5py.Group(oid) if isinstance(oid, h5py.h5g.GroupID) else None)
             except H5_ERRORS as exc:
-                self.warnings.append(f"'{_text(group.name).rstrip('/')}/{_text(n)}' cannot be opened "
-                                     f"({exc}); left out")
+                self.warnings.append(f"'{base}/{text}' cannot be opened ({exc}); left out")
                 continue
-            if isinstance(obj, (h5py.Dataset, h5py.Group)):
-                out.append((_text(n), obj))
+            if isinstance(oid, (h5py.h5d.DatasetID, h5py.h5g.GroupID)):   # not a named type
+                out.append((text, _Node(oid, f"{base}/{text}", isinstance(oid, h5py.h5d.DatasetID))))
         return out
 
     def _leading(self, group) -> set:
@@ -195,7 +232,7 @@ class _Scan:
         import h5py
         sizes = set()
         for _, obj in self._members(group):
-            if not isinstance(obj, h5py.Dataset):
+            if not obj.is_dataset:
                 return None
             shape = obj.shape
             if shape:
@@ -205,15 +242,15 @@ class _Scan:
     def walk(self, group, depth: int = 0) -> None:
         import h5py
         if depth > MAX_DEPTH:
-            self.warnings.append(f"group '{_text(group.name)}' is nested too deep; left out")
+            self.warnings.append(f"group '{group.name}' is nested too deep; left out")
             return
         members = self._members(group)
         is_root = group.name == "/"
-        label = _text(group.name).strip("/") or "particles"
-        table = Table(_text(group.name))
+        label = group.name.strip("/") or "particles"
+        table = Table(group.name)
         scalars = []
         for n, obj in members:
-            if isinstance(obj, h5py.Dataset):
+            if obj.is_dataset:
                 shape = obj.shape
                 if shape is not None and len(shape) == 0:
                     scalars.append((n, obj))
@@ -221,12 +258,12 @@ class _Scan:
                     self.add_dataset(table, obj, n, None)
         rows = set(table.lengths.values())
         for n, obj in members:
-            if not isinstance(obj, h5py.Group):
+            if obj.is_dataset:
                 continue
             if n == "blocks":
                 if self.layout is None:
                     from .layout_files import layout_from_h5group
-                    self.layout = layout_from_h5group(obj, self.path)
+                    self.layout = layout_from_h5group(obj.hl(), self.path)
                 continue
             sizes = self._leading(obj)
             component = sizes is not None and bool(sizes) and (
@@ -622,12 +659,13 @@ class HDF5Reader:
         try:
             try:
                 scan = _Scan(path)
-                items = _attr_items(fh)
-                for n, obj in scan._members(fh):
-                    if isinstance(obj, h5py.Dataset) and obj.shape is not None and len(obj.shape) == 0:
+                root = _Node(h5py.h5o.open(fh.id, b"/"), "/", False)
+                items = _attr_items(root)
+                for n, obj in scan._members(root):
+                    if obj.is_dataset and obj.shape is not None and len(obj.shape) == 0:
                         items.append((n, _read_scalar(obj)))
                 step, time, meta, time_unit = split_scalars(items, path)
-                scan.walk(fh)
+                scan.walk(root)
                 for t in scan.tables.values():
                     if t.where == "/":
                         # a single-species file may keep its species attributes at the root
@@ -637,7 +675,7 @@ class HDF5Reader:
                 # object still open in it: the scan holds the only ones)
                 if scan is not None:
                     scan._seen.clear()
-                obj = None
+                obj = root = None
                 try:
                     fh.id.close()
                 except H5_ERRORS:

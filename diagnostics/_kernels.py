@@ -422,9 +422,11 @@ def _totals(n, w, sw, q, sq, m, sm, c0, c1, c2, sc, nc, want_q, want_ke, kind, r
         bad[k] += nbad[k]
 
 
-def _fill(fd, buf, size, where, L):
-    # L values of `size` bytes from byte `where` of descriptor fd into buf; False when short
+def _fill(fd, buf, size, offset, r, L):
+    # rows r..r+L of a column of `size`-byte values whose row 0 is at byte `offset` of descriptor
+    # fd, into buf; a column not read from a file (size 0) is left alone. False when short.
     want = L * size
+    where = offset + r * size
     got = 0
     addr = buf.ctypes.data
     while got < want:
@@ -457,19 +459,9 @@ def _totals_file(fds, offs, sizes, w, sw, q, sq, m, sm, c0, c1, c2, nc, want_q, 
         end = bounds[p, 1]
         while r < end:
             L = min(R, end - r)
-            ok = True
-            if sizes[0] > 0:
-                ok = ok and _fill(fds[0], w, sizes[0], offs[0] + r * sizes[0], L)
-            if sizes[1] > 0:
-                ok = ok and _fill(fds[1], q, sizes[1], offs[1] + r * sizes[1], L)
-            if sizes[2] > 0:
-                ok = ok and _fill(fds[2], m, sizes[2], offs[2] + r * sizes[2], L)
-            if sizes[3] > 0:
-                ok = ok and _fill(fds[3], c0, sizes[3], offs[3] + r * sizes[3], L)
-            if sizes[4] > 0:
-                ok = ok and _fill(fds[4], c1, sizes[4], offs[4] + r * sizes[4], L)
-            if sizes[5] > 0:
-                ok = ok and _fill(fds[5], c2, sizes[5], offs[5] + r * sizes[5], L)
+            ok = (_fill(fds[0], w, sizes[0], offs[0], r, L) and _fill(fds[1], q, sizes[1], offs[1], r, L)
+                  and _fill(fds[2], m, sizes[2], offs[2], r, L) and _fill(fds[3], c0, sizes[3], offs[3], r, L)
+                  and _fill(fds[4], c1, sizes[4], offs[4], r, L) and _fill(fds[5], c2, sizes[5], offs[5], r, L))
             if not ok:
                 return 1 + p
             _totals_rows(L, w, sw, q, sq, m, sm, c0, c1, c2, 1, nc, want_q, want_ke, kind, rel, cc,

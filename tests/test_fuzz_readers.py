@@ -326,7 +326,7 @@ def csv_bytes(draw):
     ncol = draw(st.integers(1, 4))
     header = draw(st.lists(st.sampled_from(["x", "y", "vx", "id", "w", "", "x y", "1"]),
                            min_size=ncol, max_size=ncol))
-    lines = [f"# {k} = {v}".encode() for k, v in draw(st.lists(
+    lines = [f"# {k} = {v}".encode("utf-8", "replace") for k, v in draw(st.lists(
         st.tuples(st.sampled_from(["step", "time", "field_energy", "junk"]), TOKENS), max_size=3))]
     lines.append(",".join(header).encode())
     for _ in range(draw(st.integers(0, 12))):

@@ -261,7 +261,12 @@ def _as_numbers(lay: _Layout, name: str, col) -> np.ndarray:
     if pa.types.is_floating(t) or ((pa.types.is_integer(t) or pa.types.is_boolean(t)) and col.null_count == 0):
         return col.to_numpy()
     if pa.types.is_integer(t) or pa.types.is_boolean(t):
-        return pc.cast(col, pa.float64()).to_numpy()   # an empty value: NaN, as in a float column
+        try:
+            return pc.cast(col, pa.float64()).to_numpy()   # an empty value: NaN, as in a float column
+        except pa.ArrowInvalid:   # an integer float64 cannot hold exactly: say so, round nothing
+            raise InputError(lay.path, f"column '{name}' has empty values and integers beyond 2**53, "
+                             "which a floating-point column (where an empty value is NaN) cannot hold "
+                             "exactly", "fill the empty values, or write the column as floating point") from None
     if pa.types.is_string(t) or pa.types.is_large_string(t):
         text = col.combine_chunks()
     else:   # raw bytes (bad UTF-8) or a type like dates: check UTF-8, then numbers, in bulk

@@ -13,6 +13,7 @@ import pytest
 from _readers_samples import particles, write_csv, write_h5_nested, write_npy, write_npz
 from swarmaudit.core.errors import InputError
 from swarmaudit.readers import registry
+from swarmaudit.readers.csv_files import CSVReader
 
 REF = particles(40, seed=7)
 
@@ -268,3 +269,14 @@ def test_hdf5_compressed_dataset_reads(tmp_path):
                          compression_opts=9, shuffle=True)
     frame = registry.open_snapshot(str(p)).species["beam"]
     assert not frame["x"].any()
+
+
+def test_csv_integers_beyond_float_precision_with_blanks_are_a_clear_error(tmp_path):
+    # an empty value makes the column floating point (NaN); 2**53 + 1 has no float64 of its own
+    # (IEEE 754 double: 53-bit significand), so rounding it would be silent corruption
+    path = tmp_path / "big.csv"
+    path.write_text("x,y,vx\n\n0.0,,0.0\n0.0,9007199254740993,0.0\n")
+    frame = next(iter(CSVReader().open(str(path)).species.values()))
+    with pytest.raises(InputError, match=r"big\.csv: column 'y' has empty values and integers beyond"):
+        frame["y"]
+    np.testing.assert_array_equal(frame["x"], [0.0, 0.0])

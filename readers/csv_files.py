@@ -80,7 +80,12 @@ def _sniff(path: str):
     if "\x00" in header:
         raise InputError(path, f"line {lineno} holds NUL bytes: not a text file")
     delimiter = next((d for d in (",", "\t", ";") if d in header), ",")
-    names = [n.strip() for n in next(csv.reader([header], delimiter=delimiter))]
+    try:
+        names = [n.strip() for n in next(csv.reader([header], delimiter=delimiter))]
+    except csv.Error:    # a carriage return inside the line, an unclosed quote...
+        raise InputError(path, f"the header (line {lineno}) cannot be split into column names: it holds "
+                         "a stray carriage return or an unclosed quote",
+                         "the first line that is not a comment must name the columns, e.g. x,y,vx,id") from None
     names = [n or f"unnamed_{i}" for i, n in enumerate(names)]
     seen = set()
     for n in names:

@@ -12,6 +12,7 @@
 from __future__ import annotations
 
 import os
+import struct
 import tokenize
 import zipfile
 import zlib
@@ -31,7 +32,7 @@ ZIP_MAGICS = (b"PK\x03\x04", b"PK\x05\x06")
 PICKLE_HINT = ("swarmaudit never loads pickles (loading one can run any code); save numbers with "
                "np.save(..., allow_pickle=False) as a structured array, or np.savez one array per column")
 ZIP_ERRORS = (zipfile.BadZipFile, zlib.error, EOFError, OSError, NotImplementedError, ValueError,
-              KeyError, RuntimeError)
+              KeyError, RuntimeError, IndexError, struct.error)   # zipfile on a damaged directory
 DEFAULT_SPECIES = "particles"
 # what numpy's header parser raises on a damaged header (it tokenizes a Python literal)
 HEADER_ERRORS = (ValueError, SyntaxError, TypeError, OSError, EOFError, KeyError, OverflowError,

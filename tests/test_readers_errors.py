@@ -280,3 +280,10 @@ def test_csv_integers_beyond_float_precision_with_blanks_are_a_clear_error(tmp_p
     with pytest.raises(InputError, match=r"big\.csv: column 'y' has empty values and integers beyond"):
         frame["y"]
     np.testing.assert_array_equal(frame["x"], [0.0, 0.0])
+
+
+def test_csv_header_that_cannot_be_split_is_a_clear_error(tmp_path):
+    path = tmp_path / "cr.csv"
+    path.write_bytes(b"\r\x01")              # a carriage return, then a control byte: no header
+    with pytest.raises(InputError, match=r"cr\.csv: the header \(line 1\) cannot be split"):
+        CSVReader().open(str(path))

@@ -9,8 +9,9 @@ import threading
 import time
 
 
-def timed(fn, repeat: int = 3, warm: bool = True) -> float:
-    """Median seconds of ``repeat`` calls, after one untimed call (compiles, first touch)."""
+def timed(fn, repeat: int = 3, warm: bool = True, pick=statistics.median) -> float:
+    """``pick`` (median, or min) of the seconds of ``repeat`` calls, after one untimed call
+    (compiles, first touch)."""
     if warm:
         fn()
     times = []
@@ -18,7 +19,25 @@ def timed(fn, repeat: int = 3, warm: bool = True) -> float:
         t = time.perf_counter()
         fn()
         times.append(time.perf_counter() - t)
-    return statistics.median(times)
+    return pick(times)
+
+
+def in_turn(fn, base, repeat: int = 3, warm: bool = True, pick=statistics.median) -> tuple[float, float]:
+    """``pick`` (median, or min) of the seconds of ``fn`` and of ``base``, timed alternately.
+
+    Run in turn, a change in machine load hits both sides alike. ``warm``: one
+    untimed call of each first (compiles, first touch of memory).
+    """
+    if warm:
+        fn()
+        base()
+    a, b = [], []
+    for _ in range(max(1, repeat)):
+        for f, out in ((fn, a), (base, b)):
+            t = time.perf_counter()
+            f()
+            out.append(time.perf_counter() - t)
+    return pick(a), pick(b)
 
 
 def row(measurement, seconds, baseline, baseline_seconds, target: str = "", note: str = "") -> dict:

@@ -11,8 +11,8 @@ machine load hits both alike; the table shows medians and their ratio
 from __future__ import annotations
 
 import argparse
-import statistics
-import time
+import os
+import sys
 
 import numpy as np
 import pandas as pd
@@ -24,18 +24,8 @@ from swarmaudit.diagnostics.census import block_census
 from swarmaudit.diagnostics.deposit import deposit
 from swarmaudit.diagnostics.migration import match_keys, migrate
 
-
-def side_by_side(fn, base, repeat: int) -> tuple[float, float]:
-    """Medians of fn and base, run alternately so that a change in machine load hits both alike."""
-    fn()     # warm-up: compile, first touch of memory
-    base()
-    a, b = [], []
-    for _ in range(repeat):
-        for f, out in ((fn, a), (base, b)):
-            t = time.perf_counter()
-            f()
-            out.append(time.perf_counter() - t)
-    return statistics.median(a), statistics.median(b)
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from _rows import in_turn  # noqa: E402
 
 
 def run(n: int = 10_000_000, repeat: int = 3) -> list[dict]:
@@ -67,13 +57,13 @@ def run(n: int = 10_000_000, repeat: int = 3) -> list[dict]:
     def census():
         return block_census(assign_blocks([x, y], layout), layout)
 
-    t, base = side_by_side(census, one_pass, r)
+    t, base = in_turn(census, one_pass, r)
     row(f"census {n:,} into {layout.nblocks} blocks", t, "one numpy pass (x.sum, y.sum)", base, "<= 10")
-    t, base = side_by_side(lambda: assign_blocks([x, y], layout), one_pass, r)
+    t, base = in_turn(lambda: assign_blocks([x, y], layout), one_pass, r)
     row("  of which assign_blocks", t, "one numpy pass", base, "")
     if _fastassign.available:
         _fastassign.available = False
-        t, base = side_by_side(lambda: assign_blocks([x, y], layout), one_pass, r)
+        t, base = in_turn(lambda: assign_blocks([x, y], layout), one_pass, r)
         _fastassign.available = True
         row("  assign_blocks, numpy path", t, "one numpy pass", base, "")
 
@@ -90,31 +80,31 @@ def run(n: int = 10_000_000, repeat: int = 3) -> list[dict]:
     def migration():
         return migrate(ids_a, ids_b, blk_a, blk_b, [x, y], [xb, yb], layout, steps=10)
 
-    t, base = side_by_side(match, argsort, r)
+    t, base = in_turn(match, argsort, r)
     row(f"match_keys {n:,} ids", t, "numpy.argsort(ids)", base, "<= 1")
-    t, base = side_by_side(match, merge, max(1, r - 1))
+    t, base = in_turn(match, merge, max(1, r - 1))
     row(f"match_keys {n:,} ids", t, "pandas.merge on id", base, "<= 0.33")
     if _kernels.available:
         _kernels.available = False
-        t, base = side_by_side(match, argsort, r)
+        t, base = in_turn(match, argsort, r)
         _kernels.available = True
         row("  match_keys, numpy path", t, "numpy.argsort(ids)", base, "")
-    t, base = side_by_side(migration, argsort, r)
+    t, base = in_turn(migration, argsort, r)
     row("migrate (match + moves + displacement)", t, "numpy.argsort(ids)", base, "<= 1")
-    t, base = side_by_side(migration, merge, max(1, r - 1))
+    t, base = in_turn(migration, merge, max(1, r - 1))
     row("migrate (match + moves + displacement)", t, "pandas.merge on id", base, "")
     if _kernels.available:
         _kernels.available = False
-        t, base = side_by_side(migration, argsort, r)
+        t, base = in_turn(migration, argsort, r)
         _kernels.available = True
         row("  migrate, numpy path", t, "numpy.argsort(ids)", base, "")
 
     def hist2d():
         return np.histogram2d(x, y, bins=512, range=[[0, 1], [0, 1]])
 
-    t, base = side_by_side(lambda: deposit([x, y], 1.0, layout, order="cic"), hist2d, r)
+    t, base = in_turn(lambda: deposit([x, y], 1.0, layout, order="cic"), hist2d, r)
     row("deposit CIC 512x512", t, "numpy.histogram2d 512x512", base, "")
-    t, base = side_by_side(lambda: deposit([x, y], 1.0, layout, order="ngp"), hist2d, r)
+    t, base = in_turn(lambda: deposit([x, y], 1.0, layout, order="ngp"), hist2d, r)
     row("deposit NGP 512x512", t, "numpy.histogram2d 512x512", base, "")
 
     keys = ("measurement", "seconds", "baseline", "baseline_seconds", "ratio", "target")

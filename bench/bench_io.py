@@ -23,16 +23,14 @@ from __future__ import annotations
 import argparse
 import os
 import shutil
-import statistics
 import sys
 import tempfile
-import time
 
 import h5py
 import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _rows import row, timed  # noqa: E402
+from _rows import in_turn, row, timed  # noqa: E402
 
 COLUMNS = ("x", "y", "z", "vx", "vy", "vz", "weight", "charge")
 #: turns of the drift measurement (ours and the baseline in turn) at the least
@@ -102,17 +100,6 @@ def first_frame_rows(path: str, repeat: int) -> list[dict]:
                 "h5py read x, y + datashader", t_base, "<= 1.3")]
 
 
-def alternating(fn, base, repeat: int) -> tuple[float, float]:
-    """Medians of fn and base run in turn, so that a change in machine load hits both alike."""
-    a, b = [], []
-    for _ in range(max(1, repeat)):
-        for f, out in ((fn, a), (base, b)):
-            t = time.perf_counter()
-            f()
-            out.append(time.perf_counter() - t)
-    return statistics.median(a), statistics.median(b)
-
-
 def drift_rows(folder: str, paths: list[str], repeat: int) -> list[dict]:
     from swarmaudit.core import audit
     from swarmaudit.core.context import AuditContext
@@ -137,13 +124,13 @@ def drift_rows(folder: str, paths: list[str], repeat: int) -> list[dict]:
     # each side takes a few hundredths of a second: more turns than --repeat, so that one
     # disturbed turn does not decide the median
     turns = max(repeat, DRIFT_TURNS)
-    t_ours, t_base = alternating(ours, baseline, turns)
+    t_ours, t_base = in_turn(ours, baseline, turns, warm=False)
     from swarmaudit.diagnostics import _kernels
     numpy_rows = []
     if _kernels.available:
         _kernels.available = False           # the same table from one numpy pass per total
         try:
-            t_numpy, t_base2 = alternating(ours, baseline, repeat)  # the slow path: --repeat turns
+            t_numpy, t_base2 = in_turn(ours, baseline, repeat, warm=False)  # the slow path: --repeat turns
         finally:
             _kernels.available = True
         numpy_rows = [row("  drift, numpy totals", t_numpy, f"h5py reads of weight, vx, vy ({len(paths)} files)",
@@ -163,7 +150,7 @@ def drift_rows(folder: str, paths: list[str], repeat: int) -> list[dict]:
     n = len(paths)
     return [row(f"drift over a run of {n} snapshots", t_ours, f"h5py reads of weight, vx, vy ({n} files)",
                 t_base, "<= 1.5")] + numpy_rows + [
-            row(f"drift over the same run, reopened (reduction cache)", t_cached,
+            row("drift over the same run, reopened (reduction cache)", t_cached,
                 f"h5py reads of weight, vx, vy ({n} files)", t_base, "",
                 note="open and metadata only")]
 

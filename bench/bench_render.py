@@ -12,33 +12,14 @@ repeats (ours and datashader's timed in turn) after one warm-up (numba compiles 
 from __future__ import annotations
 
 import argparse
-import time
+import os
+import sys
 
 import numpy as np
 import pandas as pd
 
-
-def best_of(fn, repeat):
-    fn()
-    times = []
-    for _ in range(repeat):
-        t = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t)
-    return min(times)
-
-
-def best_of_pair(fa, fb, repeat):
-    """Best times of two functions timed in turn, so a busy machine slows both alike."""
-    fa()
-    fb()
-    ta, tb = [], []
-    for _ in range(repeat):
-        for fn, out in ((fa, ta), (fb, tb)):
-            t = time.perf_counter()
-            fn()
-            out.append(time.perf_counter() - t)
-    return min(ta), min(tb)
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from _rows import in_turn, timed  # noqa: E402
 
 
 def main(argv=None) -> int:
@@ -68,13 +49,13 @@ def main(argv=None) -> int:
     rows = []
     for label, red, kw, dsagg in (("count", "count", {}, ds.count()),
                                   ("sum of weight", "sum", {"value": "weight"}, ds.sum("weight"))):
-        ours, theirs = best_of_pair(
+        ours, theirs = in_turn(
             lambda: aggregate_points(frame, "x", "y", width=a.width, height=a.height,
                                      x_range=xr, y_range=yr, reduction=red, **kw),
-            lambda: cv.points(df, "x", "y", agg=dsagg), a.repeat)
+            lambda: cv.points(df, "x", "y", agg=dsagg), a.repeat, pick=min)
         weights = w if red == "sum" else None
-        numpy_t = best_of(lambda: np.histogram2d(x, y, bins=[a.width, a.height], range=[xr, yr],
-                                                 weights=weights), max(1, a.repeat // 3))
+        numpy_t = timed(lambda: np.histogram2d(x, y, bins=[a.width, a.height], range=[xr, yr],
+                                               weights=weights), max(1, a.repeat // 3), pick=min)
         rows.append((label, ours, theirs, numpy_t))
         # same numbers, or the timing means nothing
         got = aggregate_points(frame, "x", "y", width=a.width, height=a.height, x_range=xr,

@@ -34,6 +34,14 @@ def _browser_or_fail(p):
         pytest.skip(f"headless Chromium not available: {exc}")
 
 
+def new_page(browser, errors: list, width=1600, height=1250):
+    """A page whose console errors and uncaught exceptions are collected in ``errors``."""
+    page = browser.new_page(viewport={"width": width, "height": height})
+    page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+    page.on("pageerror", lambda e: errors.append(str(e)))
+    return page
+
+
 def write_run(folder, snapshots=3, n=20000, seed=3):
     """A small two-beam run in the demo's HDF5 shape (groups per species, position/x ..., blocks)."""
     import h5py
@@ -154,9 +162,7 @@ def test_dashboard_in_chromium(server):
     with sync_api.sync_playwright() as p:
         browser = _browser_or_fail(p)
         try:
-            page = browser.new_page(viewport={"width": 1600, "height": 1250})
-            page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
-            page.on("pageerror", lambda e: errors.append(str(e)))
+            page = new_page(browser, errors)
             page.goto(server)
             text = page_text(page)
             assert "swarmaudit" in text and "#0" in text
@@ -193,9 +199,7 @@ def test_dashboard_in_chromium(server):
             wait_drawn(page)
 
             # the copied link reopens the same view in a fresh page
-            other = browser.new_page(viewport={"width": 1600, "height": 1250})
-            other.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
-            other.on("pageerror", lambda e: errors.append(str(e)))
+            other = new_page(browser, errors)
             other.goto(href)
             text2 = page_text(other)
             assert "#1" in text2 and "step 10" in text2

@@ -345,7 +345,7 @@ def test_rescan_of_a_run_without_folders_does_nothing():
 
 def test_the_slider_grows_in_chromium(tmp_path):
     sync_api = pytest.importorskip("playwright.sync_api")
-    from test_browser_e2e import _browser_or_fail, start_server, wait_drawn
+    from test_browser_e2e import _browser_or_fail, new_page, start_server, wait_drawn
     run = tmp_path / "live"
     run.mkdir()
     write_h5(run, 0, n=5000)
@@ -356,9 +356,7 @@ def test_the_slider_grows_in_chromium(tmp_path):
         with sync_api.sync_playwright() as p:
             browser = _browser_or_fail(p)
             try:
-                page = browser.new_page(viewport={"width": 1500, "height": 1100})
-                page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
-                page.on("pageerror", lambda e: errors.append(str(e)))
+                page = new_page(browser, errors, 1500, 1100)
                 page.goto(url)
                 assert "of 2" in wait_drawn(page)
                 write_h5(run, 20, n=5000)

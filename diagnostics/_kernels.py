@@ -422,6 +422,11 @@ def _totals(n, w, sw, q, sq, m, sm, c0, c1, c2, sc, nc, want_q, want_ke, kind, r
         bad[k] += nbad[k]
 
 
+# bound by _get before _totals_file compiles: libc's pread, and the compiled _totals it calls
+_pread = None
+_totals_rows = None
+
+
 def _fill(fd, buf, size, offset, r, L):
     # rows r..r+L of a column of `size`-byte values whose row 0 is at byte `offset` of descriptor
     # fd, into buf; a column not read from a file (size 0) is left alone. False when short.

@@ -135,8 +135,7 @@ class _Scan:
         """
         import h5py
         try:
-            # h5py fetched the creation properties when it made the Dataset: use those
-            dcpl = getattr(ds, "_dcpl", None) or ds.id.get_create_plist()
+            dcpl = ds.id.get_create_plist()
             layout = dcpl.get_layout()
             if layout == h5py.h5d.VIRTUAL or dcpl.get_external_count() > 0:
                 return None
@@ -229,7 +228,6 @@ class _Scan:
 
     def _leading(self, group) -> set:
         """Leading lengths of a leaf group's datasets, or None when it has sub-groups."""
-        import h5py
         sizes = set()
         for _, obj in self._members(group):
             if not obj.is_dataset:
@@ -240,7 +238,6 @@ class _Scan:
         return sizes
 
     def walk(self, group, depth: int = 0) -> None:
-        import h5py
         if depth > MAX_DEPTH:
             self.warnings.append(f"group '{group.name}' is nested too deep; left out")
             return
@@ -327,14 +324,8 @@ def _attr_items(obj) -> list[tuple[str, object]]:
 
 
 def _attr(obj, key):
-    import h5py
+    """One attribute through h5py (any type); numbers in bulk go through :func:`_attr_items`."""
     try:
-        a = h5py.h5a.open(obj.id, key.encode() if isinstance(key, str) else key)
-        dt = a.dtype
-        if dt.kind in "biuf" and dt.names is None and dt.subdtype is None and a.shape in ((), (1,)):
-            value = np.empty(a.shape, dt)            # a number: read it without h5py's high-level path
-            a.read(value)
-            return scalar_value(value)
         return scalar_value(obj.attrs[key])
     except H5_ERRORS:
         return None

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import sys
 
-from ..core.audit import check
+from ..audit.tables import check
 from ..core.errors import OptionError
 
 

@@ -116,7 +116,7 @@ def main(argv=None) -> int:
 
 def _dispatch(args) -> int:
     if args.command == "demo":
-        from ..demo_data.generate import demo_command
+        from .demo_cmd import demo_command
         return demo_command(args)
     ctx = context_from_options(args)
     if args.command == "inspect":

@@ -339,7 +339,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     from .png import save_png
     from .progress import Progress
     from .report import FigureItem, Section, TableItem, Verdict, render_report, write_report
-    from ..core import audit
+    from ..audit import tables as audit
 
     t0 = time.perf_counter()
     out = os.path.abspath(opts.out)

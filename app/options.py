@@ -85,7 +85,7 @@ def context_from_options(args, follow: bool = True) -> AuditContext:
                        use_cache=not getattr(args, "no_cache", False))
     ctx.notes.extend(run.skipped)
     check_role_columns(role_map, run)
-    from ..core.dask_backend import configure
+    from ..engine.dask_backend import configure
     configure(ctx.engine, ctx.scheduler)   # images follow the same engine as the tables
     return ctx
 

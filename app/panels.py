@@ -90,7 +90,7 @@ class SidePanels(param.Parameterized):
         """(block table, rank table, imbalance over ranks) of snapshot ``i``, species in view."""
         s = self.state
         key = ("census", _run_key(s), int(i), s.species)
-        from ..core import audit
+        from ..audit import tables as audit
         return _cached(key, lambda: audit.snapshot_census(s.served.ctx, int(i), s.species))
 
     def block_counts(self, i: int):
@@ -114,7 +114,7 @@ class SidePanels(param.Parameterized):
         try:
             blocks, ranks, imb = self.census(i)
             layout = s.served.layout(i)
-            from ..core import audit
+            from ..audit import tables as audit
             whatif = _cached(("whatif", _run_key(s), i), lambda: audit.rebalance_table(s.served.ctx, i))
         except (ImportError, AttributeError):
             return _note("The block census is not available in this build.")
@@ -198,7 +198,7 @@ class SidePanels(param.Parameterized):
         if s.species != ALL_SPECIES:
             # the species' own totals plus the run-wide scalars (field energy, total energy)
             drift = drift[drift["species"].astype(str).isin([s.species, ALL_SPECIES])]
-        from ..core import audit
+        from ..audit import tables as audit
         checked = audit.checked_pairs(drift)
         fig = figures.drift_curves(drift, s.rtol, title="drift against the first snapshot",
                                    checked=checked)
@@ -340,7 +340,7 @@ def _species_rows(df: pd.DataFrame, species: str) -> pd.DataFrame:
 
 def snapshot_migration(ctx, a: int, b: int, species: str, progress=None):
     """(moves, summary, displacements in level-0 cells, steps apart) between snapshots a and b."""
-    from ..core import audit
+    from ..audit import tables as audit
     if progress:
         progress(0, 3)
     moves, summary = audit.migration_tables(ctx, [(a, b)])
@@ -357,7 +357,7 @@ def snapshot_migration(ctx, a: int, b: int, species: str, progress=None):
 
 def run_drift(ctx, progress=None):
     """The drift table of the whole run, reading snapshot after snapshot with progress."""
-    from ..core import audit
+    from ..audit import tables as audit
     n = len(ctx.run)
     reduce = getattr(audit, "_reduce", None)
     if reduce is not None and progress is not None:

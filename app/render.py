@@ -19,8 +19,8 @@ import xarray as xr
 import datashader as ds
 import holoviews as hv
 
-from ..core import dask_backend
-from ..core._colstats import finite_stats
+from ..engine import dask_backend
+from ..diagnostics._colstats import finite_stats
 from ..core.errors import OptionError
 
 REDUCTIONS = ("count", "sum", "mean")

@@ -72,7 +72,7 @@ def confine(ctx: AuditContext, roots: list[str]) -> list[str]:
     if not keep:
         raise OptionError("every snapshot of the run points outside its folder; nothing to serve")
     new = Run([run.refs[i] for i in keep], run.opener, run.role_map, run.source,
-              list(run.skipped) + notes, spec=run.spec, follow=run.follow)
+              list(run.skipped) + notes, spec=run.spec, follow=run.follow, sidecar=run.sidecar)
     for j, i in enumerate(keep):
         if i in run._open:
             new._open[j] = run._open[i]

@@ -101,7 +101,7 @@ def first_frame_rows(path: str, repeat: int) -> list[dict]:
 
 
 def drift_rows(folder: str, paths: list[str], repeat: int) -> list[dict]:
-    from swarmaudit.core import audit
+    from swarmaudit.audit import tables as audit
     from swarmaudit.core.context import AuditContext
     from swarmaudit.readers.discover import open_run
 

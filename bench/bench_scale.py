@@ -39,7 +39,7 @@ GiB = 2**30
 
 def _steps(path: str, engine: str):
     from swarmaudit.app import render
-    from swarmaudit.core import audit
+    from swarmaudit.audit import tables as audit
     from swarmaudit.core.context import AuditContext
     from swarmaudit.readers.discover import open_run
     t0 = time.perf_counter()
@@ -59,7 +59,7 @@ def worker(path: str, engine: str, warm: str, repeat: int = 3) -> dict:
 
     import numpy as np
 
-    from swarmaudit.core import dask_backend
+    from swarmaudit.engine import dask_backend
     dask_backend.configure(engine)
     t = time.perf_counter()
     if engine == "dask":

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import os
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -46,18 +45,9 @@ class AuditContext:
 
     def _find_sidecar(self):
         if self._sidecar is False:
-            self._sidecar = None
-            from ..readers.layout_files import read_layout_csv
-            folders = []
-            for ref in self.run.refs[:1]:
-                p = ref.paths[0]
-                folders += [os.path.dirname(p), os.path.dirname(os.path.dirname(p))]
-            for folder in folders:
-                for name in ("layout.csv", "blocks.csv"):
-                    cand = os.path.join(folder or ".", name)
-                    if os.path.isfile(cand):
-                        self._sidecar = read_layout_csv(cand)
-                        return self._sidecar
+            # the reader layer finds a layout file beside the snapshots; the model only asks
+            finder = getattr(self.run, "sidecar", None)
+            self._sidecar = finder() if finder is not None else None
         return self._sidecar
 
     def layout(self, i: int) -> BlockLayout:

@@ -49,6 +49,8 @@ class Run:
     _open: dict = field(default_factory=dict, repr=False)
     spec: object = None        # what the user named (folder, glob, files): rescanned for a live run
     follow: bool = True        # a fresh snapshot that cannot be opened is left out, not an error
+    # finds a layout file stored beside the snapshots (set by the reader layer); None: there is none
+    sidecar: Callable[[], object] | None = field(default=None, repr=False, compare=False)
     # a live rescan replaces refs and _open together; a reader must not pair one with the other
     _lock: threading.RLock = field(default_factory=threading.RLock, repr=False, compare=False)
     _species: tuple = field(default=(None, None), repr=False, compare=False)   # (key, names)

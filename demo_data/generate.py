@@ -22,7 +22,6 @@ from __future__ import annotations
 import json
 import os
 import shutil
-import sys
 import time
 
 import numpy as np
@@ -203,37 +202,3 @@ def _jsonable(obj):
         return None
     return obj
 
-
-def demo_command(args) -> int:
-    """The ``swarmaudit demo`` command: write the runs, say where, serve them unless ``--no-serve``."""
-    paths = write_demo_runs(args.out, particles=getattr(args, "particles", None),
-                            snapshots=getattr(args, "snapshots", None),
-                            force=bool(getattr(args, "force", False)))
-    print("demo runs:")
-    for name, path in paths.items():
-        print(f"  {path}  ({DESCRIPTIONS[name]})")
-    if getattr(args, "no_serve", False):
-        return 0
-    app_package = __package__.rsplit(".", 1)[0] + ".app"
-    try:
-        from importlib import import_module
-        serve = import_module(app_package + ".serve")
-    except ModuleNotFoundError as exc:
-        if exc.name != app_package + ".serve":
-            raise
-        serve = None
-    if serve is None or not hasattr(serve, "serve_runs"):
-        print("the dashboard is not available in this installation; the runs are written, "
-              "open them with 'swarmaudit inspect' or 'swarmaudit export'")
-        return 0
-    return serve.serve_runs(list(paths.values()), args)
-
-
-def main(argv=None) -> int:
-    """``python -m swarmaudit.demo_data.generate --out DIR [--particles N] ...`` (the demo's options)."""
-    from ..app.cli import main as cli_main
-    return cli_main(["demo", *(sys.argv[1:] if argv is None else argv)])
-
-
-if __name__ == "__main__":
-    sys.exit(main())

@@ -231,10 +231,25 @@ def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True) -> R
         ref.order_key = _order_key(ref, snap, have_steps)
     opened.sort(key=lambda item: item[0].order_key)
     run = Run([r for r, _ in opened], lambda ref, rm: open_ref(ref, rm), role_map, source, skipped,
-              spec=spec, follow=follow)
+              spec=spec, follow=follow, sidecar=lambda: find_sidecar_layout(run))
     for i, (_, snap) in enumerate(opened):
         run._open[i] = snap
     return run
+
+
+def find_sidecar_layout(run: Run):
+    """A ``layout.csv`` or ``blocks.csv`` beside the first snapshot (or one folder up), else None."""
+    from .layout_files import read_layout_csv
+    folders = []
+    for ref in run.refs[:1]:
+        p = ref.paths[0]
+        folders += [os.path.dirname(p), os.path.dirname(os.path.dirname(p))]
+    for folder in folders:
+        for name in ("layout.csv", "blocks.csv"):
+            cand = os.path.join(folder or ".", name)
+            if os.path.isfile(cand):
+                return read_layout_csv(cand)
+    return None
 
 
 # ---------------------------------------------------------------------------------------

@@ -31,7 +31,7 @@ import numpy as np
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot
-from ..core.partitions import read_fully, sliceable
+from ..core.column import read_fully, sliceable
 from ..core.roles import _VECTOR_STEMS
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        make_snapshot, native, reject_non_numeric, scalar_value, split_scalars, take_field)

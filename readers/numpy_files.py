@@ -22,7 +22,7 @@ import numpy.lib.format as npformat
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot
-from ..core.partitions import read_record_field, sliceable
+from ..core.column import read_record_field, sliceable
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        has_role, make_snapshot, native, reject_non_numeric, scalar_value,
                        split_scalars, take_field)

@@ -4,7 +4,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from swarmaudit.core import audit
+from swarmaudit.audit import tables as audit
 from swarmaudit.core.errors import OptionError
 from swarmaudit.core.layout import regular_layout
 

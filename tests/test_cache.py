@@ -13,8 +13,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from swarmaudit.core import cache as cache_mod
-from swarmaudit.core.cache import ReductionCache, cache_for, cached_reduction, layout_fingerprint
+from swarmaudit.audit import cache as cache_mod
+from swarmaudit.audit.cache import ReductionCache, cache_for, cached_reduction, layout_fingerprint
 from swarmaudit.core.context import AuditContext
 from swarmaudit.core.layout import regular_layout
 
@@ -180,7 +180,7 @@ def test_two_processes_writing_the_same_entry_never_tear_it(tmp_path):
     root = tmp_path / "c"
     script = textwrap.dedent(f"""
         import numpy as np
-        from swarmaudit.core.cache import ReductionCache
+        from swarmaudit.audit.cache import ReductionCache
         c = ReductionCache({str(root)!r})
         m = c.key_material([("f", 1, 1)], "race")
         for i in range(40):

@@ -74,7 +74,7 @@ def test_energy_exchange_with_the_field_is_not_a_failure(tmp_path, capsys):
 
 
 def test_second_check_is_served_from_the_cache_with_the_same_answer(charge_loss_run, capsys):
-    from swarmaudit.core.cache import cache_for
+    from swarmaudit.audit.cache import cache_for
     assert main(["check", charge_loss_run, "--rtol", "0.005"]) == 1
     first = capsys.readouterr()
     hits = cache_for().hits

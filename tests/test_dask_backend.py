@@ -13,8 +13,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from swarmaudit.core import dask_backend as dk
-from swarmaudit.core import partitions
+from swarmaudit.engine import dask_backend as dk
+from swarmaudit.core import column
+from swarmaudit.engine import pieces as partitions
 from swarmaudit.core.context import AuditContext
 from swarmaudit.core.errors import OptionError
 from swarmaudit.core.frame import Frame, concat_frames
@@ -27,7 +28,7 @@ def _frame(arrays, species="e", attrs=None, rows=True):
     for c, a in arrays.items():
         load = (lambda a=a: a.copy())
         if rows:
-            partitions.sliceable(load, lambda s, e, a=a: a[s:e].copy(), a.dtype)
+            column.sliceable(load, lambda s, e, a=a: a[s:e].copy(), a.dtype)
         loaders[c] = load
     return Frame(species, n, loaders, attrs=attrs or {})
 
@@ -317,7 +318,7 @@ def test_drawing_follows_the_configured_engine(engine):
 
 @pytest.mark.parametrize("compiled", [True, False])
 def test_finite_stats_agree_with_numpy(compiled, monkeypatch):
-    from swarmaudit.core import _colstats
+    from swarmaudit.diagnostics import _colstats
     monkeypatch.setattr(_colstats, "MIN_VALUES", 0 if compiled else 10**12)
     rng = np.random.default_rng(4)
     a = rng.normal(size=5000)
@@ -410,7 +411,7 @@ def test_one_big_file_is_read_in_row_ranges(fmt, tmp_path, engine):
 
 def test_audit_tables_are_the_same_through_either_engine(tmp_path, monkeypatch):
     # the whole path a command takes: per-rank files, open_run, core.audit tables
-    from swarmaudit.core import audit
+    from swarmaudit.audit import tables as audit
     from swarmaudit.readers.discover import open_run
     monkeypatch.setenv("SWARMAUDIT_CACHE", "off")
     a, b = _pair(3000, seed=11)
@@ -433,7 +434,7 @@ def test_audit_tables_are_the_same_through_either_engine(tmp_path, monkeypatch):
 
 @pytest.mark.parametrize("compiled", [True, False])
 def test_counts_and_sums_equal_numpy_bincount(compiled, monkeypatch):
-    from swarmaudit.core import _bincount
+    from swarmaudit.diagnostics import _bincount
     monkeypatch.setattr(_bincount, "MIN_VALUES", 0 if compiled else 10**12)
     rng = np.random.default_rng(8)
     slots = rng.integers(0, 37, 20_000)

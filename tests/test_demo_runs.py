@@ -208,25 +208,14 @@ def test_refuses_foreign_folders_and_bad_sizes(tmp_path):
         generate.write_demo_runs(tmp_path / "afile", progress=None)
 
 
-def test_demo_command_without_serving_and_without_a_dashboard(demo, capsys, monkeypatch):
+def test_demo_command_without_serving(demo, capsys):
+    from swarmaudit.app.demo_cmd import demo_command
     out, paths, _ = demo
     args = types.SimpleNamespace(out=str(out), particles=PARTICLES, snapshots=SNAPSHOTS, no_serve=True,
                                  force=False, port=0, share=False, password=None, no_browser=True)
-    assert generate.demo_command(args) == 0
+    assert demo_command(args) == 0
     printed = capsys.readouterr().out
     assert all(p in printed for p in paths.values())
-
-    import importlib
-    real = importlib.import_module
-
-    def missing(name, *a, **k):
-        if name.endswith(".app.serve"):
-            raise ModuleNotFoundError(f"No module named '{name}'", name=name)
-        return real(name, *a, **k)
-    monkeypatch.setattr(importlib, "import_module", missing)
-    args.no_serve = False
-    assert generate.demo_command(args) == 0
-    assert "dashboard is not available" in capsys.readouterr().out
 
 
 def test_check_gate_passes_the_pic_run_and_fails_the_leaking_duct(demo, capsys):

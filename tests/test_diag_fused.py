@@ -269,7 +269,7 @@ def test_pieces_on_threads_give_the_same_bits(tmp_path, monkeypatch):
 
 
 def test_run_totals_computed_ahead_equal_one_at_a_time(tmp_path, monkeypatch):
-    from swarmaudit.core import audit
+    from swarmaudit.audit import tables as audit
     from swarmaudit.core.context import AuditContext
     from swarmaudit.readers.discover import open_run
     _h5_run(tmp_path, snapshots=5)
@@ -282,7 +282,7 @@ def test_run_totals_computed_ahead_equal_one_at_a_time(tmp_path, monkeypatch):
 
 
 def test_a_damaged_later_snapshot_does_not_fail_an_earlier_one(tmp_path, monkeypatch):
-    from swarmaudit.core import audit
+    from swarmaudit.audit import tables as audit
     from swarmaudit.core.context import AuditContext
     from swarmaudit.core.errors import InputError
     from swarmaudit.readers.discover import open_run
@@ -299,7 +299,7 @@ def test_a_damaged_later_snapshot_does_not_fail_an_earlier_one(tmp_path, monkeyp
 
 
 def test_compiled_file_reads_equal_the_piece_path(tmp_path, monkeypatch):
-    from swarmaudit.core.audit import _held_open
+    from swarmaudit.audit.tables import _held_open
     if not _kernels.can_read_files:
         pytest.skip("no positioned reads on this platform")
     rng = np.random.default_rng(5)
@@ -331,7 +331,7 @@ def test_compiled_file_reads_equal_the_piece_path(tmp_path, monkeypatch):
 
 
 def test_a_file_cut_short_under_the_compiled_reader_is_a_clear_error(tmp_path):
-    from swarmaudit.core.audit import _held_open
+    from swarmaudit.audit.tables import _held_open
     from swarmaudit.core.errors import InputError
     if not _kernels.can_read_files:
         pytest.skip("no positioned reads on this platform")
@@ -351,7 +351,7 @@ def test_a_file_cut_short_under_the_compiled_reader_is_a_clear_error(tmp_path):
 
 
 def test_only_streamed_snapshots_are_reduced_together(tmp_path, monkeypatch):
-    from swarmaudit.core import audit
+    from swarmaudit.audit import tables as audit
     from swarmaudit.core.context import AuditContext
     from swarmaudit.readers.discover import open_run
     rng = np.random.default_rng(2)

@@ -14,7 +14,7 @@ import h5py
 import numpy as np
 import pytest
 
-from swarmaudit.core.audit import _held_open
+from swarmaudit.audit.tables import _held_open
 from swarmaudit.core.errors import InputError
 from swarmaudit.readers import hdf5
 from swarmaudit.readers.hdf5 import HDF5Reader

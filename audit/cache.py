@@ -38,7 +38,7 @@ ENV = "SWARMAUDIT_CACHE"
 _OFF = {"off", "0", "no", "none", "false", "disabled"}
 
 #: packages whose source decides what a cached value is (a change there invalidates it)
-_CODE_DIRS = ("core", "readers", "diagnostics")
+_CODE_DIRS = ("core", "readers", "diagnostics", "engine", "audit")
 
 
 def default_root() -> Path | None:

@@ -32,13 +32,14 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .errors import OptionError
-from ._bincount import counts_and_sums
-from ._colstats import finite_stats
-from .frame import Frame
-from .layout import BlockLayout, assign_blocks
-from .partitions import (Piece, column_bytes, column_dtype, frame_pieces,
-                         frame_template, piece_frame, read_column, row_reader)
+from ..core.errors import OptionError
+from ..diagnostics._bincount import counts_and_sums
+from ..diagnostics._colstats import finite_stats
+from ..core.frame import Frame
+from ..core.layout import BlockLayout, assign_blocks
+from ..core.column import row_reader
+from .pieces import (Piece, column_bytes, column_dtype, frame_pieces,
+                     frame_template, piece_frame, read_column)
 
 ENGINES = ("auto", "memory", "dask")
 

@@ -22,11 +22,11 @@ from ..diagnostics.halo import halo_counts
 from ..diagnostics.migration import DuplicateKeyError, MigrationResult, migrate
 from ..diagnostics.rebalance import rebalance_whatif
 from .cache import cached_reduction, layout_fingerprint
-from .context import AuditContext
-from .dask_backend import census_if_partitioned, migration_if_partitioned, totals_if_partitioned
-from .errors import OptionError
-from .frame import transient_columns
-from .layout import assign_blocks
+from ..core.context import AuditContext
+from ..engine.dask_backend import census_if_partitioned, migration_if_partitioned, totals_if_partitioned
+from ..core.errors import OptionError
+from ..core.frame import transient_columns
+from ..core.layout import assign_blocks
 
 CENSUS_COLUMNS = ["snapshot", "step", "time", "species", "block", "level", "rank", "count", "weight"]
 RANK_COLUMNS = ["snapshot", "step", "time", "species", "rank", "count", "weight", "blocks"]

@@ -23,7 +23,8 @@ def _positive_float(text: str) -> float:
 def _physics_options(p):
     g = p.add_argument_group("physics")
     g.add_argument("--relativistic", action="store_true",
-                   help="kinetic energy as (γ-1)mc² from momentum per unit mass (ux, uy, uz)")
+                   help="relativistic totals: momentum Σ w γ m v from velocities, kinetic energy "
+                        "Σ w (γ-1) m c² from velocity, γv or momentum columns")
     g.add_argument("--c", type=_positive_float, metavar="C",
                    help="speed of light in the run's units (default: SI, 299792458 m/s)")
 

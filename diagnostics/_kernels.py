@@ -317,7 +317,7 @@ def _fin(t):
     return t if abs(t) < _INF else 0.0, 0 if abs(t) < _INF else 1
 
 
-def _terms(j, wb, qb, mb, ab, bb, cb, kind, ke, cc, c2c):
+def _terms(j, wb, qb, mb, ab, bb, cb, kind, rel, ke, cc, c2c):
     # The eight terms of row j (TOTAL_SLOTS order), formed with the numpy path's operations in
     # its order. A missing momentum component is read as 0 (its terms add exactly nothing).
     wj = np.float64(wb[j])
@@ -327,10 +327,14 @@ def _terms(j, wb, qb, mb, ab, bb, cb, kind, ke, cc, c2c):
     va = np.float64(ab[j])
     vb = np.float64(bb[j])
     vc = np.float64(cb[j])
+    q2 = va * va + vb * vb + vc * vc
+    if rel and kind == 0:
+        # p = γ m v from a velocity; γ = sqrt(1 + u²/c²) with u² = v²/(1 − v²/c²), as the
+        # energy below and the numpy path form it (v >= c: non-finite, counted)
+        f = f * np.sqrt(1.0 + (q2 / (1.0 - q2 / c2c)) / c2c)
     pa = f * va
     pb = f * vb
     pc = f * vc
-    q2 = va * va + vb * vb + vc * vc
     if ke == 1:
         e = wj * (0.5 * mj * q2)
     elif ke == 2:
@@ -378,7 +382,7 @@ def _totals(n, w, sw, q, sq, m, sm, c0, c1, c2, sc, nc, want_q, want_ke, kind, r
         cb = c2[start:stop] if nc > 2 else zk[:L]
         s0 = s1 = s2 = s3 = s4 = s5 = s6 = s7 = 0.0
         for j in range(L):
-            t0, t1, t2, t3, t4, t5, t6, t7 = _terms(j, wb, qb, mb, ab, bb, cb, kind, ke, cc, c2c)
+            t0, t1, t2, t3, t4, t5, t6, t7 = _terms(j, wb, qb, mb, ab, bb, cb, kind, rel, ke, cc, c2c)
             s0 += t0
             s1 += t1
             s2 += t2
@@ -401,7 +405,7 @@ def _totals(n, w, sw, q, sq, m, sm, c0, c1, c2, sc, nc, want_q, want_ke, kind, r
         if not finite:
             part[:] = 0.0
             for j in range(L):
-                terms = _terms(j, wb, qb, mb, ab, bb, cb, kind, ke, cc, c2c)
+                terms = _terms(j, wb, qb, mb, ab, bb, cb, kind, rel, ke, cc, c2c)
                 for k in range(8):
                     x, b = _fin(terms[k])
                     part[k] += x

@@ -1,7 +1,8 @@
 """Conserved totals of a snapshot and their drift against the first snapshot.
 
 Totals are weighted: a macro-particle of weight w stands for w physical
-particles, so charge is Σ w q, momentum Σ w m v (or Σ w m u, or Σ w p) and
+particles, so charge is Σ w q, momentum Σ w m v (relativistic Σ w γ m v; from γv
+columns Σ w m u, from momenta Σ w p) and
 kinetic energy Σ w ½ m v² (relativistic Σ w (γ−1) m c²). Non-finite particle
 values are left out of a total and counted, never propagated silently.
 """
@@ -58,6 +59,15 @@ def _squared_norm(components) -> np.ndarray:
         c = np.asarray(comp, dtype=np.float64)
         s = c * c if s is None else s + c * c
     return s
+
+
+def lorentz_factor_of_velocity(components, c=None) -> np.ndarray:
+    """γ = 1/sqrt(1 − v²/c²) of velocity components, formed as sqrt(1 + u²/c²) with
+    u² = v²/(1 − v²/c²) (the compiled totals form it the same way); v >= c gives NaN or inf."""
+    cc = _speed_of_light(c)
+    q2 = _squared_norm(components)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.sqrt(1.0 + (q2 / (1.0 - q2 / (cc * cc))) / (cc * cc))
 
 
 def kinetic_energy_terms(mass, weight, components, kind: str = "v", relativistic: bool = False,
@@ -448,6 +458,8 @@ def numpy_totals(frame, relativistic: bool = False, c=None) -> tuple[dict, dict]
     if axes:
         comps = [np.asarray(frame[nm], dtype=np.float64) for _, nm in axes]
         factor = w_arr if kind == "p" else w_arr * np.asarray(m, dtype=np.float64)
+        if relativistic and kind == "v":
+            factor = factor * lorentz_factor_of_velocity(comps, c)
         mag2 = None
         for (axis, _), comp in zip(axes, comps):
             p = factor * comp

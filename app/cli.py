@@ -6,8 +6,11 @@ import argparse
 import os
 import sys
 
+from ..core import interrupt
 from ..core.errors import SwarmAuditError
-from .options import add_run_options, context_from_options
+
+# .options and everything below it (numpy, pandas...) are imported inside main, after the
+# SIGINT handler is in place: a Ctrl-C while they load is then an interrupt, not a traceback
 
 
 def _positive_float(text: str) -> float:
@@ -30,6 +33,7 @@ def _physics_options(p):
 
 
 def build_parser() -> argparse.ArgumentParser:
+    from .options import add_run_options
     p = argparse.ArgumentParser(prog="swarmaudit",
                                 description="Audit the particle dumps of a block-structured particle run.")
     p.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
@@ -95,19 +99,34 @@ def _serve_options(p):
 
 
 def main(argv=None) -> int:
+    restore = interrupt.install()
+    try:
+        return _main(argv)
+    except KeyboardInterrupt:       # while the parser or its imports were being built
+        return _interrupted()
+    finally:
+        restore()
+
+
+def _main(argv) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        return _dispatch(args)
+        code = _dispatch(args)
+        interrupt.check()     # an interrupt Python dropped on the way still ends the command as one
+        return code
     except SwarmAuditError as exc:
+        if interrupt.requested():
+            return _interrupted()
         print(f"swarmaudit: error: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
-        print("swarmaudit: interrupted", file=sys.stderr)
-        return 130
+        return _interrupted()
     except BrokenPipeError:
         return 0
     except Exception as exc:  # a bug, not the user's fault: one line unless asked
+        if interrupt.requested():     # a piece cut short by the interrupt, not a bug
+            return _interrupted()
         if args.debug or os.environ.get("SWARMAUDIT_DEBUG"):
             raise
         print(f"swarmaudit: internal error: {type(exc).__name__}: {exc} "
@@ -115,10 +134,16 @@ def main(argv=None) -> int:
         return 3
 
 
+def _interrupted() -> int:
+    print("swarmaudit: interrupted", file=sys.stderr)
+    return 130
+
+
 def _dispatch(args) -> int:
     if args.command == "demo":
         from .demo_cmd import demo_command
         return demo_command(args)
+    from .options import context_from_options
     ctx = context_from_options(args)
     if args.command == "inspect":
         from .inspect_cmd import run_inspect

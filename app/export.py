@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..core import interrupt
 from ..core.errors import InputError, OptionError
 from ..core.frame import transient_columns
 from .png import use_headless_matplotlib
@@ -403,6 +404,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     size = dict(width=opts.width, height=opts.height, dpi=opts.dpi, fontscale=opts.fontscale)
 
     def add_figure(rec: FigureRecord, obj):
+        interrupt.check()       # Ctrl-C between figures: stop before drawing the next
         save_png(obj, rec.path, **size)
         rec.element = obj if keep_aggregates else None
         res.figures.append(rec)
@@ -563,6 +565,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
                              Section, TableItem)
         facts = _facts(ctx, chosen, species)
         from .. import __version__
+        interrupt.check()
         text = render_report(f"swarmaudit report — {name}", facts, sections, verdict, notes,
                              version=__version__)
         write_report(report_path, text)

@@ -17,6 +17,7 @@ from concurrent.futures import ThreadPoolExecutor
 import numpy as np
 import pandas as pd
 
+from ..core import interrupt
 from ..core.errors import InputError
 from . import _kernels
 
@@ -215,15 +216,20 @@ def fused_totals_many(frames, relativistic: bool = False, c=None) -> list[tuple[
                 run = []
             run.append(ik)
         tasks.append(run)
-        done = _piece_pool().map(lambda t: plans[t[0][0]].pieces([k for _, k in t]), tasks)
+        done = _piece_pool().map(lambda t: _checked_pieces(plans[t[0][0]], [k for _, k in t]), tasks)
         for task, got in zip(tasks, done):
             for (i, k), sums in zip(task, got):
                 parts[i][k] = sums
     else:
         serial = pooled + serial
     for i, k in serial:
-        parts[i][k] = plans[i].pieces([k])[0]
+        parts[i][k] = _checked_pieces(plans[i], [k])[0]
     return [p.finish(got) for p, got in zip(plans, parts)]
+
+
+def _checked_pieces(plan, ks):
+    interrupt.check()       # Ctrl-C: the pool drains in one task's time
+    return plan.pieces(ks)
 
 
 #: tasks per thread when several frames' pieces are shared out: enough to even out the load

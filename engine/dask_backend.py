@@ -32,6 +32,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from ..core import interrupt
 from ..core.errors import OptionError
 from ..diagnostics._bincount import counts_and_sums
 from ..diagnostics._colstats import finite_stats
@@ -117,8 +118,8 @@ class DaskEngine:
             futures = self.client.map(fn, items, *[[a] * len(items) for a in args], pure=False)
             return self.client.gather(futures)
         if self.workers <= 1 or len(items) == 1:
-            return [fn(it, *args) for it in items]
-        return list(self._threads().map(lambda it: fn(it, *args), items))
+            return [_checked(fn, it, *args) for it in items]
+        return list(self._threads().map(lambda it: _checked(fn, it, *args), items))
 
     def imap_unordered(self, fn, items, *args, window: int | None = None):
         """Results of ``fn(item, *args)`` as they finish, at most ``window`` in flight.
@@ -135,6 +136,7 @@ class DaskEngine:
             first = [self.client.submit(fn, x, *args, pure=False) for x in _take(it, window)]
             ac = as_completed(first)
             for fut in ac:
+                interrupt.check()
                 res = fut.result()
                 fut.release()
                 for x in _take(it, 1):
@@ -143,17 +145,17 @@ class DaskEngine:
             return
         if self.workers <= 1:
             for x in items:
-                yield fn(x, *args)
+                yield _checked(fn, x, *args)
             return
         from concurrent.futures import FIRST_COMPLETED, wait
         pool = self._threads()
         it = iter(items)
-        pending = {pool.submit(fn, x, *args) for x in _take(it, window)}
+        pending = {pool.submit(_checked, fn, x, *args) for x in _take(it, window)}
         while pending:
             done, pending = wait(pending, return_when=FIRST_COMPLETED)
             for fut in done:
                 for x in _take(it, 1):
-                    pending.add(pool.submit(fn, x, *args))
+                    pending.add(pool.submit(_checked, fn, x, *args))
                 yield fut.result()
 
     def _threads(self) -> ThreadPoolExecutor:
@@ -165,6 +167,12 @@ class DaskEngine:
         if self._pool is not None:
             self._pool.shutdown(wait=False)
             self._pool = None
+
+
+def _checked(fn, item, *args):
+    """One piece, unless Ctrl-C came: a pool then drains in one piece's time."""
+    interrupt.check()
+    return fn(item, *args)
 
 
 def _take(it, n):

@@ -187,7 +187,7 @@ def test_every_command_leaves_its_inputs_alone(inputs, tmp_path):
     assert page is not None and "swarmaudit" in page, "the server did not answer"
     server.send_signal(signal.SIGINT)
     code, out, err = finish(server, timeout=60)
-    assert code == 0 and "Traceback" not in err, err
+    assert code == 130 and "Traceback" not in err, err
     assert_untouched(before, root, what="serve")
 
     for what, root, before, proc in jobs:
@@ -246,25 +246,45 @@ def test_errors_leave_inputs_alone(inputs, tmp_path):
     assert_untouched(broken_before, broken, what="broken file")
 
 
-def test_interrupted_export_leaves_inputs_alone(inputs, tmp_path):
-    root = inputs()
-    before = fingerprint(root)
-    out = tmp_path / "out"
-    proc = start(["export", root / "ranks", "--out", out, "--snapshots", "all"], tmp_path)
-    deadline = time.time() + 180
-    # midway: once the first figure is in place, and while the export is still running
-    while time.time() < deadline and proc.poll() is None:
-        figs = out / "figures"
-        if figs.is_dir() and any(f.suffix == ".png" for f in figs.iterdir()):
-            break
-        time.sleep(0.05)
-    assert proc.poll() is None, "the export ended before it could be interrupted"
-    proc.send_signal(signal.SIGINT)
-    code, _, err = finish(proc, timeout=60)
-    assert code != 0 and "Traceback" not in err, err
-    assert "interrupted" in err
-    assert not (out / "report.html").exists()          # it did stop midway
-    assert_untouched(before, root, what="interrupted export")
+#: moments of an export to press Ctrl-C at: (name, has it come?) from the output folder
+INTERRUPT_MOMENTS = {
+    # tables being reduced on the thread pools, no figure yet
+    "early": lambda out: (out / "figures").is_dir() and not any((out / "figures").glob("*.png")),
+    # the density views being drawn
+    "mid": lambda out: any((out / "figures").glob("*.png")),
+    # past the drift figure: the last figures before the report
+    "late": lambda out: (out / "figures" / "drift.png").exists(),
+}
+
+
+def test_interrupted_export_stops_at_once_and_leaves_inputs_alone(inputs, tmp_path):
+    # Ctrl-C at several moments of one export each (run side by side): exit 130 every time, one
+    # line and no traceback, nothing more written, the inputs as they were
+    jobs = {}
+    for moment in INTERRUPT_MOMENTS:
+        root = inputs()
+        out = tmp_path / f"out_{moment}"
+        jobs[moment] = dict(root=root, out=out, before=fingerprint(root), sent=False,
+                            proc=start(["export", root / "ranks", "--out", out, "--snapshots", "all"],
+                                       tmp_path))
+    deadline = time.time() + 400
+    while time.time() < deadline and not all(j["sent"] for j in jobs.values()):
+        for moment, j in jobs.items():
+            if j["sent"]:
+                continue
+            assert j["proc"].poll() is None, f"{moment}: the export ended before it could be interrupted"
+            if INTERRUPT_MOMENTS[moment](j["out"]):
+                j["proc"].send_signal(signal.SIGINT)
+                j["sent"] = True
+        time.sleep(0.02)
+    assert all(j["sent"] for j in jobs.values()), "a moment to interrupt at never came"
+    for moment, j in jobs.items():
+        code, _, err = finish(j["proc"], timeout=60)
+        assert code == 130, f"{moment}: exit {code}: {err}"
+        assert "Traceback" not in err and "Exception ignored" not in err, f"{moment}: {err}"
+        assert err.strip().splitlines()[-1] == "swarmaudit: interrupted", f"{moment}: {err}"
+        assert not (j["out"] / "report.html").exists(), moment      # it did stop midway
+        assert_untouched(j["before"], j["root"], what=f"export interrupted {moment}")
 
 
 def test_export_refuses_to_write_over_an_input(inputs, tmp_path):

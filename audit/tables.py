@@ -25,7 +25,7 @@ from .cache import cached_reduction, layout_fingerprint
 from ..core.context import AuditContext
 from ..engine.dask_backend import census_if_partitioned, migration_if_partitioned, totals_if_partitioned
 from ..core.errors import OptionError
-from ..core.frame import transient_columns
+from ..core.frame import is_clock_scalar, transient_columns
 from ..core.layout import assign_blocks
 
 CENSUS_COLUMNS = ["snapshot", "step", "time", "species", "block", "level", "rank", "count", "weight"]
@@ -518,10 +518,16 @@ def traffic_table(ctx: AuditContext, pairs=None) -> pd.DataFrame:
 
 
 # drift -------------------------------------------------------------------------------
+#: stored scalars that are a species' constants (a single-species file keeps them at its root)
+_SPECIES_CONSTANTS = ("mass", "charge")
+
+
 def _meta_scalars(snap) -> dict[str, float]:
+    """The stored scalars that are drift rows: not the clock (time, step; see
+    :func:`core.frame.is_clock_scalar`), not a species' mass or charge."""
     out = {}
     for k, v in (snap.meta or {}).items():
-        if isinstance(v, (bool, np.bool_)):
+        if isinstance(v, (bool, np.bool_)) or is_clock_scalar(k) or str(k).strip().lower() in _SPECIES_CONSTANTS:
             continue
         try:
             f = float(v)

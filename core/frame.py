@@ -232,12 +232,28 @@ def _join_column(parts: list[Frame], name: str) -> np.ndarray:
     return out
 
 
+#: stored scalars that say when a snapshot was written rather than what it holds
+_CLOCK_NAMES = frozenset({"time", "step", "dt", "timestep", "time_step", "istep", "nstep",
+                          "iteration", "cycle"})
+_CLOCK_SUFFIXES = ("_time", "_step", "_iteration", "_cycle")
+
+
+def is_clock_scalar(name: str) -> bool:
+    """Whether a stored scalar is the snapshot's time, time step or step (``t``, ``time``,
+    ``sim_time``, ``dt``, ``step``, ``iteration``...): metadata of the snapshot, never a total
+    that should be conserved. ``t`` counts in lower case only (``T`` is often a temperature)."""
+    name = str(name).strip()
+    low = name.lower()
+    return name == "t" or low in _CLOCK_NAMES or low.endswith(_CLOCK_SUFFIXES)
+
+
 @dataclass
 class Snapshot:
     """All particles at one step: a frame per species plus per-snapshot scalars.
 
-    ``meta`` holds scalars such as a field energy that the code wrote beside
-    the particles; ``layout`` is the block layout stored in the file, if any.
+    ``meta`` holds the other scalars the code wrote beside the particles (a field
+    energy, a clock value other than ``step`` and ``time``, see :func:`is_clock_scalar`);
+    ``layout`` is the block layout stored in the file, if any.
     """
 
     path: str

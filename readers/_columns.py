@@ -165,8 +165,11 @@ def scalar_value(value):
 
 
 def split_scalars(items, path) -> tuple[int | None, float | None, dict, str]:
-    """(step, time, meta, time_unit) from per-snapshot ``name -> value`` pairs."""
-    step = time = None
+    """(step, time, meta, time_unit) from per-snapshot ``name -> value`` pairs.
+
+    The time is ``time``, else ``t``; the step is ``step``. Other numbers go to ``meta``.
+    """
+    step = time = t_short = None
     meta: dict[str, float] = {}
     time_unit = ""
     for key, raw in items:
@@ -179,10 +182,16 @@ def split_scalars(items, path) -> tuple[int | None, float | None, dict, str]:
             if isinstance(v, float) and not (np.isfinite(v) and v == int(v)):
                 raise InputError(path, f"the step '{raw}' is not a whole number")
             step = int(v)
-        elif low == "time" and isinstance(v, (int, float)):
+        elif low == "time" and isinstance(v, (int, float)) and not isinstance(v, bool):
             time = float(v)
+        elif k == "t" and isinstance(v, (int, float)) and not isinstance(v, bool):
+            t_short = float(v)
         elif low in ("time_unit", "time_units") and isinstance(v, str):
             time_unit = v
         elif isinstance(v, (int, float)):
             meta[k] = float(v)
+    if time is None:
+        time = t_short          # ``t`` is the time when no ``time`` is stored
+    elif t_short is not None:
+        meta["t"] = t_short     # kept for inspect; never a total (core.frame.is_clock_scalar)
     return step, time, meta, time_unit

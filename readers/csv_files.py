@@ -366,6 +366,8 @@ class CSVReader:
         lay = _Layout(path, names, delimiter, offset, header_line, length, comments)
         step, time, meta, time_unit = split_scalars(scalars, path)
         table = Table(path)
+        # the file holds one species: its ``# mass = …`` and ``# charge = …`` are that species'
+        table.attrs.update({k: meta[k] for k in ("mass", "charge") if k in meta})
         for n in names:
             table.add(n, length, _loader(lay, n), n)
         return make_snapshot(path, {DEFAULT_SPECIES: table}, columns=columns, step=step, time=time,

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import re
 import sys
 
 from ..core import interrupt
@@ -11,6 +12,22 @@ from ..core.errors import SwarmAuditError
 
 # .options and everything below it (numpy, pandas...) are imported inside main, after the
 # SIGINT handler is in place: a Ctrl-C while they load is then an interrupt, not a traceback
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse, taking ``-15,15,-15,15`` and ``-1e-3`` as values, not as options.
+
+    argparse treats a word starting with '-' as an option unless it is a plain
+    negative number (``-15``), so ``--domain -15,15,-15,15`` (a domain centred on
+    zero, the common case) failed with "expected one argument". No option of
+    ours starts with '-' and a digit, so a word that does is always a value.
+    The pattern is argparse's own (undocumented) attribute; sub-commands are
+    built from this class too.
+    """
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self._negative_number_matcher = re.compile(r"^-\.?\d")
 
 
 def _positive_float(text: str) -> float:
@@ -34,8 +51,8 @@ def _physics_options(p):
 
 def build_parser() -> argparse.ArgumentParser:
     from .options import add_run_options
-    p = argparse.ArgumentParser(prog="swarmaudit",
-                                description="Audit the particle dumps of a block-structured particle run.")
+    p = _Parser(prog="swarmaudit",
+                description="Audit the particle dumps of a block-structured particle run.")
     p.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 

@@ -165,12 +165,12 @@ class ExportResult:
 
 # guards ----------------------------------------------------------------------------------
 def input_files(ctx, args=None) -> set[str]:
-    """Real paths of every file the export reads (snapshots, layout, column map)."""
+    """Real paths of every file the export reads (snapshots, layout, roles file)."""
     files: set[str] = set()
     for ref in ctx.run.refs:
         for p in ref.paths:
             files.add(os.path.realpath(p))
-    for name in ("layout", "map"):
+    for name in ("layout", "roles_file"):
         v = getattr(args, name, None) if args is not None else None
         if v:
             files.add(os.path.realpath(v))

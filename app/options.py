@@ -32,7 +32,9 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--layout", metavar="FILE", help="blocks from a CSV or from the 'blocks' group of an HDF5 file")
     g.add_argument("--periodic", metavar="AXES", default="", help="periodic axes, e.g. x,y")
     c = p.add_argument_group("columns")
-    c.add_argument("--map", metavar="FILE.toml", help="column roles from a TOML file ([roles] x = \"pos0\")")
+    c.add_argument("--roles", "--map", dest="roles_file", metavar="FILE.toml",
+                   help="a roles file: which column plays which role, in TOML ([roles] x = \"pos0\"); "
+                        "--map is its old name, still accepted in this release")
     c.add_argument("--role", action="append", default=[], metavar="ROLE=NAME",
                    help="say which column plays a role, e.g. --role weight=macro_w (repeatable)")
     c.add_argument("--id", metavar="COLS", help="columns that together identify a particle, e.g. id,cpu")
@@ -76,7 +78,7 @@ def layout_from_options(args):
 
 def context_from_options(args, follow: bool = True) -> AuditContext:
     from ..readers.discover import open_run
-    role_map = RoleMap.from_options(args.role, args.map, args.id)
+    role_map = RoleMap.from_options(args.role, args.roles_file, args.id)
     fixed = layout_from_options(args)
     run = open_run(args.run, role_map, follow=follow)
     species = [s.strip() for s in args.species.split(",")] if getattr(args, "species", None) else None

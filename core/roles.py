@@ -1,7 +1,7 @@
 """Column roles: which column of a frame holds positions, momenta, ids, weights...
 
-A role is found from common names; a user overrides it with a TOML map
-(``[roles] x = "pos0"``, ``id = ["id", "cpu"]``) or ``--role ROLE=NAME``.
+A role is found from common names; a user overrides it with a roles file, TOML
+(``[roles] x = "pos0"``, ``id = ["id", "cpu"]``, given with ``--roles``) or ``--role ROLE=NAME``.
 Columns keep their own names; roles only point at them.
 """
 
@@ -89,7 +89,7 @@ class RoleMap:
         for role in self.overrides:
             if role not in ROLES:
                 raise OptionError(
-                    f"unknown role '{role}' in the column map; roles are: {', '.join(ROLES)}")
+                    f"unknown role '{role}' in the roles; roles are: {', '.join(ROLES)}")
 
     @classmethod
     def from_options(cls, assignments=(), map_file=None, key=None) -> "RoleMap":
@@ -146,9 +146,9 @@ def _read_map_file(path):
         with open(path, "rb") as fh:
             data = tomllib.load(fh)
     except FileNotFoundError:
-        raise InputError(path, "the column map file does not exist") from None
+        raise InputError(path, "the roles file does not exist") from None
     except (OSError, tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise InputError(path, f"cannot read the column map as TOML: {exc}") from None
+        raise InputError(path, f"cannot read the roles file as TOML: {exc}") from None
     table = data.get("roles", data)
     overrides: dict[str, str] = {}
     key = None

@@ -57,7 +57,7 @@ def write_rank_run(folder, steps=(0, 10, 20), ranks=2, n=1500, seed=4):
 
 
 def write_csv_run(folder, steps=(0, 5, 10), n=800, seed=5):
-    """CSV snapshots with their own column names (a --map says what they are) and a layout.csv."""
+    """CSV snapshots with their own column names (a roles file says what they are) and a layout.csv."""
     rng = np.random.default_rng(seed)
     os.makedirs(folder)
     for step in steps:
@@ -153,8 +153,8 @@ def test_every_command_leaves_its_inputs_alone(inputs, tmp_path):
         "export": ["export", "{run}", "--out", "{out}", "--snapshots", "0,-1", "--quiet"],
     }
     csv_cmds = {
-        "csv inspect": ["inspect", "{run}", "--map", "{map}"],
-        "csv check": ["check", "{run}", "--map", "{map}", "--rtol", "1e-6"],
+        "csv inspect": ["inspect", "{run}", "--roles", "{map}"],
+        "csv check": ["check", "{run}", "--roles", "{map}", "--rtol", "1e-6"],
         # the run folder itself as --out: refused (its tables would be read as snapshots)
         "csv export into the run folder": ["export", "{run}", "--map", "{map}", "--out", "{run}",
                                            "--snapshots", "0", "--quiet"],
@@ -209,7 +209,7 @@ def test_errors_leave_inputs_alone(inputs, tmp_path):
         "half a domain": (["inspect", "{run}", "--domain", "0,2,0,1"], "--cells"),
         "password without share": (["serve", "{run}", "--password", "abcdefgh12", "--no-browser"],
                                    "--share"),
-        "a map that is not there": (["inspect", "{run}", "--map", "{root}/nope.toml"], "nope.toml"),
+        "a roles file that is not there": (["inspect", "{run}", "--roles", "{root}/nope.toml"], "nope.toml"),
         "a periodic axis that does not exist": (["check", "{run}", "--periodic", "w", "--rtol", "1"],
                                                 "--periodic"),
         "layout and domain at once": (["inspect", "{run}", "--layout", "{run}/../duct/layout.csv",

@@ -21,8 +21,8 @@ HEALTH_COUNTS = {
 }
 
 
-def describe(ctx: AuditContext, health_snapshots=None) -> dict:
-    """Everything ``inspect`` prints, as plain data."""
+def describe_snapshots(ctx: AuditContext) -> list[dict]:
+    """Position, label, files, step, time, particles per species, scalars and warnings of each snapshot."""
     run = ctx.run
     names = ctx.species_names()
     snaps = []
@@ -38,6 +38,14 @@ def describe(ctx: AuditContext, health_snapshots=None) -> dict:
             "meta": {k: v for k, v in s.meta.items()},
             "warnings": list(s.warnings),
         })
+    return snaps
+
+
+def describe(ctx: AuditContext, health_snapshots=None) -> dict:
+    """Everything ``inspect`` prints, as plain data."""
+    run = ctx.run
+    names = ctx.species_names()
+    snaps = describe_snapshots(ctx)
     first = run[0]
     species = []
     for name in names:

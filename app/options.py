@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import os
 
 from ..core.context import AuditContext
 from ..core.errors import OptionError
@@ -10,7 +11,9 @@ from ..core.layout import regular_layout
 from ..core.roles import AXES, RoleMap
 
 
-def _numbers(text: str, kind, what: str):
+def _numbers(value, kind, what: str):
+    """Comma-separated numbers (``"0,1,0,1"``, as typed) or a sequence of numbers (from Python)."""
+    text = value if isinstance(value, str) else ",".join(str(v) for v in _sequence(value, what))
     try:
         vals = [kind(v) for v in text.replace(" ", "").split(",") if v != ""]
     except ValueError:
@@ -18,6 +21,20 @@ def _numbers(text: str, kind, what: str):
     if not vals:
         raise OptionError(f"{what} takes comma-separated numbers, got '{text}'")
     return vals
+
+
+def _sequence(value, what: str) -> list:
+    if isinstance(value, (str, bytes)) or not hasattr(value, "__iter__"):
+        raise OptionError(f"{what} takes comma-separated values or a list, got '{value}'")
+    return list(value)
+
+
+def _names(value, what: str) -> list[str]:
+    """Comma-separated names (``"x,y"``) or a sequence of names; empty entries dropped."""
+    if value is None:
+        return []
+    items = value.split(",") if isinstance(value, str) else [str(v) for v in _sequence(value, what)]
+    return [v.strip() for v in items if v.strip()]
 
 
 def add_run_options(p: argparse.ArgumentParser) -> None:
@@ -49,7 +66,7 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
 
 
 def layout_from_options(args):
-    periodic = tuple(a.strip().lower() for a in (args.periodic or "").split(",") if a.strip())
+    periodic = tuple(a.lower() for a in _names(args.periodic, "--periodic"))
     bad = [a for a in periodic if a not in AXES]
     if bad:
         raise OptionError(f"--periodic takes axis names x, y, z; got '{', '.join(bad)}'")
@@ -76,15 +93,98 @@ def layout_from_options(args):
     return None
 
 
-def context_from_options(args, follow: bool = True) -> AuditContext:
+#: every option a run is opened with: its argparse name and default. The command line and
+#: ``swarmaudit.open_run(path, **options)`` both reach :func:`context_from_options` with these.
+RUN_OPTIONS = {
+    "domain": None, "cells": None, "blocks": None, "ranks": 1, "layout": None, "periodic": "",
+    "roles_file": None, "role": (), "id": None, "species": None,
+    "engine": "auto", "scheduler": None, "no_cache": False, "relativistic": False, "c": None,
+}
+
+
+def _option_values(args, keywords: dict):
+    """One namespace of run options from an argparse namespace and/or keywords.
+
+    Keywords use the option names without dashes (``domain=``, ``no_cache=``);
+    values may be the text typed on the command line or Python values
+    (sequences for lists, a dict for ``roles``). An unknown keyword is an
+    OptionError naming the options there are.
+    """
+    from types import SimpleNamespace
+    values = dict(RUN_OPTIONS)
+    if args is not None:
+        given = vars(args)
+        values.update({k: given[k] for k in RUN_OPTIONS if k in given})
+        values["run"] = given.get("run")
+    keywords = dict(keywords)
+    # roles=FILE.toml is --roles FILE.toml (map= its old name, as --map); roles={ROLE: NAME}
+    # says in Python what the file's [roles] table says, as --role ROLE=NAME does
+    roles = keywords.pop("roles", None)
+    if "map" in keywords:
+        keywords.setdefault("roles_file", keywords.pop("map"))
+    if isinstance(roles, (str, os.PathLike)):
+        keywords.setdefault("roles_file", os.fspath(roles))
+        roles = None
+    unknown = [k for k in keywords if k not in RUN_OPTIONS and k != "run"]
+    if unknown:
+        raise OptionError(f"no run option called {', '.join(repr(k) for k in unknown)}; "
+                          f"options are: roles, {', '.join(k for k in RUN_OPTIONS)}")
+    values.update(keywords)
+    run = values.get("run")
+    if run is None or (not isinstance(run, (str, bytes)) and not hasattr(run, "__iter__")
+                       and not hasattr(run, "__fspath__")):
+        raise OptionError("a run is a folder, a glob or a list of snapshot files; none was given")
+    if isinstance(run, (str, bytes)) or hasattr(run, "__fspath__"):
+        run = [run]
+    values["run"] = [os.fspath(r) for r in run]
+    if not values["run"]:
+        raise OptionError("a run is a folder, a glob or a list of snapshot files; none was given")
+    ranks = values["ranks"]
+    if isinstance(ranks, bool) or not isinstance(ranks, (int, str)) or not str(ranks).strip().isdigit() \
+            or int(ranks) < 1:
+        raise OptionError(f"--ranks takes a whole number of at least 1, got '{ranks}'")
+    values["ranks"] = int(ranks)
+    c = values["c"]
+    if c is not None:
+        try:
+            c = float(c)
+        except (TypeError, ValueError):
+            c = float("nan")
+        if not (0 < c < float("inf")):
+            raise OptionError(f"--c takes a positive number, got '{values['c']}'")
+        values["c"] = c
+    if values["engine"] not in ("auto", "memory", "dask"):
+        raise OptionError(f"--engine takes one of auto, memory, dask, got '{values['engine']}'")
+    # --role ROLE=NAME (repeatable), roles={ROLE: NAME} and roles=["ROLE=NAME"] say the same
+    role = [values["role"]] if isinstance(values["role"], str) else list(values["role"] or ())
+    if isinstance(roles, dict):
+        role += [f"{r}={n if isinstance(n, str) else ','.join(map(str, n))}" for r, n in roles.items()]
+    elif roles is not None:
+        role += list(roles)
+    values["role"] = role
+    if values["id"] is not None and not isinstance(values["id"], str):
+        values["id"] = ",".join(_names(values["id"], "--id"))
+    if values["species"] is not None:
+        values["species"] = ",".join(_names(values["species"], "--species")) or None
+    return SimpleNamespace(**values)
+
+
+def context_from_options(args=None, follow: bool = True, **keywords) -> AuditContext:
+    """The AuditContext of a command's run options: the one place options become a context.
+
+    ``args`` is an argparse namespace (the CLI); ``keywords`` are the same
+    options by name (``swarmaudit.open_run``). Bad values raise the
+    OptionError/InputError the command line prints.
+    """
     from ..readers.discover import open_run
-    role_map = RoleMap.from_options(args.role, args.roles_file, args.id)
-    fixed = layout_from_options(args)
-    run = open_run(args.run, role_map, follow=follow)
-    species = [s.strip() for s in args.species.split(",")] if getattr(args, "species", None) else None
-    ctx = AuditContext(run, fixed, species=species, engine=args.engine, scheduler=args.scheduler,
-                       relativistic=getattr(args, "relativistic", False), c=getattr(args, "c", None),
-                       use_cache=not getattr(args, "no_cache", False))
+    opts = _option_values(args, keywords)
+    role_map = RoleMap.from_options(opts.role, opts.roles_file, opts.id)
+    fixed = layout_from_options(opts)
+    run = open_run(opts.run, role_map, follow=follow)
+    species = [s.strip() for s in opts.species.split(",")] if opts.species else None
+    ctx = AuditContext(run, fixed, species=species, engine=opts.engine, scheduler=opts.scheduler,
+                       relativistic=bool(opts.relativistic), c=opts.c,
+                       use_cache=not opts.no_cache)
     ctx.notes.extend(run.skipped)
     check_role_columns(role_map, run)
     from ..engine.dask_backend import configure

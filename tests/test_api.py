@@ -152,6 +152,10 @@ def test_roles_keyword_is_the_role_option(tmp_path):
     run = sa.open_run(tmp_path, roles={"weight": "macro_w"}, no_cache=True)
     census = run.census()
     assert census.loc[census["species"] == "grains", "weight"].sum() == pytest.approx(3.0 * n * 2)
+    toml = tmp_path.parent / f"{tmp_path.name}_roles.toml"
+    toml.write_text('[roles]\nweight = "macro_w"\n')
+    from_file = sa.open_run(tmp_path, roles=toml, no_cache=True)      # as --roles FILE.toml
+    pd.testing.assert_frame_equal(from_file.census(), census)
     with pytest.raises(sa.OptionError, match="no species of .* has a column 'w2'"):
         sa.open_run(tmp_path, roles={"weight": "w2"})
 

@@ -99,14 +99,12 @@ _transient = transient_columns
 def _held_open(*frames):
     """Keep the frames' files open while one reduction reads several of their columns.
 
-    A reader offers this as ``loader.hold()``; other loaders open per read as before.
+    A reader offers this as ``Column.hold()``; other columns open per read as before.
     """
     with ExitStack() as stack:
         for f in frames:
             for name in f.columns:
-                hold = getattr(f.loader(name), "hold", None)
-                if hold is not None:
-                    stack.enter_context(hold())
+                stack.enter_context(f.loader(name).hold())
         yield
 
 

@@ -1,35 +1,102 @@
 """The column contract between readers and everything above them.
 
-A reader hands each column over as a loader: a zero-argument callable that
-reads the whole column. A loader may also read a row range alone
-(:func:`sliceable`), which is what lets an engine stream a column in pieces.
+A reader hands each column over as a :class:`Column`: it reads the whole
+column, and may say its dtype and length without reading, read a row range
+alone (into a caller's buffer too), keep its file open while a reduction
+streams it, and, for a plain run of bytes in a file, say where those bytes
+are so a compiled loop can read them itself. Everything above the readers
+asks a column these questions through this one class; a plain zero-argument
+callable given as a column is wrapped (:func:`as_column`), so a reader that
+only knows how to read the whole column keeps working.
 """
 
 from __future__ import annotations
 
-from typing import Callable
+from contextlib import nullcontext
+from typing import Callable, ContextManager
 
 import numpy as np
 
 from .errors import InputError
-from .frame import Loader
 
 
-def sliceable(load: Loader, rows: Callable[[int, int], np.ndarray], dtype=None,
-              rows_into: Callable[[int, int, np.ndarray], np.ndarray] | None = None) -> Loader:
-    """Mark ``load`` as able to read rows ``[start, stop)`` alone (and, optionally, its dtype).
+class Column:
+    """One column of one species, read lazily.
 
-    ``rows_into(start, stop, out)``, when given, reads the rows into ``out`` (a
-    native-order array of ``dtype`` and of their length) and returns it: a
-    reduction streaming a column reuses one buffer instead of allocating (and
-    faulting in) fresh memory for every piece.
+    ``read()`` (or calling the column) reads it all. ``rows(start, stop)``
+    reads rows ``[start, stop)``: alone when the reader gave ``rows``
+    (``can_read_rows``), else by reading all and slicing (an engine does not
+    split such a column). ``rows_into(start, stop, out)`` fills ``out`` (a
+    native-order array of ``dtype`` and of the rows' length) and returns it,
+    so a reduction streaming a column reuses one buffer. ``dtype`` and
+    ``length`` are what the reader knows before reading (None when it does
+    not). ``hold()`` is a context manager that keeps the column's file open
+    while a reduction reads several pieces or columns of it (a no-op by
+    default). ``direct()`` is True while reads go straight to the file
+    without a shared library handle (they let other threads run);
+    ``file_extent()`` gives ``(descriptor, byte offset of row 0, dtype)`` while
+    a hold keeps such an unchanged file open, for compiled file reads, else None.
     """
-    load.rows = rows
-    if dtype is not None:
-        load.dtype = np.dtype(dtype)
-    if rows_into is not None:
-        load.rows_into = rows_into
-    return load
+
+    __slots__ = ("_read", "_rows", "_rows_into", "dtype", "length", "_hold", "_direct", "_extent")
+
+    def __init__(self, read: Callable[[], np.ndarray], *, dtype=None, length: int | None = None,
+                 rows: Callable[[int, int], np.ndarray] | None = None,
+                 rows_into: Callable[[int, int, np.ndarray], np.ndarray] | None = None,
+                 hold: Callable[[], ContextManager] | None = None,
+                 direct: Callable[[], bool] | None = None,
+                 file_extent: Callable[[], tuple | None] | None = None):
+        self._read = read
+        self._rows = rows
+        self._rows_into = rows_into
+        self.dtype = None if dtype is None else np.dtype(dtype)
+        self.length = None if length is None else int(length)
+        self._hold = hold
+        self._direct = direct
+        self._extent = file_extent
+
+    def read(self) -> np.ndarray:
+        return self._read()
+
+    def __call__(self) -> np.ndarray:
+        return self._read()
+
+    @property
+    def can_read_rows(self) -> bool:
+        """Whether a row range is read alone (not by reading the whole column)."""
+        return self._rows is not None
+
+    def rows(self, start: int, stop: int) -> np.ndarray:
+        if self._rows is not None:
+            return self._rows(start, stop)
+        return np.array(np.asarray(self._read())[start:stop])
+
+    def rows_into(self, start: int, stop: int, out: np.ndarray) -> np.ndarray:
+        if self._rows_into is not None:
+            return self._rows_into(start, stop, out)
+        out[...] = self.rows(start, stop)
+        return out
+
+    def hold(self) -> ContextManager:
+        return self._hold() if self._hold is not None else nullcontext()
+
+    def direct(self) -> bool:
+        return bool(self._direct()) if self._direct is not None else False
+
+    def file_extent(self):
+        return self._extent() if self._extent is not None else None
+
+    def __repr__(self) -> str:
+        return f"Column(dtype={self.dtype}, length={self.length}, rows={self.can_read_rows})"
+
+
+def as_column(column) -> Column:
+    """``column`` as a :class:`Column`: itself, or a zero-argument callable wrapped (whole reads only)."""
+    if isinstance(column, Column):
+        return column
+    if not callable(column):
+        raise TypeError(f"a column must be a Column or a zero-argument callable, not {type(column).__name__}")
+    return Column(column)
 
 
 def read_fully(fh, view: memoryview) -> int:
@@ -45,11 +112,6 @@ def read_fully(fh, view: memoryview) -> int:
             break
         got += k
     return got
-
-
-def row_reader(load: Loader):
-    """The loader's row-range read, or None when it can only read the whole column."""
-    return getattr(load, "rows", None)
 
 
 #: bytes of records read at a time by :func:`read_record_field`

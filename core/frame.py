@@ -1,24 +1,26 @@
 """The common in-memory model: a lazily read columnar Frame per species, a Snapshot.
 
-A reader builds a :class:`Frame` from *loaders*: one zero-argument callable per
-column that reads that column (and nothing else) from the file. Nothing is
-read until a column is asked for, so a view of ``x`` against ``ux`` never
-touches the other columns.
+A reader builds a :class:`Frame` from one :class:`~.column.Column` per column
+(or a zero-argument callable, wrapped into one) that reads that column and
+nothing else from the file. Nothing is read until a column is asked for, so
+a view of ``x`` against ``ux`` never touches the other columns.
 """
 
 from __future__ import annotations
 
 from contextlib import contextmanager
 from dataclasses import dataclass, field
-from typing import Callable, Mapping
+from typing import Mapping
 
 import numpy as np
 
+from .column import Column, as_column
 from .errors import InputError
 from .roles import (MOMENTUM_ROLES, POSITION_ROLES, PROPER_VELOCITY_ROLES,
                     VELOCITY_ROLES, RoleMap)
 
-Loader = Callable[[], np.ndarray]
+#: what a frame holds per column (readers may hand over plain callables; the frame wraps them)
+Loader = Column
 
 
 class Frame:
@@ -28,7 +30,7 @@ class Frame:
     counts the reads that reached a file, which tests use to prove laziness.
     """
 
-    def __init__(self, species: str, length: int, loaders: Mapping[str, Loader], *,
+    def __init__(self, species: str, length: int, loaders: Mapping[str, Column], *,
                  units: Mapping[str, str] | None = None,
                  attrs: Mapping[str, object] | None = None,
                  source: str | None = None,
@@ -36,7 +38,7 @@ class Frame:
                  cache: bool = True):
         self.species = species
         self.length = int(length)
-        self._loaders = dict(loaders)
+        self._loaders = {k: as_column(v) for k, v in loaders.items()}
         self.units = dict(units or {})
         self.attrs = dict(attrs or {})
         self.source = source
@@ -83,7 +85,8 @@ class Frame:
                              f"shape {arr.shape}, expected ({self.length},)")
         return arr
 
-    def loader(self, name: str) -> Loader:
+    def loader(self, name: str) -> Column:
+        """The column ``name`` as its reader gave it (nothing read)."""
         return self._loaders[name]
 
     def drop_cache(self) -> None:
@@ -186,20 +189,23 @@ def concat_frames(parts: list[Frame], *, species: str, rank_values=None, source=
         return parts[0]
     common = [c for c in parts[0].columns if all(c in p for p in parts[1:])]
     lengths = [p.length for p in parts]
-    loaders: dict[str, Loader] = {}
+    total = sum(lengths)
+    loaders: dict[str, Column] = {}
     for c in common:
-        loaders[c] = (lambda c=c: _join_column(parts, c))
+        dts = [p.loader(c).dtype for p in parts]
+        loaders[c] = Column(lambda c=c: _join_column(parts, c), length=total,
+                            dtype=np.result_type(*dts) if all(d is not None for d in dts) else None)
     rank_named = any("rank" in p.roles for p in parts)
     if not rank_named and rank_values is not None and "rank" not in loaders:
         rv = np.asarray(rank_values, dtype=np.int32)
-        loaders["rank"] = lambda: np.repeat(rv, lengths)
+        loaders["rank"] = Column(lambda: np.repeat(rv, lengths), dtype=np.int32, length=total)
     units = {}
     attrs = {}
     for p in parts:
         units.update(p.units)
         for k, v in p.attrs.items():
             attrs.setdefault(k, v)
-    joined = Frame(species, sum(lengths), loaders, units=units, attrs=attrs,
+    joined = Frame(species, total, loaders, units=units, attrs=attrs,
                    source=source or (parts[0].source if parts else None),
                    role_map=parts[0].role_map if parts else None)
     joined.parts = list(parts)

@@ -275,7 +275,7 @@ class _TotalsPlan:
         if self._files is None:
             self._files = False
             if _kernels.can_read_files and self.read.streamed:
-                raw = {nm: getattr(self.frame.loader(nm), "raw", lambda: None)() for nm in self.names}
+                raw = {nm: self.frame.loader(nm).file_extent() for nm in self.names}
                 if all(r is not None for r in raw.values()):
                     comps = [raw[nm] for _, nm in self.axes]
                     if len({np.dtype(dt) for _, _, dt in comps}) <= 1:
@@ -389,7 +389,7 @@ def _row_pieces(frame, names):
     * none in memory and every loader reads row ranges: the pieces are read
       from the files (``read.streamed``), so no full-length column is allocated
       (or kept) for a total; in parallel when every loader reads straight from
-      its file (``loader.direct()``: no shared handle, other threads run meanwhile);
+      its file (``Column.direct()``: no shared handle, other threads run meanwhile);
     * otherwise, or for a small frame: the whole columns, one piece.
     """
     n = len(frame)
@@ -410,20 +410,16 @@ def _row_pieces(frame, names):
     if any(nm in cache for nm in names):
         return whole, columns, False
     loaders = {nm: frame.loader(nm) for nm in names}
-    readers = {nm: getattr(ld, "rows", None) for nm, ld in loaders.items()}
-    if any(r is None for r in readers.values()):
+    if not all(ld.can_read_rows for ld in loaders.values()):
         return whole, columns, False
-
-    into = {nm: getattr(ld, "rows_into", None) for nm, ld in loaders.items()}
-    dtypes = {nm: getattr(ld, "dtype", None) for nm, ld in loaders.items()}
 
     def streamed(start, stop):
         cols = {}
-        for nm, rows in readers.items():
-            if into[nm] is not None and dtypes[nm] is not None:
-                arr = into[nm](start, stop, _buffer(nm, dtypes[nm], stop - start))
+        for nm, ld in loaders.items():
+            if ld.dtype is not None:
+                arr = ld.rows_into(start, stop, _buffer(nm, ld.dtype, stop - start))
             else:
-                arr = np.asarray(rows(start, stop))
+                arr = np.asarray(ld.rows(start, stop))
             if arr.shape != (stop - start,):
                 raise InputError(frame.source, f"column '{nm}' of species '{frame.species}' "
                                  f"gave {arr.shape[0] if arr.ndim else 0} rows for the range "
@@ -435,7 +431,7 @@ def _row_pieces(frame, names):
     class _Direct:
         # asked after the first piece: a loader may only know then whether it reads directly
         def __bool__(self):
-            return all(getattr(ld, "direct", lambda: False)() for ld in loaders.values())
+            return all(ld.direct() for ld in loaders.values())
     return bounds, streamed, _Direct()
 
 

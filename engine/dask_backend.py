@@ -38,7 +38,6 @@ from ..diagnostics._bincount import counts_and_sums
 from ..diagnostics._colstats import finite_stats
 from ..core.frame import Frame
 from ..core.layout import BlockLayout, assign_blocks
-from ..core.column import row_reader
 from .pieces import (Piece, column_bytes, column_dtype, frame_pieces,
                      frame_template, piece_frame, read_column)
 
@@ -273,9 +272,9 @@ def _meta(frame: Frame, pieces: list[Piece], names: dict) -> pd.DataFrame:
             if col in p.constants:
                 dt = np.dtype(p.constants[col][1])
             else:
-                rows = row_reader(p.loaders[col])
+                load = p.loaders[col]
                 # a zero-row read says the dtype for free; else read the first piece once
-                dt = (np.asarray(rows(0, 0)) if rows is not None else read_column(p, col)).dtype
+                dt = (np.asarray(load.rows(0, 0)) if load.can_read_rows else read_column(p, col)).dtype
         dtypes[out] = np.empty(0, dtype=dt if dt is not None else np.float64)
     return pd.DataFrame(dtypes, index=pd.RangeIndex(0, 0))
 

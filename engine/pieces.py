@@ -6,10 +6,10 @@ when it is large and its readers can read a row range, several. A snapshot
 in one huge file becomes row-range pieces the same way. Reading a piece reads
 only its rows of only the columns asked for.
 
-A reader makes a column row-readable by attaching ``rows(start, stop)`` to
-its loader (:func:`sliceable`): an HDF5 hyperslab read, a slice of a
-``.npy`` memmap. A loader without it is read whole, so such a part is never
-split (splitting would read the whole column once per piece).
+A column that reads a row range alone (``Column.can_read_rows``: an HDF5
+hyperslab or direct read, records of a ``.npy``) can be split; one that
+cannot is read whole, so such a part is never split (splitting would read
+the whole column once per piece).
 """
 
 from __future__ import annotations
@@ -21,7 +21,7 @@ from typing import Callable, Mapping
 
 import numpy as np
 
-from ..core.column import row_reader, sliceable
+from ..core.column import Column
 from ..core.frame import Frame, Loader
 
 #: aim for pieces of about this many bytes of the columns read (big enough that per-piece
@@ -41,9 +41,8 @@ def column_dtype(frame: Frame, name: str):
         load = frame.loader(name)
     except KeyError:
         return None
-    dt = getattr(load, "dtype", None)
-    if dt is not None:
-        return np.dtype(dt)
+    if load.dtype is not None:
+        return load.dtype
     parts = getattr(frame, "parts", None)
     if parts and all(name in p for p in parts):
         dts = [column_dtype(p, name) for p in parts]
@@ -108,11 +107,9 @@ def read_column(piece: Piece, name: str) -> np.ndarray:
     if piece.whole:
         arr = np.asarray(load())
     else:
-        rows = row_reader(load)
-        if rows is not None:
-            arr = np.asarray(rows(piece.start, piece.stop))
-        else:   # not split on purpose; reached only through a hand-made piece
-            arr = np.array(np.asarray(load())[piece.start:piece.stop])
+        # a column that cannot read rows alone is not split on purpose: only a hand-made piece
+        # reads (all of) it here
+        arr = np.asarray(load.rows(piece.start, piece.stop))
     if arr.shape != (piece.length,):
         from ..core.errors import InputError
         raise InputError(None, f"column '{name}' gave {arr.shape[0] if arr.ndim else 0} rows for a "
@@ -144,8 +141,7 @@ def frame_pieces(frame: Frame, columns=None, target_bytes: int | None = None) ->
             else:   # a column only the joined frame has: read it whole and slice
                 loaders[c] = _slice_of_joined(frame, c, offset, part.length)
         n = part.length
-        splittable = all(row_reader(loaders[c]) is not None for c in columns
-                         if c in loaders)
+        splittable = all(loaders[c].can_read_rows for c in columns if c in loaders)
         count = 1
         if splittable and n * row_bytes > target_bytes:
             count = math.ceil(n * row_bytes / target_bytes)
@@ -161,7 +157,7 @@ def frame_pieces(frame: Frame, columns=None, target_bytes: int | None = None) ->
 def _slice_of_joined(frame: Frame, name: str, offset: int, n: int) -> Loader:
     def load():
         return frame[name][offset:offset + n]
-    return sliceable(load, lambda a, b: frame[name][offset + a:offset + b])
+    return Column(load, rows=lambda a, b: frame[name][offset + a:offset + b], length=n)
 
 
 def piece_frame(piece: Piece, template: Frame) -> Frame:

@@ -16,6 +16,7 @@ import sys
 
 import numpy as np
 
+from ..core.column import Column
 from ..core.errors import InputError
 from ..core.frame import Snapshot
 from ._columns import Table, make_snapshot, split_scalars
@@ -294,7 +295,9 @@ def _as_numbers(lay: _Layout, name: str, col) -> np.ndarray:
                          "swarmaudit reads numeric columns only") from None
 
 
-def _loader(lay: _Layout, name: str):
+def _loader(lay: _Layout, name: str) -> Column:
+    """One column, parsed whole (rows of a text file cannot be found without reading it);
+    its dtype is known only once parsed."""
     def load() -> np.ndarray:
         import pyarrow as pa
         if lay.length == 0:
@@ -313,7 +316,7 @@ def _loader(lay: _Layout, name: str):
                              f"{lay.length} data lines",
                              "a quoted value may span lines, or a comment line was read as data")
         return _as_numbers(lay, name, table.column(0))
-    return load
+    return Column(load, length=lay.length)
 
 
 def _looks_like_csv(text: str) -> bool:

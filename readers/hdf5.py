@@ -4,7 +4,7 @@ A plain 1-D dataset stored contiguously (the usual layout h5py writes) is read
 straight from the file at its offset, without HDF5 (:class:`_Extent`): such
 reads let other threads run, so a reduction reads and reduces pieces on
 several cores. A caller reducing several columns of one file can hold it open
-for the while (``loader.hold()``, a context manager): the reads inside share
+for the while (``column.hold()``, a context manager): the reads inside share
 one read-only handle (a descriptor for direct reads), closed when the last
 holder leaves.
 
@@ -31,7 +31,7 @@ import numpy as np
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot
-from ..core.column import read_fully, sliceable
+from ..core.column import Column, read_fully
 from ..core.roles import _VECTOR_STEMS
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        make_snapshot, native, reject_non_numeric, scalar_value, split_scalars, take_field)
@@ -184,8 +184,8 @@ class _Scan:
                     continue
                 label = col if col not in table.loaders else f"{name}/{col}"
                 if reject_non_numeric(self.path, label, fdt, f"field '{col}' of {where}", self.warnings):
-                    table.add(label, shape[0], _loader(self.path, dsname, field=(fpath, comp), dtype=fdt),
-                              dsname, unit)
+                    table.add(label, shape[0], _loader(self.path, dsname, field=(fpath, comp), dtype=fdt,
+                                                       length=shape[0]), dsname, unit)
             return
         if len(shape) > 2 or (len(shape) == 2 and not 1 <= shape[1] <= MAX_COMPONENTS):
             self.warnings.append(f"{where} has shape {shape}, not (N,) or (N, d); left out")
@@ -196,7 +196,7 @@ class _Scan:
         extent = self._check_stored(ds, dsname, dtype, shape, tid)
         for k, col in enumerate(names):
             table.add(col, shape[0], _loader(self.path, dsname, comp=None if len(shape) == 1 else k,
-                                                  dtype=dtype, extent=extent),
+                                                  dtype=dtype, extent=extent, length=shape[0]),
                       dsname, unit)
 
     # groups -> tables ---------------------------------------------------------
@@ -533,7 +533,8 @@ def _stamp(st) -> tuple:
 _NO_EXTENT = object()
 
 
-def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=None, extent=None):
+def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=None, extent=None,
+            length: int | None = None) -> Column:
     """Read one column: the whole 1-D dataset, one column slice, or one compound field.
 
     The loader can also read rows ``[start, stop)`` alone (a hyperslab), for
@@ -596,14 +597,11 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
         arr = native(np.ascontiguousarray(arr))
         arr.flags.writeable = False     # like the other readers' columns: the frame's cache is shared
         return arr
-    hint = None if dtype is None else np.dtype(dtype).newbyteorder("=")
-    out = sliceable(lambda: load(), lambda start, stop: load((start, stop)), hint,
-                    lambda start, stop, into: load((start, stop), into))
-    # True while reads go straight to the file: they need no shared handle and let other threads run
-    out.direct = lambda: isinstance(extent[0], _Extent)
-    out.hold = lambda: _hold_fd(path) if out.direct() else _hold(path)
+    def direct() -> bool:
+        """True while reads go straight to the file: they need no shared handle and let other threads run."""
+        return isinstance(extent[0], _Extent)
 
-    def raw():
+    def file_extent():
         """``(descriptor, offset of row 0, dtype)`` while a hold keeps this unchanged file open."""
         ext = extent[0]
         if not isinstance(ext, _Extent) or not ext.dtype.isnative:
@@ -612,8 +610,12 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
         if held is None or held[2] != ext.stamp:
             return None
         return held[0], ext.offset, ext.dtype
-    out.raw = raw
-    return out
+
+    return Column(lambda: load(), dtype=None if dtype is None else np.dtype(dtype).newbyteorder("="),
+                  length=length, rows=lambda start, stop: load((start, stop)),
+                  rows_into=lambda start, stop, into: load((start, stop), into),
+                  hold=lambda: _hold_fd(path) if direct() else _hold(path),
+                  direct=direct, file_extent=file_extent)
 
 
 def _has_signature(path: str) -> bool:

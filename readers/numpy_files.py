@@ -22,7 +22,7 @@ import numpy.lib.format as npformat
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot
-from ..core.column import read_record_field, sliceable
+from ..core.column import Column, read_record_field
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        has_role, make_snapshot, native, reject_non_numeric, scalar_value,
                        split_scalars, take_field)
@@ -118,7 +118,7 @@ def _field_loader(path: str, offset: int, dtype, n: int, col: str, fpath, comp):
     def load():
         check_fits_memory(path, f"field '{col}'", n * take(np.empty(0, dtype)).dtype.itemsize)
         return rows(0, n)
-    return sliceable(load, rows, native(take(np.empty(0, dtype))).dtype)
+    return Column(load, rows=rows, dtype=native(take(np.empty(0, dtype))).dtype, length=n)
 
 
 # .npz ---------------------------------------------------------------------------
@@ -132,7 +132,9 @@ def _split_key(key: str) -> tuple[str, str]:
     return DEFAULT_SPECIES, key
 
 
-def _member_loader(path: str, member: str, shape, fortran, dtype, comp=None, field=None):
+def _member_loader(path: str, member: str, shape, fortran, dtype, comp=None, field=None) -> Column:
+    """One array of the archive (or one component or field of it), read whole (a member may be
+    compressed, so a row range cannot be read alone)."""
     def load() -> np.ndarray:
         check_fits_memory(path, f"array '{member[:-4]}'", _nbytes(shape, dtype))
         try:
@@ -157,7 +159,12 @@ def _member_loader(path: str, member: str, shape, fortran, dtype, comp=None, fie
         elif comp is not None:
             arr = arr[:, comp]
         return native(np.ascontiguousarray(arr))
-    return load
+    if field is not None:
+        out = take_field(np.empty(0, dtype), *field).dtype
+    else:
+        out = dtype.subdtype[0] if dtype.subdtype is not None else dtype
+    return Column(load, dtype=out if out.isnative else out.newbyteorder("="),
+                  length=shape[0] if shape else 1)
 
 
 def _open_npz(path: str, columns) -> Snapshot:

@@ -27,9 +27,8 @@ def _frame(arrays, species="e", attrs=None, rows=True):
     loaders = {}
     for c, a in arrays.items():
         load = (lambda a=a: a.copy())
-        if rows:
-            column.sliceable(load, lambda s, e, a=a: a[s:e].copy(), a.dtype)
-        loaders[c] = load
+        loaders[c] = (column.Column(load, rows=lambda s, e, a=a: a[s:e].copy(), dtype=a.dtype, length=len(a))
+                      if rows else load)
     return Frame(species, n, loaders, attrs=attrs or {})
 
 

@@ -31,6 +31,7 @@ def server(tmp_path):
 
     from swarmaudit.app import serve
     from swarmaudit.app.state import SERVED
+    from swarmaudit.core.column import Column
     from swarmaudit.core.context import AuditContext
     from swarmaudit.readers.discover import open_run
 
@@ -44,7 +45,7 @@ def server(tmp_path):
                 def counted(load=load, key=(i, col)):
                     reads[key] += 1
                     return load()
-                frame._loaders[col] = counted
+                frame._loaders[col] = Column(counted)
     box = {}
 
     def ready(url):

@@ -217,7 +217,10 @@ def test_h5_dataset_with_shape_n_1_and_wide_vectors(tmp_path, ref):
 
 
 class _PairsReader:
-    """A third-party reader as a lab would write one: 'x y' number pairs, one particle a line."""
+    """A third-party reader as a lab would write one: 'x y' number pairs, one particle a line.
+
+    Its columns are :class:`Column` objects that read a row range alone (the README's example).
+    """
 
     name = "pairs"
     suffixes = (".pairs",)
@@ -225,6 +228,27 @@ class _PairsReader:
     def can_open(self, path):
         with open(path, "rb") as fh:
             return fh.read(6) == b"PAIRS\n"
+
+    def open(self, path, columns=None):
+        from swarmaudit.core.column import Column
+        from swarmaudit.core.frame import Frame, Snapshot
+        with open(path) as fh:
+            n = sum(1 for _ in fh) - 1
+
+        def column(k):
+            def rows(start, stop):
+                if stop <= start:
+                    return np.empty(0)
+                return np.loadtxt(path, skiprows=1 + start, max_rows=stop - start, usecols=k, ndmin=1)
+            return Column(lambda: rows(0, n), rows=rows, dtype=np.float64, length=n)
+        loaders = {"x": column(0), "y": column(1)}
+        if columns is not None:
+            loaders = {c: loaders[c] for c in columns}
+        return Snapshot(str(path), {"particles": Frame("particles", n, loaders, source=str(path))})
+
+
+class _PlainPairsReader(_PairsReader):
+    """The same format through plain zero-argument callables (the older contract, still taken)."""
 
     def open(self, path, columns=None):
         from swarmaudit.core.frame import Frame, Snapshot
@@ -239,12 +263,52 @@ class _PairsReader:
         return Snapshot(str(path), {"particles": Frame("particles", n, loaders, source=str(path))})
 
 
-def test_third_party_reader_plugin(tmp_path, monkeypatch):
+@pytest.mark.parametrize("reader", [_PairsReader, _PlainPairsReader])
+def test_third_party_reader_plugin(tmp_path, monkeypatch, reader):
     from swarmaudit.readers.discover import open_run
     monkeypatch.setattr(registry, "_READERS", list(registry.readers()))
-    registry.register(_PairsReader())
+    registry.register(reader())
     for k in (2, 1):
         (tmp_path / f"p_{k}.pairs").write_text(f"PAIRS\n{k} 0.5\n{k + 1} 1.5\n")
     run = open_run(str(tmp_path))
     assert run.labels == ["p_1.pairs", "p_2.pairs"]
     np.testing.assert_array_equal(run[1].species["particles"].role("x"), [2.0, 3.0])
+
+
+def test_plugin_columns_stream_in_pieces_like_numpy_reads_them(tmp_path):
+    # a reader's Column with a row read is split into pieces by the engine; the pieces joined
+    # are numpy.loadtxt's reading of the whole file; a plain callable is wrapped and never split
+    from swarmaudit.engine.pieces import frame_pieces, read_column
+    rng = np.random.default_rng(5)
+    xy = rng.normal(size=(1000, 2))
+    path = tmp_path / "p.pairs"
+    with open(path, "w") as fh:
+        fh.write("PAIRS\n")
+        np.savetxt(fh, xy, fmt="%.17g")
+    want = np.loadtxt(path, skiprows=1)
+    frame = _PairsReader().open(str(path)).species["particles"]
+    col = frame.loader("x")
+    assert col.can_read_rows and col.dtype == np.float64 and col.length == 1000
+    pieces = frame_pieces(frame, ["x", "y"], target_bytes=16 * 100)
+    assert len(pieces) > 5
+    for name, k in (("x", 0), ("y", 1)):
+        got = np.concatenate([read_column(p, name) for p in pieces])
+        np.testing.assert_array_equal(got, want[:, k])
+    buf = np.empty(7)
+    assert col.rows_into(10, 17, buf) is buf
+    np.testing.assert_array_equal(buf, want[10:17, 0])
+
+    plain = _PlainPairsReader().open(str(path)).species["particles"]
+    wrapped = plain.loader("x")
+    assert not wrapped.can_read_rows and wrapped.dtype is None and not wrapped.direct()
+    assert wrapped.file_extent() is None
+    with wrapped.hold():       # holding a column that has no file handle to keep is a no-op
+        np.testing.assert_array_equal(wrapped.rows(3, 9), want[3:9, 0])
+    assert len(frame_pieces(plain, ["x", "y"], target_bytes=16 * 100)) == 1
+    np.testing.assert_array_equal(plain["y"], want[:, 1])
+
+
+def test_a_column_must_be_a_column_or_a_callable():
+    from swarmaudit.core.frame import Frame
+    with pytest.raises(TypeError, match="zero-argument callable"):
+        Frame("p", 3, {"x": np.arange(3.0)})

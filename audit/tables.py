@@ -23,7 +23,8 @@ from ..diagnostics.migration import DuplicateKeyError, MigrationResult, migrate
 from ..diagnostics.rebalance import rebalance_whatif
 from .cache import cached_reduction, layout_fingerprint
 from ..core.context import AuditContext
-from ..engine.dask_backend import census_if_partitioned, migration_if_partitioned, totals_if_partitioned
+from ..engine.dask_backend import migration_if_partitioned, totals_if_partitioned
+from ..engine.reduce import reduce
 from ..core.errors import OptionError
 from ..core.frame import is_clock_scalar, transient_columns
 from ..core.layout import assign_blocks
@@ -159,16 +160,14 @@ def _compute_census(ctx: AuditContext, i: int, layout) -> dict:
     out = {}
     for s in _present_species(ctx, i):
         frame = snap.species[s]
-        got = census_if_partitioned(ctx, frame, layout)
-        if got is not None:
-            out[s] = tuple(got)
-            continue
-        with _transient([frame]):
+        acc = _census.Census.of_frame(frame, layout)
+        if acc is None:    # says why (a note, or an error for axes that do not fit the layout)
             bids = _block_ids(ctx, frame, layout, _where(ctx, i))
-            w = frame.per_particle("weight", 1.0)
-            prank = frame.role("rank")
-            out[s] = (_census.block_census(bids, layout, w),
-                      _census.rank_census(bids, layout, w, prank))
+            got = _census.census_of_arrays(bids, layout, frame.per_particle("weight", 1.0))
+        else:
+            with _held_open(frame):
+                got = reduce(acc, frame, ctx)
+        out[s] = (got["block"], got["rank"])
     return out
 
 

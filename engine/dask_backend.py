@@ -34,7 +34,6 @@ import pandas as pd
 
 from ..core import interrupt
 from ..core.errors import OptionError
-from ..diagnostics._bincount import counts_and_sums
 from ..diagnostics._colstats import finite_stats
 from ..core.frame import Frame
 from ..core.layout import BlockLayout, assign_blocks
@@ -377,108 +376,6 @@ def _padded(r):
     return (lo - pad, hi + pad)
 
 
-# census --------------------------------------------------------------------------------
-def _census_piece(piece: Piece, template: Frame, layout: BlockLayout, weight_default, use_rank):
-    f = piece_frame(piece, template)
-    slots = layout.block_index(assign_blocks(f.positions(), layout)) + 1   # slot 0: in no block
-    w = f.per_particle("weight", weight_default)
-    w = None if w is None else (float(w) if np.ndim(w) == 0 else np.asarray(w, dtype=np.float64))
-    counts, wsum = counts_and_sums(slots, w, layout.nblocks + 1)
-    out = {"counts": counts, "wsum": wsum}
-    if use_rank and "rank" in f.roles:
-        name = f.column_for("rank")
-        if name in piece.constants:   # a per-rank file: every particle has its file's rank
-            r = max(int(piece.constants[name][0]), -1) + 1
-            out["rank_counts"] = np.zeros(r + 1, np.int64)
-            out["rank_wsum"] = np.zeros(r + 1)
-            out["rank_counts"][r] = counts.sum()
-            out["rank_wsum"][r] = wsum.sum() if w is not None else float(counts.sum())
-        else:
-            r = np.asarray(f[name]).astype(np.int64, copy=False)
-            r = np.where(r < 0, 0, r + 1)
-            out["rank_counts"], out["rank_wsum"] = counts_and_sums(r, w, int(r.max(initial=0)) + 1)
-    return out
-
-
-def _sum_ragged(arrays):
-    arrays = list(arrays)
-    n = max(a.shape[0] for a in arrays)
-    out = np.zeros(n, dtype=np.result_type(*arrays))
-    for a in arrays:
-        out[:a.shape[0]] += a
-    return out
-
-
-def census_dask(frame: Frame, layout: BlockLayout, *, weight_default=None, particle_rank: bool = True,
-                engine: DaskEngine | None = None) -> dict[str, pd.DataFrame]:
-    """Block, rank and level census of ``frame`` reduced piece by piece.
-
-    Returns ``{"block", "rank", "level"}`` tables equal to
-    ``diagnostics.census.block_census / rank_census / level_census`` of the
-    whole frame with weights ``frame.per_particle("weight", weight_default)``
-    (and the rank column as ``particle_rank`` when the frame has one).
-    """
-    engine = engine or client_for()
-    cols = list(frame.position_names)
-    for role in ("weight", "rank"):
-        if frame.column_for(role):
-            cols.append(frame.column_for(role))
-    res = engine.map(_census_piece, frame_pieces(frame, cols), frame_template(frame), layout,
-                     weight_default, particle_rank)
-    if not res:
-        res = [{"counts": np.zeros(layout.nblocks + 1, np.int64),
-                "wsum": np.zeros(layout.nblocks + 1)}]
-    counts = sum(r["counts"] for r in res).astype(np.int64)
-    wsum = sum(r["wsum"] for r in res)
-    rank_counts = rank_wsum = None
-    if particle_rank and any("rank_counts" in r for r in res):
-        rank_counts = _sum_ragged(r["rank_counts"] for r in res if "rank_counts" in r).astype(np.int64)
-        rank_wsum = _sum_ragged(r["rank_wsum"] for r in res if "rank_wsum" in r).astype(np.float64)
-    return census_tables(counts, wsum, layout, rank_counts, rank_wsum)
-
-
-def census_tables(counts, wsum, layout: BlockLayout, rank_counts=None, rank_wsum=None):
-    """Census tables from per-row sums (slot 0: in no block; slot r+1: layout row r).
-
-    The tables come from :mod:`diagnostics.census` itself, fed one stand-in
-    particle per key carrying that key's summed weight, with the counts put
-    back afterwards: so rows, order and the non-additive columns (owned
-    blocks) are the in-memory ones by construction. ``rank_counts`` and
-    ``rank_wsum`` (slot 0: no rank, slot r+1: rank r) are sums over a rank
-    column.
-    """
-    from ..diagnostics.census import block_census, level_census, rank_census
-    counts = np.asarray(counts, dtype=np.int64)
-    wsum = np.asarray(wsum, dtype=np.float64)
-    reps = layout.block_id.astype(np.int64)
-    rep_counts, rep_w = counts[1:], wsum[1:]
-    if counts[0]:   # particles in no block get their own stand-in
-        reps = np.append(reps, -1)
-        rep_counts, rep_w = np.append(rep_counts, counts[0]), np.append(rep_w, wsum[0])
-    block = _put_counts(block_census(reps, layout, rep_w), "block", reps, rep_counts)
-    level_of = np.append(layout.level.astype(np.int64), -1)[layout.block_index(reps)]
-    level = _put_counts(level_census(reps, layout, rep_w), "level", level_of, rep_counts)
-    if rank_counts is None:
-        owner = np.append(layout.rank.astype(np.int64), -1)[layout.block_index(reps)]
-        rank = _put_counts(rank_census(reps, layout, rep_w), "rank", owner, rep_counts)
-    else:
-        rank_counts = np.asarray(rank_counts, dtype=np.int64)
-        keys = np.arange(-1, rank_counts.shape[0] - 1, dtype=np.int64)
-        used = (rank_counts > 0) | (keys >= 0)
-        keys, rc, rw = keys[used], rank_counts[used], np.asarray(rank_wsum, np.float64)[used]
-        rank = _put_counts(rank_census(np.full(keys.shape, -1, np.int64), layout, rw,
-                                       particle_rank=keys), "rank", keys, rc)
-    return {"block": block, "rank": rank, "level": level}
-
-
-def _put_counts(table: pd.DataFrame, key: str, rep_keys, rep_counts) -> pd.DataFrame:
-    """Replace the stand-ins' count (one each) by the true counts summed per key."""
-    true = pd.Series(rep_counts, dtype=np.int64).groupby(np.asarray(rep_keys)).sum()
-    out = table.copy()
-    out["count"] = true.reindex(out[key].to_numpy(), fill_value=0).to_numpy().astype(np.int64)
-    return out
-
-
 # totals --------------------------------------------------------------------------------
 def _apply_piece(piece: Piece, template: Frame, fn, kwargs):
     return fn(piece_frame(piece, template), **kwargs)
@@ -712,21 +609,6 @@ def _migrate_in_memory(frame_a, frame_b, layout, layout_b, steps, positions, mig
 # the doors core/audit.py goes through -----------------------------------------------------
 def _roles_columns(frame: Frame, roles) -> list[str]:
     return [frame.column_for(r) for r in roles if frame.column_for(r)]
-
-
-def census_if_partitioned(ctx, frame: Frame, layout: BlockLayout):
-    """(block table, rank table) through the partitioned engine, or None to stay in memory.
-
-    Weights and ranks as the in-memory census of :mod:`core.audit` takes
-    them: the weight role (else 1), the rank column where there is one.
-    """
-    if not (frame.ndim == layout.ndim > 0):
-        return None
-    cols = list(frame.position_names) + _roles_columns(frame, ("weight", "rank"))
-    if not use_dask(ctx, frame, cols):
-        return None
-    t = census_dask(frame, layout, weight_default=1.0, engine=client_for(ctx))
-    return t["block"], t["rank"]
 
 
 def totals_if_partitioned(ctx, frame: Frame):

@@ -15,6 +15,7 @@ the whole column once per piece).
 from __future__ import annotations
 
 import math
+import threading
 import uuid
 from dataclasses import dataclass, field
 from typing import Callable, Mapping
@@ -24,17 +25,23 @@ import numpy as np
 from ..core.column import Column
 from ..core.frame import Frame, Loader
 
-#: aim for pieces of about this many bytes of the columns read (big enough that per-piece
-#: overhead vanishes, small enough that a few pieces in flight per core stay in memory)
-TARGET_PIECE_BYTES = 128 * 2**20
+#: rows of one piece: the one piece size of every engine. Small enough that a piece's columns
+#: stay in a core's cache through a compiled pass and that several pieces are in flight per core,
+#: large enough that per-piece overhead vanishes. Tasks are runs of pieces (engine.reduce).
+PIECE_ROWS = 1 << 18
 
 #: assumed width of a column whose dtype is not known before it is read
 DEFAULT_ITEMSIZE = 8
 
 
+def cached_column(frame: Frame, name: str):
+    """The column when the frame holds it in memory already (read nothing), else None."""
+    return getattr(frame, "_cache", {}).get(name)
+
+
 def column_dtype(frame: Frame, name: str):
     """The dtype of a column without reading it, when the reader said (or it is in memory)."""
-    cached = getattr(frame, "_cache", {}).get(name)
+    cached = cached_column(frame, name)
     if cached is not None:
         return cached.dtype
     try:
@@ -73,7 +80,11 @@ def parts_of(frame: Frame) -> list[tuple[Frame, int | None]]:
 
 @dataclass(frozen=True)
 class Piece:
-    """Rows ``[start, stop)`` of one part; ``offset`` is where they start in the whole frame."""
+    """Rows ``[start, stop)`` of part ``part``; ``offset`` is where they start in the whole frame.
+
+    ``views`` holds the piece's rows of columns the frame already had in
+    memory (slices, no copy); other columns are read through ``loaders``.
+    """
 
     index: int
     start: int
@@ -82,6 +93,9 @@ class Piece:
     part_length: int
     loaders: Mapping[str, Loader] = field(repr=False)
     constants: Mapping[str, tuple] = field(default_factory=dict, repr=False)
+    part: int = 0
+    rank: int | None = None
+    views: Mapping[str, np.ndarray] = field(default_factory=dict, repr=False)   # rows held in memory
     token: str = field(default_factory=lambda: uuid.uuid4().hex, repr=False, compare=False)
 
     def __dask_tokenize__(self):
@@ -98,13 +112,21 @@ class Piece:
         return self.start == 0 and self.stop == self.part_length
 
 
-def read_column(piece: Piece, name: str) -> np.ndarray:
-    """One column of one piece (only its rows, when the reader can)."""
+def read_column(piece: Piece, name: str, reuse: bool = False) -> np.ndarray:
+    """One column of one piece (only its rows, when the reader can).
+
+    ``reuse``: the rows may land in this thread's buffer for the column, which
+    the next piece read on the thread overwrites (for a reduction that keeps nothing).
+    """
+    if name in piece.views:
+        return piece.views[name]
     if name in piece.constants:
         value, dtype = piece.constants[name]
         return np.full(piece.length, value, dtype=dtype)
     load = piece.loaders[name]
-    if piece.whole:
+    if reuse and load.dtype is not None and load.can_read_rows:
+        arr = load.rows_into(piece.start, piece.stop, thread_buffer(name, load.dtype, piece.length))
+    elif piece.whole:
         arr = np.asarray(load())
     else:
         # a column that cannot read rows alone is not split on purpose: only a hand-made piece
@@ -117,20 +139,21 @@ def read_column(piece: Piece, name: str) -> np.ndarray:
     return arr
 
 
-def frame_pieces(frame: Frame, columns=None, target_bytes: int | None = None) -> list[Piece]:
-    """Pieces covering every row of ``frame`` in order.
+def frame_pieces(frame: Frame, columns=None, rows: int | None = None) -> list[Piece]:
+    """Pieces covering every row of ``frame`` in order, ``PIECE_ROWS`` rows each at most.
 
-    ``columns`` (default: all) only sizes the pieces; every piece can still
-    read every column of the frame. ``target_bytes`` defaults to
-    ``TARGET_PIECE_BYTES`` (read at call time, so it can be tuned).
+    ``columns`` (default: all) are the columns the pieces will be asked for:
+    a part is cut only when each of them can be had for a row range (held in
+    memory, or a loader that reads row ranges); otherwise the part is one
+    piece. Every piece can still read every column of the frame. ``rows``
+    defaults to ``PIECE_ROWS`` (read at call time, so tests can make it small).
     """
-    target_bytes = int(target_bytes or TARGET_PIECE_BYTES)
-    columns = list(frame.columns if columns is None else columns)
-    row_bytes = max(1, sum((column_dtype(frame, c) or np.dtype(np.float64)).itemsize
-                           for c in dict.fromkeys(columns) if c in frame))
+    rows_per = int(rows or PIECE_ROWS)
+    columns = [c for c in dict.fromkeys(frame.columns if columns is None else columns) if c in frame]
+    joined = {c: cached_column(frame, c) for c in columns}
     pieces: list[Piece] = []
     offset = 0
-    for part, rank in parts_of(frame):
+    for part_no, (part, rank) in enumerate(parts_of(frame)):
         loaders = {}
         constants = {}
         for c in frame.columns:
@@ -141,17 +164,40 @@ def frame_pieces(frame: Frame, columns=None, target_bytes: int | None = None) ->
             else:   # a column only the joined frame has: read it whole and slice
                 loaders[c] = _slice_of_joined(frame, c, offset, part.length)
         n = part.length
-        splittable = all(loaders[c].can_read_rows for c in columns if c in loaders)
-        count = 1
-        if splittable and n * row_bytes > target_bytes:
-            count = math.ceil(n * row_bytes / target_bytes)
-        bounds = np.linspace(0, n, count + 1).astype(np.int64)
+        held = {}
+        for c in columns:
+            arr = joined[c]
+            if arr is not None:
+                held[c] = arr[offset:offset + n]
+            elif part is not frame and cached_column(part, c) is not None:
+                held[c] = cached_column(part, c)
+        splittable = all(c in held or c in constants or loaders[c].can_read_rows for c in columns)
+        count = max(1, math.ceil(n / rows_per)) if splittable else 1
+        bounds = [0] + [min(n, k * rows_per) for k in range(1, count)] + [n] if count > 1 else [0, n]
         for a, b in zip(bounds[:-1], bounds[1:]):
-            if b <= a and n > 0:
-                continue
-            pieces.append(Piece(len(pieces), int(a), int(b), offset + int(a), n, loaders, constants))
+            views = {c: v[a:b] for c, v in held.items()}
+            pieces.append(Piece(len(pieces), int(a), int(b), offset + int(a), n, loaders, constants,
+                                part_no, rank, views))
         offset += n
     return pieces
+
+
+_buffers = threading.local()
+
+
+def thread_buffer(name: str, dtype, n: int) -> np.ndarray:
+    """This thread's buffer of ``n`` values for a column, reused from piece to piece.
+
+    Streaming a run then allocates, and faults in, its buffers once.
+    """
+    held = getattr(_buffers, "arrays", None)
+    if held is None:
+        held = _buffers.arrays = {}
+    key = (name, np.dtype(dtype).str)
+    buf = held.get(key)
+    if buf is None or buf.shape[0] < n:
+        buf = held[key] = np.empty(max(n, PIECE_ROWS), dtype=dtype)
+    return buf[:n]
 
 
 def _slice_of_joined(frame: Frame, name: str, offset: int, n: int) -> Loader:

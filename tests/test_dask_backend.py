@@ -43,7 +43,7 @@ def _split(arrays, cuts, attrs=None, rows=True, ranks=None):
 @pytest.fixture(autouse=True)
 def small_pieces(monkeypatch):
     # a few kB per piece: every frame below is cut into many partitions
-    monkeypatch.setattr(partitions, "TARGET_PIECE_BYTES", 4096)
+    monkeypatch.setattr(partitions, "PIECE_ROWS", 256)
 
 
 @pytest.fixture(scope="module")
@@ -128,9 +128,16 @@ def test_aggregate_slab_keeps_only_its_rows(engine):
     np.testing.assert_array_equal(agg.values, h)
 
 
+def _census(frame, layout, where):
+    from swarmaudit.diagnostics.census import Census
+    from swarmaudit.engine.reduce import reduce
+    return reduce(Census.of_frame(frame, layout, weight_default=None), frame, where=where)
+
+
+@pytest.mark.parametrize("where", ["serial", "threads", "dask"])
 @pytest.mark.parametrize("layout_kind", ["regular", "refined"])
 @pytest.mark.parametrize("weights", ["column", "attribute", "none"])
-def test_census_equals_in_memory_census(layout_kind, weights, engine):
+def test_census_equals_in_memory_census(layout_kind, weights, where):
     from swarmaudit.diagnostics.census import block_census, level_census, rank_census
     data = _particles(5000)
     attrs = {}
@@ -141,7 +148,7 @@ def test_census_equals_in_memory_census(layout_kind, weights, engine):
     layout = (regular_layout([0, 1, 0, 1], [8, 8], [4, 2], ranks=3) if layout_kind == "regular"
               else _refined())
     frame = _split(data, [1200, 3300], attrs=attrs)
-    got = dk.census_dask(frame, layout, engine=engine)
+    got = _census(frame, layout, where)
     whole = _frame(data, attrs=attrs)
     ids = assign_blocks(whole.positions(), layout)
     w = whole.per_particle("weight", None)
@@ -154,12 +161,13 @@ def test_census_equals_in_memory_census(layout_kind, weights, engine):
     assert blk[blk > 0].sort_index().to_dict() == vc.sort_index().to_dict()
 
 
-def test_census_with_a_rank_column_counts_where_particles_live(engine):
+@pytest.mark.parametrize("where", ["serial", "threads", "dask"])
+def test_census_with_a_rank_column_counts_where_particles_live(where):
     from swarmaudit.diagnostics.census import rank_census
     data = _particles(4000)
     layout = regular_layout([0, 1, 0, 1], [4, 4], [2, 2], ranks=2)
     frame = _split(data, [1000, 2500], ranks=[0, 1, 5])   # rank 5 owns no block
-    got = dk.census_dask(frame, layout, engine=engine)["rank"]
+    got = _census(frame, layout, where)["rank"]
     ids = assign_blocks([data["x"], data["y"]], layout)
     prank = np.repeat([0, 1, 5], [1000, 1500, 1500])
     ref = rank_census(ids, layout, data["weight"], particle_rank=prank)
@@ -364,7 +372,10 @@ def test_a_scheduler_in_other_processes_gives_the_same_answers(tmp_path):
         eng = dk.client_for(address=cluster.scheduler_address)
         try:
             assert eng.kind == "distributed" and eng.workers == 1
-            got = dk.census_dask(frame, layout, engine=eng)["block"]
+            ctx = AuditContext(run=None, scheduler=cluster.scheduler_address)
+            from swarmaudit.diagnostics.census import Census
+            from swarmaudit.engine.reduce import reduce
+            got = reduce(Census.of_frame(frame, layout), frame, ctx)["block"]
             agg = dk.aggregate_dask(frame, "x", "y", width=20, height=10, engine=eng)
         finally:
             dk.close_engine(eng)
@@ -401,11 +412,11 @@ def test_one_big_file_is_read_in_row_ranges(fmt, tmp_path, engine):
     assert len(pieces) > 5 and not any(p.whole for p in pieces)
     assert partitions.column_dtype(frame, "id") == np.int64      # known before any read
     layout = regular_layout([0, 1, 0, 1], [8, 8], [4, 4])
-    got = dk.census_dask(frame, layout, engine=engine)["block"]
+    got = _census(frame, layout, "dask")["block"]
     ids = assign_blocks([data["x"], data["y"]], layout)
     pd.testing.assert_frame_equal(got, block_census(ids, layout, data["weight"]), check_exact=False,
                                   rtol=1e-12)
-    assert frame.reads == 0
+    assert frame.reads == 3          # x, y and weight, in pieces; no other column
 
 
 def test_audit_tables_are_the_same_through_either_engine(tmp_path, monkeypatch):

@@ -36,6 +36,7 @@ import threading
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
+from ..core import interrupt
 from ..core.frame import Frame
 from ..diagnostics import accumulate
 from .pieces import Piece, frame_pieces, read_column
@@ -97,6 +98,7 @@ def run_task(acc, task: Task):
     state = acc.start()
     reuse = bool(getattr(acc, "reads_once", False))
     for p in task.pieces:
+        interrupt.check()       # Ctrl-C: a pool drains in one piece's time
         state = acc.add(state, as_piece(p, task.frame, reuse))
     return state
 
@@ -187,6 +189,7 @@ def _on_cluster(eng, work) -> list:
         if len(pending) >= window:
             break
     while pending:
+        interrupt.check()
         fut = pending.pop(0)
         out.append(fut.result())
         fut.release()

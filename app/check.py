@@ -5,7 +5,11 @@ from __future__ import annotations
 import sys
 
 from ..audit.tables import check
-from ..core.errors import OptionError
+from ..core.errors import InputError, OptionError
+from ..core.roles import missing_roles_help
+
+#: totals formed from velocities (or momenta)
+VELOCITY_TOTALS = ("momentum_x", "momentum_y", "momentum_z", "kinetic_energy", "total_energy")
 
 
 def _quantities(text):
@@ -24,9 +28,28 @@ def run_check(ctx, args, out=None, err=None) -> int:
     """
     out = out or sys.stdout
     err = err or sys.stderr
-    result = check(ctx, args.rtol, _quantities(getattr(args, "quantities", None)))
+    quantities = _quantities(getattr(args, "quantities", None))
+    _say_missing_velocities(ctx, quantities)
+    result = check(ctx, args.rtol, quantities)
     for line in result.lines:
         print(line, file=out)
     for note in ctx.notes:
         print(f"note: {note}", file=err)
     return 0 if result.ok else 1
+
+
+def _say_missing_velocities(ctx, quantities) -> None:
+    """No species has a velocity or momentum column: an error when a total needing one was asked
+    for, else a note, both naming the columns found and the options that would say which they are."""
+    first = ctx.run[0]
+    frames = [first.species[n] for n in ctx.species_names() if n in first.species]
+    frames = [f for f in frames if f.length > 0]
+    if not frames or any(f.momentum_kind() for f in frames):
+        return
+    f = frames[0]
+    problem, hint = missing_roles_help("velocity", f.columns, f.roles.values())
+    asked = [q for q in quantities or () if q in VELOCITY_TOTALS]
+    if asked:
+        raise InputError(first.path, f"--quantities {','.join(asked)} needs particle velocities, but {problem}",
+                         hint)
+    ctx.notes.append(f"momentum and energy are not checked: {problem}; {hint}")

@@ -54,15 +54,23 @@ def describe(ctx: AuditContext, health_snapshots=None) -> dict:
             continue
         roles = frame.roles
         by_col = {c: r for r, c in roles.items()}
+        guessed = frame.guessed_roles
         species.append({
             "species": name,
+            "name_in_file": frame.long_name or name,
             "attrs": {k: _plain(v) for k, v in frame.attrs.items()},
-            "columns": [{"name": c, "role": by_col.get(c, ""), "unit": frame.unit(c)} for c in frame.columns],
+            "columns": [{"name": c, "role": by_col.get(c, ""), "unit": frame.unit(c),
+                         "guessed": by_col.get(c) in guessed} for c in frame.columns],
             "key": list(frame.key_columns() or []),
             "momentum": {"v": "velocity", "u": "momentum per unit mass (γv)", "p": "momentum"}.get(
                 frame.momentum_kind() or "", "none"),
             "ndim": frame.ndim,
         })
+        said = [f"{c['role']}={c['name']}" for c in species[-1]["columns"] if c["guessed"]]
+        if said:
+            ctx.notes.append(f"species {name}: roles guessed from column names ({', '.join(said)}); "
+                             "if one is wrong, say which column it is with --role ROLE=NAME or a "
+                             "roles file (--roles FILE.toml)")
     layout = ctx.layout(0)
     health = []
     which = health_snapshots
@@ -143,14 +151,17 @@ def run_inspect(ctx: AuditContext, as_json: bool = False, health: str = "auto") 
     print("species")
     for sp in info["species"]:
         attrs = ", ".join(f"{k}={_fmt(v)}" for k, v in sp["attrs"].items())
-        print(f"  {sp['species']}  ({sp['ndim']}-D, momentum as {sp['momentum']}"
+        in_file = f"'{sp['name_in_file']}' in the file, " if sp["name_in_file"] != sp["species"] else ""
+        print(f"  {sp['species']}  ({in_file}{sp['ndim']}-D, momentum as {sp['momentum']}"
               f"{', key ' + '+'.join(sp['key']) if sp['key'] else ', no particle key'}"
               f"{', ' + attrs if attrs else ''})")
         width = max(len(c["name"]) for c in sp["columns"]) if sp["columns"] else 4
         for c in sp["columns"]:
             role = c["role"] or "-"
             unit = f"[{c['unit']}]" if c["unit"] else ""
-            print(f"    {c['name']:<{width}}  {role:<7} {unit}")
+            guess = "  (guessed from the name)" if c["guessed"] else ""
+            print(f"    {c['name']:<{width}}  {role:<7} {unit}{guess}".rstrip())
+
     print()
     names = [sp["species"] for sp in info["species"]]
     meta_keys = sorted({k for s in snaps for k in s["meta"]})

@@ -16,6 +16,7 @@ import socket
 import sys
 from urllib.parse import urlencode
 
+from ..core import interrupt
 from ..core.context import AuditContext
 from ..core.errors import OptionError
 from ..core.run import Run
@@ -225,6 +226,10 @@ def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
         for note in runs[ctx_name].ctx.notes:
             print(f"swarmaudit: {ctx_name}: {note}", file=sys.stderr, flush=True)
     print("swarmaudit: press Ctrl-C to stop", flush=True)
+    # the server library puts its own SIGINT handler in ours' place: Ctrl-C stops the loop and
+    # marks the interrupt, so the command ends like every other one (exit 130)
+    loop = server.io_loop
+    interrupt.stop_with(lambda: loop.asyncio_loop.call_soon_threadsafe(loop.stop))
     server.start()
     if ready is not None:
         server.io_loop.add_callback(ready, local)

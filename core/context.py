@@ -8,6 +8,7 @@ import numpy as np
 
 from .errors import InputError
 from .layout import BlockLayout, bounding_layout
+from .roles import missing_roles_help
 from .run import Run
 
 
@@ -36,11 +37,17 @@ class AuditContext:
     def species_names(self) -> list[str]:
         names = self.run.species_names()
         if self.species:
-            missing = [s for s in self.species if s not in names]
+            wanted = [s.strip("/") for s in self.species]
+            if any(s not in names for s in wanted):
+                # a species may be named by its full group path in the file (particles/grain)
+                full = {f.long_name: k for snap in self.run for k, f in snap.species.items()
+                        if getattr(f, "long_name", None)}
+                wanted = [full.get(s, s) for s in wanted]
+            missing = [s for s in wanted if s not in names]
             if missing:
                 raise InputError(self.run.source, f"no species {', '.join(missing)} in this run",
                                  f"species are: {', '.join(names)}")
-            return [s for s in names if s in self.species]
+            return [s for s in names if s in wanted]
         return names
 
     def _find_sidecar(self):
@@ -64,6 +71,10 @@ class AuditContext:
             first = self.run[0]
             frames = [f for f in first.species.values() if f.ndim > 0 and f.length > 0]
             if not frames:
+                unplaced = [f for f in first.species.values() if f.length > 0]
+                if unplaced:        # particles, but no column was taken for a position
+                    f = unplaced[0]
+                    raise InputError(first.path, *missing_roles_help("position", f.columns, f.roles.values()))
                 raise InputError(first.path, "has no particles with positions to place a layout around",
                                  "give --domain, --cells and --blocks")
             d = frames[0].ndim

@@ -35,8 +35,11 @@ class Frame:
                  attrs: Mapping[str, object] | None = None,
                  source: str | None = None,
                  role_map: RoleMap | None = None,
-                 cache: bool = True):
+                 cache: bool = True,
+                 long_name: str | None = None):
         self.species = species
+        # the species' full name in its file (``particles/grain`` for species ``grain``), if longer
+        self.long_name = long_name
         self.length = int(length)
         self._loaders = {k: as_column(v) for k, v in loaders.items()}
         self.units = dict(units or {})
@@ -95,7 +98,8 @@ class Frame:
     def with_role_map(self, role_map: RoleMap) -> "Frame":
         """The same columns seen through another role map (shares loaders, not cache)."""
         f = Frame(self.species, self.length, self._loaders, units=self.units, attrs=self.attrs,
-                  source=self.source, role_map=role_map, cache=self._cache_enabled)
+                  source=self.source, role_map=role_map, cache=self._cache_enabled,
+                  long_name=self.long_name)
         f.parts, f.part_ranks = self.parts, self.part_ranks
         return f
 
@@ -107,7 +111,7 @@ class Frame:
                              f"{', '.join(repr(m) for m in missing)}")
         f = Frame(self.species, self.length, {c: self._loaders[c] for c in columns},
                   units=self.units, attrs=self.attrs, source=self.source,
-                  role_map=self.role_map, cache=self._cache_enabled)
+                  role_map=self.role_map, cache=self._cache_enabled, long_name=self.long_name)
         f.parts, f.part_ranks = self.parts, self.part_ranks
         return f
 
@@ -117,6 +121,11 @@ class Frame:
         if self._roles is None:
             self._roles = self.role_map.resolve(self.columns)
         return self._roles
+
+    @property
+    def guessed_roles(self) -> set[str]:
+        """Roles taken from a less sure column name (``xyz/x``, ``hash``): shown as guesses."""
+        return self.role_map.resolve_detailed(self.columns)[1]
 
     def column_for(self, role: str) -> str | None:
         return self.roles.get(role)
@@ -207,7 +216,8 @@ def concat_frames(parts: list[Frame], *, species: str, rank_values=None, source=
             attrs.setdefault(k, v)
     joined = Frame(species, total, loaders, units=units, attrs=attrs,
                    source=source or (parts[0].source if parts else None),
-                   role_map=parts[0].role_map if parts else None)
+                   role_map=parts[0].role_map if parts else None,
+                   long_name=parts[0].long_name if parts else None)
     joined.parts = list(parts)
     joined.part_ranks = None if rank_values is None else [int(r) for r in rank_values]
     return joined

@@ -55,6 +55,21 @@ def _on_sigint(signum, frame):
 _next_hook = sys.unraisablehook
 
 
+def stop_with(stop) -> None:
+    """From now on Ctrl-C sets the flag and calls ``stop()`` instead of raising.
+
+    For an event loop (the server), where an exception raised inside one of its
+    callbacks would be caught and logged by the loop, not end it; and for code that
+    replaced our handler with its own. ``stop`` runs in the signal handler: it must
+    only schedule the stop (``loop.call_soon_threadsafe``). Main thread only.
+    """
+    def handler(signum, frame):
+        _flag.set()
+        stop()
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGINT, handler)
+
+
 def _quiet_unraisable(unraisable):
     # an interrupt raised inside a callback Python cannot propagate from: the flag carries it
     if isinstance(unraisable.exc_value, KeyboardInterrupt):

@@ -54,6 +54,56 @@ _SCALAR_NAMES = {
 }
 
 
+# Names some codes give their vectors that say less surely what they are (``xyz``, ``vxvyvz``):
+# only the components of one vector count, numbered or lettered from the first axis (an (N, 3)
+# array ``xyz`` read as ``xyz/x``, ``xyz/y``, ``xyz/z``, or CSV columns ``xyz:0``, ``xyz:1``...),
+# only when no common name plays a role of the same kind, and inspect shows them as guesses.
+_GUESSED_VECTOR_STEMS = {
+    "xyz": POSITION_ROLES, "xy": POSITION_ROLES, "x": POSITION_ROLES, "point": POSITION_ROLES,
+    "points": POSITION_ROLES, "location": POSITION_ROLES, "locations": POSITION_ROLES,
+    "vxvyvz": VELOCITY_ROLES, "vxvy": VELOCITY_ROLES, "vxyz": VELOCITY_ROLES, "vxy": VELOCITY_ROLES,
+    "vels": VELOCITY_ROLES,
+}
+_GUESSED_SCALAR_NAMES = {
+    "id": ("hash", "hashes", "uid", "particle_hash"),
+}
+# how a component is written after the stem: "/x" "/0" "_0" "[0]" ":0" ".0"
+_COMPONENT = re.compile(r"^(?P<stem>.+?)(?:/(?P<axis>[xyz])|(?:/|_|\[|:|\.)(?P<index>\d)\]?)$")
+#: roles of one kind: a guess never mixes with a common name or a user's word of the same kind
+_KINDS = (POSITION_ROLES, VELOCITY_ROLES + PROPER_VELOCITY_ROLES + MOMENTUM_ROLES)
+
+
+def _kind(role: str) -> tuple[str, ...]:
+    return next((k for k in _KINDS if role in k), (role,))
+
+
+@functools.lru_cache(maxsize=1024)
+def _guessed_roles(columns: tuple[str, ...]) -> dict[str, str]:
+    """role -> column from the less sure names (see ``_GUESSED_VECTOR_STEMS``)."""
+    found: dict[str, str] = {}
+    vectors: dict[tuple, dict[int, str]] = {}
+    for name in columns:
+        n = _normalise(name)
+        for role, names in _GUESSED_SCALAR_NAMES.items():
+            if n in names and role not in found:
+                found[role] = name
+        m = _COMPONENT.match(n)
+        if m and m["stem"] in _GUESSED_VECTOR_STEMS:
+            form = "axis" if m["axis"] else n[len(m["stem"])]
+            axis = AXES.index(m["axis"]) if m["axis"] else int(m["index"])
+            vectors.setdefault((m["stem"], form), {}).setdefault(axis, name)
+    for (stem, _), comps in vectors.items():
+        # clearly a vector: two or three components, from the first axis on
+        if not (2 <= len(comps) <= 3 and sorted(comps) == list(range(len(comps)))):
+            continue
+        roles = _GUESSED_VECTOR_STEMS[stem]
+        if any(r in found for r in _kind(roles[0])):
+            continue
+        for axis, name in comps.items():
+            found[roles[axis]] = name
+    return found
+
+
 def _normalise(name: str) -> str:
     return name.strip().lower().replace("-", "_").replace(" ", "_")
 
@@ -113,20 +163,33 @@ class RoleMap:
 
     def resolve(self, columns) -> dict[str, str]:
         """Map role -> column name for the given column names."""
+        return self.resolve_detailed(columns)[0]
+
+    def resolve_detailed(self, columns) -> tuple[dict[str, str], set[str]]:
+        """(role -> column name, the roles taken from a less sure name: guesses to show as such)."""
         columns = list(columns)
         found: dict[str, str] = {}
         for name in columns:
             role = _guess(name)
             if role and role not in found:
                 found[role] = name
+        guessed = set()
+        sure = set(found) | {r for role in self.overrides for r in _kind(role)}
+        for role, name in _guessed_roles(tuple(columns)).items():
+            # a guess fills a kind of role (positions, velocities...) nothing surer fills
+            if not any(r in sure for r in _kind(role)):
+                found.setdefault(role, name)
+                guessed.add(role)
         # a user's word beats a guess; a column taken by an override loses its guessed role
         for role, name in self.overrides.items():
             if name in columns:
                 for other, col in list(found.items()):
                     if col == name and other != role:
                         del found[other]
+                        guessed.discard(other)
                 found[role] = name
-        return found
+                guessed.discard(role)
+        return found, guessed
 
     def key_columns(self, columns, roles: dict[str, str]) -> tuple[str, ...] | None:
         """Columns that together identify a particle across snapshots, or None."""
@@ -135,6 +198,39 @@ class RoleMap:
         if "id" in roles:
             return (roles["id"],)
         return None
+
+
+def missing_roles_help(kind: str, columns, taken=()) -> tuple[str, str]:
+    """(problem, hint) for a frame with no column recognised as a ``kind`` ("position" or
+    "velocity"): the columns found and the exact ``--role`` options and roles-file lines to write.
+
+    The suggestion is the first unassigned vector (``name/x``, ``name_0``...), else the first
+    unassigned columns; the user checks and edits it, so it only needs to show the shape.
+    """
+    roles = POSITION_ROLES if kind == "position" else VELOCITY_ROLES
+    columns = list(columns)
+    free = [c for c in columns if c not in set(taken)]
+    vectors: dict[str, dict[int, str]] = {}
+    for name in free:
+        m = _COMPONENT.match(_normalise(name))
+        if m:
+            axis = AXES.index(m["axis"]) if m["axis"] else int(m["index"])
+            vectors.setdefault(m["stem"], {}).setdefault(axis, name)
+    vector = next((v for v in vectors.values()
+                   if 2 <= len(v) <= 3 and sorted(v) == list(range(len(v)))), None)
+    if vector:
+        pick = [vector[a] for a in sorted(vector)]
+    else:
+        pick = free[:3] or ["NAME"]
+    pairs = list(zip(roles, pick))
+    shown = ", ".join(columns) if len(columns) <= 24 else ", ".join(columns[:24]) + ", ..."
+    problem = (f"no column was recognised as a particle {kind} "
+               f"(the columns are: {shown or 'none'})")
+    hint = ("give " + " ".join(f"--role {r}={c}" for r, c in pairs) + " if those are the "
+            + {"position": "positions"}.get(kind, "velocities")
+            + ", or write the lines [roles], " + ", ".join(f'{r} = "{c}"' for r, c in pairs)
+            + " in a roles file given with --roles FILE.toml")
+    return problem, hint
 
 
 def _read_map_file(path):

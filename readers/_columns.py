@@ -97,6 +97,7 @@ class Table:
         self.units: dict[str, str] = {}
         self.attrs: dict[str, float] = {}
         self.lengths: dict[str, int] = {}   # source (dataset/key) -> rows
+        self.long_name: str | None = None   # the species' full name when it is shown shorter
 
     def add(self, name: str, length: int, loader, source: str, unit: str | None = None) -> None:
         self.loaders[name] = loader
@@ -132,11 +133,35 @@ def make_snapshot(path, tables: dict[str, Table], *, columns=None, step=None, ti
     for name, t in tables.items():
         n = t.length(path)
         loaders = t.loaders if columns is None else {c: t.loaders[c] for c in wanted if c in t.loaders}
-        species[name] = Frame(name, n, loaders, units=t.units, attrs=t.attrs, source=str(path))
+        species[name] = Frame(name, n, loaders, units=t.units, attrs=t.attrs, source=str(path),
+                              long_name=t.long_name)
         if n == 0:
             warnings.append(f"species '{name}' has no particles in this snapshot")
     return Snapshot(str(path), species, step=step, time=time, meta=dict(meta or {}), layout=layout,
                     warnings=warnings, parts=[str(path)], time_unit=time_unit)
+
+
+def short_species_names(tables: dict[str, Table]) -> dict[str, Table]:
+    """Species named by group paths that all sit in one container (``particles/grain``,
+    ``particles/gas``) are shown by their own names (``grain``, ``gas``); the full
+    path is kept as the table's ``long_name`` (``--species`` takes either)."""
+    paths = {name: name.split("/") for name in tables}
+    if not paths or any(len(p) < 2 for p in paths.values()):
+        return tables
+    common = 0
+    parts = list(paths.values())
+    while all(len(p) > common + 1 and p[common] == parts[0][common] for p in parts):
+        common += 1
+    if not common:
+        return tables
+    short = {name: "/".join(p[common:]) for name, p in paths.items()}
+    if len(set(short.values())) < len(short):
+        return tables
+    out = {}
+    for name, t in tables.items():
+        t.long_name = name
+        out[short[name]] = t
+    return out
 
 
 def scalar_value(value):

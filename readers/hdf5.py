@@ -34,7 +34,8 @@ from ..core.frame import Snapshot
 from ..core.column import Column, read_fully
 from ..core.roles import _VECTOR_STEMS
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
-                       make_snapshot, native, reject_non_numeric, scalar_value, split_scalars, take_field)
+                       make_snapshot, native, reject_non_numeric, scalar_value, short_species_names,
+                       split_scalars, take_field)
 
 SIGNATURE = b"\x89HDF\r\n\x1a\n"
 #: names of groups whose members are the components of one vector (``position/x``)
@@ -679,5 +680,6 @@ class HDF5Reader:
             raise InputError(path, "its metadata does not fit in memory (the file may be damaged)") from None
         except H5_ERRORS as exc:
             raise InputError(path, _problem(exc)) from None
-        return make_snapshot(path, scan.tables, columns=columns, step=step, time=time, meta=meta,
+        return make_snapshot(path, short_species_names(scan.tables), columns=columns, step=step,
+                             time=time, meta=meta,
                              layout=scan.layout, warnings=scan.warnings, time_unit=time_unit)

@@ -96,6 +96,12 @@ def build_parser() -> argparse.ArgumentParser:
     _physics_options(s)
     _serve_options(s)
 
+    m = sub.add_parser("movie", help="a movie of the space or phase-space view over the run, "
+                                     "one colour scale for every frame (.mp4, .gif, .webp)")
+    add_run_options(m)
+    from .movie import add_movie_options
+    add_movie_options(m)
+
     d = sub.add_parser("demo", help="write the demo runs and serve them")
     d.add_argument("--out", default="swarmaudit-demo", metavar="DIR", help="where to write (default ./swarmaudit-demo)")
     d.add_argument("--particles", type=int, default=None, metavar="N",
@@ -174,6 +180,9 @@ def _dispatch(args) -> int:
     if args.command == "serve":
         from .serve import run_serve
         return run_serve(ctx, args)
+    if args.command == "movie":
+        from .movie import run_movie
+        return run_movie(ctx, args)
     raise AssertionError(args.command)
 
 

@@ -25,8 +25,12 @@ def use_headless_matplotlib() -> None:
 _MARGIN = 0.02
 
 
-def render_figure(obj, width: int, height: int, dpi: int, fontscale: float = 1.0):
-    """The matplotlib Figure of a holoviews object, sized width x height pixels at dpi."""
+def render_figure(obj, width: int, height: int, dpi: int, fontscale: float = 1.0, norm=None):
+    """The matplotlib Figure of a holoviews object, sized width x height pixels at dpi.
+
+    ``norm`` (a matplotlib Normalize) replaces the colour scale of the
+    figure's image and colour bar: a movie's frames share one scale that way.
+    """
     use_headless_matplotlib()
     import holoviews as hv
     from .figures import ensure_backends
@@ -41,6 +45,8 @@ def render_figure(obj, width: int, height: int, dpi: int, fontscale: float = 1.0
         warnings.filterwarnings("ignore", message="All-NaN slice encountered")
         fig = hv.render(obj, backend="matplotlib")
     _forget_colorbars()
+    if norm is not None:
+        set_image_norm(fig, norm)
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     if not isinstance(fig.canvas, FigureCanvasAgg):
         FigureCanvasAgg(fig)
@@ -48,6 +54,29 @@ def render_figure(obj, width: int, height: int, dpi: int, fontscale: float = 1.0
     fig.set_size_inches(*inches, forward=False)
     _fit(fig)
     return fig
+
+
+def set_image_norm(fig, norm) -> None:
+    """Colour every image of ``fig`` (and its colour bar) with ``norm``."""
+    for ax in fig.axes:
+        for im in ax.get_images():
+            im.set_norm(norm)
+            bar = getattr(im, "colorbar", None)
+            if bar is not None:
+                bar.update_normal(im)
+
+
+def figure_pixels(fig) -> np.ndarray:
+    """The figure drawn on its Agg canvas, as an (height, width, 3) uint8 RGB array.
+
+    The same pixels ``save_png`` writes (on white, as it saves).
+    """
+    fig.patch.set_facecolor("white")
+    fig.canvas.draw()
+    rgba = np.asarray(fig.canvas.buffer_rgba())
+    rgb = rgba[..., :3].astype(np.float32)
+    alpha = rgba[..., 3:4].astype(np.float32) / 255.0
+    return np.round(rgb * alpha + 255.0 * (1.0 - alpha)).astype(np.uint8)
 
 
 def _forget_colorbars() -> None:
@@ -101,7 +130,7 @@ def _equalised_colorbar(fig, cax):
     """
     cbar = getattr(cax, "_colorbar", None)
     norm = getattr(cbar, "norm", None)
-    if norm is None or type(norm).__name__ != "EqHistNormalize":
+    if norm is None or not any(t.__name__ == "EqHistNormalize" for t in type(norm).__mro__):
         return cax
     from matplotlib.cm import ScalarMappable
     from matplotlib.colors import Normalize

@@ -10,6 +10,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from _need import need
+
 from _export_samples import LAYOUT_ARGS, snapshot_columns, write_npz_run
 import swarmaudit as sa
 from swarmaudit.app.cli import build_parser, main
@@ -162,7 +164,7 @@ def test_roles_keyword_is_the_role_option(tmp_path):
 
 def test_view_takes_the_link_state_names(sample):
     run = sample["run"]
-    pn = pytest.importorskip("panel")
+    pn = need("panel")
     v = run.view("space", snapshot=1, scaling="log", cmap="viridis")
     assert isinstance(v, pn.viewable.Viewable)
     assert isinstance(run.view("totals", rtol=1e-2), pn.viewable.Viewable)

@@ -20,6 +20,8 @@ import time
 import numpy as np
 import pytest
 
+from _need import need, need_that
+
 CHROMIUM = "/usr/bin/chromium"
 CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                  "--disable-background-networking", "--disable-component-update", "--disable-sync"]
@@ -29,9 +31,7 @@ def _browser_or_fail(p):
     try:
         return p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
     except Exception as exc:     # missing binary or launch failure
-        if os.environ.get("CI"):
-            pytest.fail(f"headless Chromium could not start under CI: {exc}")
-        pytest.skip(f"headless Chromium not available: {exc}")
+        need_that(False, f"headless Chromium could not start: {exc}")
 
 
 def new_page(browser, errors: list, width=1600, height=1250):
@@ -154,10 +154,7 @@ def server(tmp_path_factory):
 
 
 def test_dashboard_in_chromium(server):
-    if os.environ.get("CI"):
-        import playwright.sync_api as sync_api     # missing under CI is a failure, not a skip
-    else:
-        sync_api = pytest.importorskip("playwright.sync_api")
+    sync_api = need("playwright.sync_api")
     errors = []
     with sync_api.sync_playwright() as p:
         browser = _browser_or_fail(p)

@@ -219,7 +219,6 @@ def test_demo_command_without_serving(demo, capsys):
 
 
 def test_check_gate_passes_the_pic_run_and_fails_the_leaking_duct(demo, capsys):
-    pytest.importorskip("swarmaudit.app.check")
     from swarmaudit.app.cli import main
     _, paths, _ = demo
     assert main(["check", paths["two_stream"], "--rtol", "1e-3"]) == 0

@@ -4,6 +4,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from _need import need_that
+
 from swarmaudit.core import _fastassign
 from swarmaudit.core.layout import BlockLayout, assign_blocks, regular_layout
 from swarmaudit.diagnostics.census import block_census, imbalance, level_census, rank_census
@@ -93,8 +95,7 @@ def _random_points(n, rng, d=2):
 
 @pytest.mark.parametrize("d", [1, 2, 3])
 def test_compiled_assignment_identical_to_numpy(monkeypatch, d):
-    if not _fastassign.available:
-        pytest.skip("numba not installed")
+    need_that(_fastassign.available, "numba not installed")
     rng = np.random.default_rng(7)
     pts = _random_points(_fastassign.MIN_PARTICLES + 1000, rng, d)
     # exact block edges and the domain's upper bound are the interesting values
@@ -108,8 +109,7 @@ def test_compiled_assignment_identical_to_numpy(monkeypatch, d):
 
 
 def test_compiled_assignment_identical_on_refined_layout(monkeypatch):
-    if not _fastassign.available:
-        pytest.skip("numba not installed")
+    need_that(_fastassign.available, "numba not installed")
     lay = BlockLayout([[0, 0], [0.5, 0], [0, 0.5], [0.5, 0.5], [0.25, 0.25], [0.5, 0.5]],
                       [[0.5, 0.5], [1, 0.5], [0.5, 1], [1, 1], [0.5, 0.5], [0.625, 0.75]],
                       [0, 0, 0, 0, 1, 2], [0, 0, 1, 1, 2, 3], [0, 0], [1, 1], [8, 8], (),

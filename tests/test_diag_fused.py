@@ -16,11 +16,13 @@ import h5py
 import numpy as np
 import pytest
 
+from _need import need_that
+
 from _audit_runs import frame
 from swarmaudit.diagnostics import _kernels, drift
 from swarmaudit.readers.hdf5 import HDF5Reader
 
-pytestmark = pytest.mark.skipif(not _kernels.available, reason="numba is not installed")
+need_that(_kernels.available, "numba is not installed", module_level=True)
 
 RTOL = 1e-12
 
@@ -300,8 +302,7 @@ def test_a_damaged_later_snapshot_does_not_fail_an_earlier_one(tmp_path, monkeyp
 
 def test_compiled_file_reads_equal_the_piece_path(tmp_path, monkeypatch):
     from swarmaudit.audit.tables import _held_open
-    if not _kernels.can_read_files:
-        pytest.skip("no positioned reads on this platform")
+    need_that(_kernels.can_read_files, "no positioned reads on this platform")
     rng = np.random.default_rng(5)
     n = 20_011
     path = tmp_path / "s.h5"
@@ -333,8 +334,7 @@ def test_compiled_file_reads_equal_the_piece_path(tmp_path, monkeypatch):
 def test_a_file_cut_short_under_the_compiled_reader_is_a_clear_error(tmp_path):
     from swarmaudit.audit.tables import _held_open
     from swarmaudit.core.errors import InputError
-    if not _kernels.can_read_files:
-        pytest.skip("no positioned reads on this platform")
+    need_that(_kernels.can_read_files, "no positioned reads on this platform")
     path = tmp_path / "s.h5"
     with h5py.File(path, "w") as fh:
         g = fh.create_group("e")

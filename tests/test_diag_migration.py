@@ -3,6 +3,8 @@
 import numpy as np
 import pandas as pd
 import pytest
+
+from _need import need_that
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -101,8 +103,7 @@ def test_duplicate_ids_raise_with_count(side):
 
 
 def test_compiled_matching_identical(monkeypatch):
-    if not _kernels.available:
-        pytest.skip("numba not installed")
+    need_that(_kernels.available, "numba not installed")
     rng = np.random.default_rng(9)
     a, b = _runs(rng, _kernels.MIN_SIZE + 500)
     fast = match_keys(a, b)
@@ -203,8 +204,7 @@ def test_migrate_counts_created_and_lost_and_uses_rank_columns():
 
 
 def test_compiled_displacement_identical(monkeypatch):
-    if not _kernels.available:
-        pytest.skip("numba not installed")
+    need_that(_kernels.available, "numba not installed")
     from swarmaudit.diagnostics.migration import matched_displacement
     rng = np.random.default_rng(2)
     n = _kernels.MIN_SIZE + 100
@@ -222,8 +222,7 @@ def test_compiled_displacement_identical(monkeypatch):
 
 
 def test_compiled_migrate_identical(monkeypatch):
-    if not _kernels.available:
-        pytest.skip("numba not installed")
+    need_that(_kernels.available, "numba not installed")
     rng = np.random.default_rng(12)
     lay = regular_layout([0, 1, 0, 1], [32, 32], [4, 4], periodic=("y",), ranks=3)
     a, b = _runs(rng, _kernels.MIN_SIZE + 300)

@@ -16,6 +16,8 @@ from html.parser import HTMLParser
 import numpy as np
 import pandas as pd
 import pytest
+
+from _need import need
 from PIL import Image
 
 from _export_samples import LAYOUT_ARGS, snapshot_columns, write_npz_run
@@ -198,12 +200,7 @@ def test_report_is_self_contained_and_embeds_every_figure(exported):
 
 
 def test_report_shows_every_figure_in_headless_chromium(exported):
-    try:
-        from playwright.sync_api import sync_playwright
-    except ImportError:
-        if os.environ.get("CI"):
-            pytest.fail("playwright is not installed (needed in CI)")
-        pytest.skip("playwright is not installed")
+    sync_playwright = need("playwright.sync_api").sync_playwright
     from test_browser_e2e import _browser_or_fail   # fails under CI when Chromium cannot start
     requests = []
     with sync_playwright() as pw:

@@ -15,11 +15,13 @@ import weakref
 
 import pytest
 
+from _need import need_that
+
 from swarmaudit.core import interrupt
 from swarmaudit.engine.dask_backend import DaskEngine
 
-pytestmark = pytest.mark.skipif(threading.current_thread() is not threading.main_thread(),
-                                reason="signal handlers can only be installed from the main thread")
+need_that(threading.current_thread() is threading.main_thread(),
+          "signal handlers can only be installed from the main thread", module_level=True)
 
 
 @pytest.fixture

@@ -18,6 +18,8 @@ import h5py
 import numpy as np
 import pytest
 
+from _need import need
+
 from swarmaudit.app.cli import main
 from swarmaudit.core.context import AuditContext
 from swarmaudit.core.errors import InputError
@@ -344,7 +346,7 @@ def test_rescan_of_a_run_without_folders_does_nothing():
 # in a real browser ----------------------------------------------------------------------------
 
 def test_the_slider_grows_in_chromium(tmp_path):
-    sync_api = pytest.importorskip("playwright.sync_api")
+    sync_api = need("playwright.sync_api")
     from test_browser_e2e import _browser_or_fail, new_page, start_server, wait_drawn
     run = tmp_path / "live"
     run.mkdir()

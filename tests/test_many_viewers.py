@@ -19,6 +19,8 @@ from types import SimpleNamespace
 
 import pytest
 
+from _need import need
+
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", "bench"))
 
 SESSIONS = 8
@@ -86,10 +88,7 @@ def _background_work_done(timeout=60):
 
 
 def test_eight_sessions_share_one_copy(server):
-    if os.environ.get("CI"):
-        import playwright.async_api  # noqa: F401  (missing under CI is a failure, not a skip)
-    else:
-        pytest.importorskip("playwright.async_api")
+    need("playwright.async_api")
     import psutil
     from bench_viewers import drive_sessions
     url, reads, served = server

@@ -21,11 +21,13 @@ import h5py
 import numpy as np
 import pytest
 
+from _need import need_that
+
 N = 2_000_000
 COLUMNS = ("x", "y", "z", "vx", "vy", "vz", "weight", "charge")
 
-pytestmark = pytest.mark.skipif(not os.path.exists("/proc/self/clear_refs"),
-                                reason="needs Linux /proc to reset the peak-memory mark")
+need_that(os.path.exists("/proc/self/clear_refs"), "needs Linux /proc to reset the peak-memory mark",
+          module_level=True)
 
 
 @pytest.fixture(scope="module")

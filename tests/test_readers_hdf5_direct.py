@@ -14,6 +14,8 @@ import h5py
 import numpy as np
 import pytest
 
+from _need import need_that
+
 from swarmaudit.audit.tables import _held_open
 from swarmaudit.core.errors import InputError
 from swarmaudit.readers import hdf5
@@ -105,8 +107,8 @@ def test_a_hold_shares_one_descriptor_and_closes_it(tmp_path):
     assert path not in hdf5._fds
 
 
-@pytest.mark.skipif(not os.path.isdir("/proc/self/fd"), reason="needs /proc")
 def test_opening_and_reading_leave_no_file_open(tmp_path):
+    need_that(os.path.isdir("/proc/self/fd"), "needs /proc to count open files")
     paths = [str(_write(tmp_path / f"s{i}.h5")) for i in range(5)]
     before = len(os.listdir("/proc/self/fd"))
     frames = [HDF5Reader().open(p).species["beam"] for p in paths]

@@ -14,6 +14,8 @@ from __future__ import annotations
 import h5py
 import numpy as np
 import pytest
+
+from _need import need_that
 import scipy.constants as sc
 
 from _audit_runs import frame
@@ -70,8 +72,8 @@ def test_one_electron_at_point_eight_c():
 @pytest.mark.parametrize("kind", ["v", "u", "p"])
 @pytest.mark.parametrize("compiled", [False, True])
 def test_momentum_and_energy_of_a_beam(kind, compiled):
-    if compiled and not _kernels.available:
-        pytest.skip("numba is not installed")
+    if compiled:
+        need_that(_kernels.available, "numba is not installed")
     rng = np.random.default_rng([ord(kind), 3])
     v, w = _beam(4000, rng)
     cols, gamma = _columns(kind, v, w)

@@ -23,8 +23,9 @@ from ..diagnostics.migration import DuplicateKeyError, MigrationResult, migrate
 from ..diagnostics.rebalance import rebalance_whatif
 from .cache import cached_reduction, layout_fingerprint
 from ..core.context import AuditContext
-from ..engine.dask_backend import migration_if_partitioned, totals_if_partitioned
-from ..engine.reduce import reduce
+from ..engine.dask_backend import migration_if_partitioned
+from ..engine.pieces import read_in_pieces
+from ..engine.reduce import reduce, reduce_many
 from ..core.errors import OptionError
 from ..core.frame import is_clock_scalar, transient_columns
 from ..core.layout import assign_blocks
@@ -201,7 +202,11 @@ def _in_pieces(ctx: AuditContext, j: int) -> bool:
     """Whether snapshot ``j``'s totals keep no full column of it in memory (see TOTALS_AHEAD)."""
     try:
         snap = ctx.run[j]
-        return all(_drift.totals_read_in_pieces(snap.species[s]) for s in _present_species(ctx, j))
+        for s in _present_species(ctx, j):
+            frame = snap.species[s]
+            if not read_in_pieces(frame, _drift.Totals.of_frame(frame).columns):
+                return False
+        return True
     except Exception:   # SwarmAuditError or otherwise: it is computed (and reported) on its own
         return False
 
@@ -216,24 +221,20 @@ def _known_totals(ctx: AuditContext, j: int) -> bool:
 
 
 def _totals_of(ctx: AuditContext, indices) -> dict:
-    """``{snapshot: {species: (values, nonfinite)}}``; the in-memory frames of all of them reduced
-    together (:func:`diagnostics.drift.snapshot_totals_many`)."""
+    """``{snapshot: {species: (values, nonfinite)}}``: the totals of all of them reduced together
+    (their pieces share the workers, :func:`engine.reduce.reduce_many`)."""
     out: dict = {i: {} for i in indices}
-    together = []
+    jobs, keys = [], []
     for i in indices:
         snap = ctx.run[i]
         for s in _present_species(ctx, i):
             frame = snap.species[s]
-            got = totals_if_partitioned(ctx, frame)
-            if got is not None:
-                out[i][s] = tuple(got)
-            else:
-                out[i][s] = None
-                together.append((i, s, frame))
-    frames = [f for _, _, f in together]
+            jobs.append((_drift.Totals.of_frame(frame, ctx.relativistic, ctx.c), frame))
+            keys.append((i, s))
+    frames = [f for _, f in jobs]
     with _transient(frames), _held_open(*frames):
-        results = _drift.snapshot_totals_many(frames, ctx.relativistic, ctx.c)
-    for (i, s, _), got in zip(together, results):
+        results = reduce_many(jobs, ctx)
+    for (i, s), got in zip(keys, results):
         out[i][s] = got
     return out
 

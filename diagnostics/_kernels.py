@@ -496,6 +496,7 @@ class TotalSums:
         self.acc = np.zeros(8)
         self.comp = np.zeros(8)
         self.bad = np.zeros(8, np.int64)
+        self.rows = 0
 
     def result(self) -> tuple[np.ndarray, np.ndarray]:
         return self.acc + self.comp, self.bad
@@ -513,7 +514,7 @@ class TotalSums:
 
 
 def file_piece_sums(bounds, sources, kind: str, relativistic: bool, c: float, want_ke: bool,
-                    buffer) -> list["TotalSums"] | None:
+                    buffer, into: "TotalSums | None" = None) -> list["TotalSums"] | None:
     """The totals of row ranges ``bounds`` (``[(start, stop), ...]``) read straight from files.
 
     ``sources`` maps ``weight``, ``charge``, ``mass`` to ``(fd, offset, dtype)``
@@ -524,6 +525,8 @@ def file_piece_sums(bounds, sources, kind: str, relativistic: bool, c: float, wa
     Returns one :class:`TotalSums` per range (what :func:`snapshot_sums` gives for
     the same rows in memory, bit for bit), or None when a file gave fewer bytes
     than expected (it changed: the caller reads through the usual path).
+    With ``into`` (one range only) the sums go on from that one's, as
+    :func:`snapshot_sums` ``into=`` does; ``into`` is left as it was on None.
     """
     fds = np.zeros(6, np.int32)
     offs = np.zeros(6, np.int64)
@@ -550,7 +553,12 @@ def file_piece_sums(bounds, sources, kind: str, relativistic: bool, c: float, wa
     cols = (cols + [cols[0]] * 3)[:3]
     (w, sw), (q, sq), (m, sm) = arrays
     k = len(bounds)
-    acc, comp, bad = np.zeros((k, 8)), np.zeros((k, 8)), np.zeros((k, 8), np.int64)
+    if into is not None:
+        if k != 1:
+            raise ValueError("into= takes one row range")
+        acc, comp, bad = into.acc[None, :].copy(), into.comp[None, :].copy(), into.bad[None, :].copy()
+    else:
+        acc, comp, bad = np.zeros((k, 8)), np.zeros((k, 8)), np.zeros((k, 8), np.int64)
     code = {"v": 0, "u": 1, "p": 2}[kind]
     status = _get("totals_file")(fds, offs, sizes, w, sw, q, sq, m, sm, cols[0], cols[1], cols[2], nc,
                                  sources["charge"] is not None, bool(want_ke and nc), code,
@@ -558,6 +566,9 @@ def file_piece_sums(bounds, sources, kind: str, relativistic: bool, c: float, wa
                                  acc, comp, bad)
     if status:
         return None
+    if into is not None:
+        into.acc[:], into.comp[:], into.bad[:] = acc[0], comp[0], bad[0]
+        return [into]
     out = []
     for p in range(k):
         t = TotalSums()

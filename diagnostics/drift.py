@@ -10,16 +10,13 @@ values are left out of a total and counted, never propagated silently.
 from __future__ import annotations
 
 import math
-import os
 import threading
-from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
 
-from ..core import interrupt
-from ..core.errors import InputError
 from . import _kernels
+from .accumulate import Accumulator, Piece, fold
 
 #: quantities of one species of one snapshot, in table order
 PARTICLE_QUANTITIES = ("count", "weight", "charge", "momentum_x", "momentum_y", "momentum_z",
@@ -121,202 +118,137 @@ def kinetic_energy(mass, weight, components, kind: str = "v", relativistic: bool
     return (total, bad) if return_nonfinite else total
 
 
-def _frame_mass(frame):
-    return frame.per_particle("mass", None)
+class Totals(Accumulator):
+    """The conserved totals of one frame: the one definition of every drift number.
 
+    State: running compensated sums (:class:`_kernels.TotalSums`) of the
+    :data:`_kernels.TOTAL_SLOTS` (weight, charge, Σ|w q|, momentum x/y/z,
+    Σ|momentum|, kinetic energy), their non-finite counts and the rows seen.
+    ``add`` reduces a piece by one compiled pass (``_kernels.snapshot_sums``;
+    straight from the file when every column's rows lie in a held file,
+    ``_kernels.file_piece_sums``) or, for a small frame or without numba,
+    by numpy; the piece's sums join the state by Neumaier-compensated
+    addition, so cutting a frame differently changes a total only by rounding.
+    ``finish`` gives ``(values, nonfinite)`` dicts; quantities that cannot be
+    formed (no charge, no mass, no momentum column) are absent.
 
-def _totals_inputs(frame):
-    """What the totals read: weight, charge, mass, momentum kind, (axis, column name) pairs."""
-    w = frame.per_particle("weight", 1.0)
-    q = frame.per_particle("charge", None)
-    kind = frame.momentum_kind()
-    m = _frame_mass(frame)
-    axes = []
-    if kind and (kind == "p" or m is not None):
-        roles = {"v": ("vx", "vy", "vz"), "u": ("ux", "uy", "uz"), "p": ("px", "py", "pz")}[kind]
-        axes = [(axis, frame.column_for(r)) for axis, r in zip("xyz", roles)
-                if frame.column_for(r) is not None]
-    return w, q, m, kind, axes
-
-
-def snapshot_totals(frame, relativistic: bool = False, c=None, with_nonfinite: bool = False):
-    """Totals of one frame: count, weight, charge, momentum_x/y/z, kinetic_energy, scales.
-
-    Quantities that cannot be formed (no charge, no mass, no momentum column)
-    are absent. ``abs_momentum`` is Σ |w m v| (the momentum scale) and
-    ``abs_charge`` Σ |w q| (the charge scale when the net charge is zero).
-    With ``with_nonfinite`` returns ``(values, nonfinite)`` dicts.
-
-    Large frames are reduced by one compiled pass (:func:`fused_totals`);
-    small ones, or without numba, by numpy (:func:`numpy_totals`). The two
-    agree to rounding: both sum float64 terms formed the same way.
+    ``weight``, ``charge`` and ``mass`` are each ``(column name, None)`` or
+    ``(None, one value)`` (charge ``(None, None)``: none; mass ``(None, None)``:
+    none); ``axes`` the ``(axis, column)`` pairs of momentum-like columns of
+    ``kind`` ``'v'``, ``'u'`` or ``'p'``.
     """
-    n = len(frame)
-    if _kernels.available and n >= _kernels.TOTALS_MIN_SIZE:
-        values, bad = fused_totals(frame, relativistic, c)
-    else:
-        values, bad = numpy_totals(frame, relativistic, c)
-    return (values, bad) if with_nonfinite else values
 
+    reads_once = True
 
-def snapshot_totals_many(frames, relativistic: bool = False, c=None) -> list[tuple[dict, dict]]:
-    """``snapshot_totals(frame, ..., with_nonfinite=True)`` of each frame; the large ones together
-    (:func:`fused_totals_many`), so that their reading and reducing overlap."""
-    out: list = [None] * len(frames)
-    big = [i for i, f in enumerate(frames) if _kernels.available and len(f) >= _kernels.TOTALS_MIN_SIZE]
-    for i, got in zip(big, fused_totals_many([frames[i] for i in big], relativistic, c)):
-        out[i] = got
-    for i, f in enumerate(frames):
-        if out[i] is None:
-            out[i] = numpy_totals(f, relativistic, c)
-    return out
+    def __init__(self, weight, charge, mass, kind, axes, relativistic: bool = False, c=None,
+                 compiled: bool | None = None):
+        self.sources = {"weight": weight, "charge": charge, "mass": mass}
+        self.kind = kind
+        self.has_q = charge != (None, None)
+        self.has_m = mass != (None, None)
+        self.axes = list(axes) if kind and (kind == "p" or self.has_m) else []
+        self.relativistic = bool(relativistic)
+        self.c = c
+        self.cc = _speed_of_light(c) if self.relativistic and self.has_m and self.axes else 1.0
+        names = [nm for nm, _ in self.sources.values()] + [nm for _, nm in self.axes]
+        self.columns = tuple(nm for nm in dict.fromkeys(names) if nm is not None)
+        self.compiled = _kernels.available if compiled is None else bool(compiled and _kernels.available)
 
-
-def _source(frame, role: str, default):
-    """(column name, None) when a column plays ``role``, else (None, attribute or default); reads nothing."""
-    name = frame.column_for(role)
-    if name is not None:
-        return name, None
-    if role in frame.attrs and frame.attrs[role] is not None:
-        return None, float(frame.attrs[role])
-    return None, default
-
-
-def fused_totals(frame, relativistic: bool = False, c=None) -> tuple[dict, dict]:
-    """``(values, nonfinite)`` of :func:`snapshot_totals` in one compiled pass over the columns."""
-    return fused_totals_many([frame], relativistic, c)[0]
-
-
-def fused_totals_many(frames, relativistic: bool = False, c=None) -> list[tuple[dict, dict]]:
-    """:func:`fused_totals` of several frames, their pieces sharing the threads.
-
-    The pieces of every frame go to the threads as one queue, so reading and
-    reducing one frame's last pieces overlaps the next frame's first ones (no
-    wait between frames). Each frame's piece sums join in row order whoever
-    computed them: the same totals, bit for bit, as one frame at a time, with
-    one thread or several.
-    """
-    plans = [_TotalsPlan(f, relativistic, c) for f in frames]
-    parts: list[list] = [[None] * len(p.bounds) for p in plans]
-    queued = []
-    for i, p in enumerate(plans):
-        if not p.parallel:      # a loader may look its storage up on its first read
-            parts[i][0] = p.pieces([0])[0]
-        queued += [(i, k) for k in range(len(p.bounds)) if parts[i][k] is None]
-    pooled = [(i, k) for i, k in queued if plans[i].parallel]
-    serial = [(i, k) for i, k in queued if not plans[i].parallel]
-    workers = _piece_workers()
-    if len(pooled) > 1 and workers > 1:
-        # a few tasks per thread, each a run of one frame's pieces (one compiled call reads them)
-        size = max(1, len(pooled) // (TASKS_PER_WORKER * workers))
-        tasks, run = [], []
-        for ik in pooled:
-            if run and (ik[0] != run[0][0] or len(run) == size):
-                tasks.append(run)
-                run = []
-            run.append(ik)
-        tasks.append(run)
-        done = _piece_pool().map(lambda t: _checked_pieces(plans[t[0][0]], [k for _, k in t]), tasks)
-        for task, got in zip(tasks, done):
-            for (i, k), sums in zip(task, got):
-                parts[i][k] = sums
-    else:
-        serial = pooled + serial
-    for i, k in serial:
-        parts[i][k] = _checked_pieces(plans[i], [k])[0]
-    return [p.finish(got) for p, got in zip(plans, parts)]
-
-
-def _checked_pieces(plan, ks):
-    interrupt.check()       # Ctrl-C: the pool drains in one task's time
-    return plan.pieces(ks)
-
-
-#: tasks per thread when several frames' pieces are shared out: enough to even out the load
-TASKS_PER_WORKER = 4
-
-
-def totals_read_in_pieces(frame) -> bool:
-    """Whether the totals of ``frame`` keep no full column in memory: its columns are streamed in
-    pieces, are in memory already, or are short (a pass may then reduce several frames at once)."""
-    plan = _TotalsPlan(frame, False, None)
-    if plan.read.streamed or len(frame) <= CHUNK_ROWS:
-        return True
-    cache = getattr(frame, "_cache", {})
-    return all(nm in cache for nm in plan.names)
-
-
-class _TotalsPlan:
-    """What the compiled totals of one frame read, in which pieces, and how they are put together."""
-
-    def __init__(self, frame, relativistic: bool, c):
-        self.frame = frame
-        self.relativistic = relativistic
-        self.sources = {"weight": _source(frame, "weight", 1.0), "charge": _source(frame, "charge", None),
-                        "mass": _source(frame, "mass", None)}
-        kind = self.kind = frame.momentum_kind()
-        self.has_q = self.sources["charge"] != (None, None)
-        self.has_m = self.sources["mass"] != (None, None)
+    @classmethod
+    def of_frame(cls, frame, relativistic: bool = False, c=None, compiled: bool | None = None):
+        """The totals of ``frame``: weight, charge and mass from columns, else species attributes;
+        compiled for large frames (``_kernels.TOTALS_MIN_SIZE`` rows), numpy for small ones."""
+        kind = frame.momentum_kind()
         axes = []
-        if kind and (kind == "p" or self.has_m):
+        if kind:
             roles = {"v": ("vx", "vy", "vz"), "u": ("ux", "uy", "uz"), "p": ("px", "py", "pz")}[kind]
             axes = [(axis, frame.column_for(r)) for axis, r in zip("xyz", roles)
                     if frame.column_for(r) is not None]
-        self.axes = axes
-        self.cc = _speed_of_light(c) if relativistic and self.has_m and axes else 1.0
-        names = [nm for nm, _ in self.sources.values()] + [nm for _, nm in axes]
-        self.names = [nm for nm in dict.fromkeys(names) if nm is not None]
-        self.bounds, self.read, parallel = _row_pieces(frame, self.names)
-        self._parallel = parallel
-        self._files = None        # checked at the first piece (a hold may start after planning)
+        if compiled is None:
+            compiled = len(frame) >= _kernels.TOTALS_MIN_SIZE
+        return cls(_source(frame, "weight", 1.0), _source(frame, "charge", None),
+                   _source(frame, "mass", None), kind, axes, relativistic, c, compiled)
 
-    def _file_sources(self):
-        """What the compiled reader needs, when every column comes straight from a held file."""
-        if self._files is None:
-            self._files = False
-            if _kernels.can_read_files and self.read.streamed:
-                raw = {nm: self.frame.loader(nm).file_extent() for nm in self.names}
-                if all(r is not None for r in raw.values()):
-                    comps = [raw[nm] for _, nm in self.axes]
-                    if len({np.dtype(dt) for _, _, dt in comps}) <= 1:
-                        src = {r: (raw[nm] if nm is not None else v) for r, (nm, v) in self.sources.items()}
-                        src["components"] = comps
-                        self._files = src
-        return self._files
+    def start(self):
+        return _kernels.TotalSums()
 
-    @property
-    def parallel(self) -> bool:
-        return len(self.bounds) > 1 and bool(self._parallel)
+    def add(self, state, piece):
+        n = len(piece)
+        state.rows += n
+        if self.compiled and self._add_from_files(state, piece):
+            return state
+        got = {r: (piece[nm] if nm is not None else v) for r, (nm, v) in self.sources.items()}
+        comps = [piece[nm] for _, nm in self.axes]
+        if self.compiled:
+            _kernels.snapshot_sums(n, got["weight"], got["charge"], got["mass"], comps, self.kind or "v",
+                                   self.relativistic, self.cc, want_ke=self.has_m, into=state)
+        else:
+            state.add(self._numpy_sums(n, got["weight"], got["charge"], got["mass"], comps))
+        return state
 
-    def pieces(self, ks) -> list:
-        """The sums of pieces ``ks`` (one compiled call when the columns come from held files)."""
-        files = self._file_sources()
-        if files:
-            got = _kernels.file_piece_sums([self.bounds[k] for k in ks], files, self.kind or "v",
-                                           self.relativistic, self.cc, self.has_m,
-                                           lambda key, dt: _buffer("file " + key, dt, FILE_ROWS, FILE_ROWS))
-            if got is not None:
-                return got
-            # a file gave fewer bytes than its metadata said: the usual reads say why
-        return [self.piece(k) for k in ks]
+    def _add_from_files(self, state, piece) -> bool:
+        """The piece read and reduced by one compiled call, when its rows lie in held files."""
+        if not (_kernels.can_read_files and self.columns):
+            return False
+        raw = {nm: piece.source(nm) for nm in self.columns}
+        if any(r is None for r in raw.values()):
+            return False
+        comps = [raw[nm] for _, nm in self.axes]
+        if len({np.dtype(dt) for _, _, dt in comps}) > 1:
+            return False
+        src = {r: (raw[nm] if nm is not None else v) for r, (nm, v) in self.sources.items()}
+        src["components"] = comps
+        got = _kernels.file_piece_sums([(0, len(piece))], src, self.kind or "v", self.relativistic,
+                                       self.cc, self.has_m, _file_buffer, into=state)
+        # None: a file gave fewer bytes than its metadata said; the usual reads say why
+        return got is not None
 
-    def piece(self, k: int):
-        start, stop = self.bounds[k]
-        cols = self.read(start, stop)
-        got = {r: (cols[nm] if nm is not None else v) for r, (nm, v) in self.sources.items()}
-        return _kernels.snapshot_sums(stop - start, got["weight"], got["charge"], got["mass"],
-                                      [cols[nm] for _, nm in self.axes], self.kind or "v",
-                                      self.relativistic, self.cc, want_ke=self.has_m)
-
-    def finish(self, parts) -> tuple[dict, dict]:
-        sums = parts[0]
-        for part in parts[1:]:
-            sums.add(part)
-        if self.read.streamed:
-            self.frame.reads += len(self.names)
-        total, nbad = sums.result()
+    def _numpy_sums(self, n, w, q, m, comps) -> "_kernels.TotalSums":
+        """A piece's sums with one numpy reduction per total (pairwise sums of the same terms)."""
+        out = _kernels.TotalSums()
         slot = {name: k for k, name in enumerate(_kernels.TOTAL_SLOTS)}
-        values: dict[str, float] = {"count": float(len(self.frame))}
+
+        def put(name, arr):
+            v, b = finite_sum(arr)
+            out.acc[slot[name]] = v
+            out.bad[slot[name]] = b
+
+        w_arr = np.asarray(w, dtype=np.float64)
+        put("weight", w_arr if w_arr.ndim else np.full(n, float(w_arr)))
+        if self.has_q:
+            wq = w_arr * np.asarray(q, dtype=np.float64)
+            if wq.ndim == 0:
+                wq = np.full(n, float(wq))
+            put("charge", wq)
+            put("abs_charge", np.abs(wq))
+        if self.axes:
+            comps = [np.asarray(x, dtype=np.float64) for x in comps]
+            factor = w_arr if self.kind == "p" else w_arr * np.asarray(m, dtype=np.float64)
+            if self.relativistic and self.kind == "v":
+                factor = factor * lorentz_factor_of_velocity(comps, self.c)
+            mag2 = None
+            for k, comp in enumerate(comps):
+                p = factor * comp
+                if p.ndim == 0:
+                    p = np.full(n, float(p))
+                put(f"momentum_{k}", p)
+                mag2 = p * p if mag2 is None else mag2 + p * p
+            put("abs_momentum", np.sqrt(mag2))
+            if self.has_m:
+                terms = kinetic_energy_terms(m, w_arr, comps, self.kind, self.relativistic, self.c)
+                if terms.ndim == 0:
+                    terms = np.full(n, float(terms))
+                put("kinetic_energy", terms)
+        return out
+
+    def merge(self, a, b):
+        a.rows += b.rows
+        return a.add(b)
+
+    def finish(self, state) -> tuple[dict, dict]:
+        total, nbad = state.result()
+        slot = {name: k for k, name in enumerate(_kernels.TOTAL_SLOTS)}
+        values: dict[str, float] = {"count": float(state.rows)}
         bad: dict[str, int] = {"count": 0}
 
         def put(name, k):
@@ -336,146 +268,60 @@ class _TotalsPlan:
         return values, bad
 
 
-#: rows reduced at a time (see :func:`_row_pieces`): the pieces stay in cache for the
-#: compiled pass, and pieces can be reduced on several cores at once
-CHUNK_ROWS = 1 << 18
-
-_pool_lock = threading.Lock()
-_pools: dict = {}
-
-
-def _piece_workers() -> int:
-    try:
-        return max(1, min(4, len(os.sched_getaffinity(0))))
-    except (AttributeError, OSError):
-        return max(1, min(4, os.cpu_count() or 1))
+def _source(frame, role: str, default):
+    """(column name, None) when a column plays ``role``, else (None, attribute or default); reads nothing."""
+    name = frame.column_for(role)
+    if name is not None:
+        return name, None
+    if role in frame.attrs and frame.attrs[role] is not None:
+        return None, float(frame.attrs[role])
+    return None, default
 
 
-def _piece_pool() -> ThreadPoolExecutor:
-    """Threads that reduce the pieces of one frame (the compiled pass releases the GIL)."""
-    with _pool_lock:
-        pid = os.getpid()
-        pool = _pools.get(pid)
-        if pool is None:           # a forked worker does not inherit its parent's threads
-            pool = _pools[pid] = ThreadPoolExecutor(_piece_workers(), thread_name_prefix="swarmaudit-sum")
-        return pool
+def _whole(acc: Totals, frame):
+    return acc.finish(fold(acc, [Piece({nm: frame[nm] for nm in acc.columns}, 0, len(frame))]))
 
 
-_buffers = threading.local()
+def snapshot_totals(frame, relativistic: bool = False, c=None, with_nonfinite: bool = False):
+    """Totals of one frame as one piece: count, weight, charge, momentum_x/y/z, kinetic_energy, scales.
+
+    :class:`Totals` over the whole columns (an engine runs the same
+    accumulator piece by piece: ``engine.reduce``). ``abs_momentum`` is
+    Σ |w m v| (the momentum scale) and ``abs_charge`` Σ |w q| (the charge
+    scale when the net charge is zero). With ``with_nonfinite`` returns
+    ``(values, nonfinite)`` dicts.
+    """
+    values, bad = _whole(Totals.of_frame(frame, relativistic, c), frame)
+    return (values, bad) if with_nonfinite else values
 
 
-def _buffer(name: str, dtype, n: int, least: int | None = None) -> np.ndarray:
-    """This thread's piece buffer for a column: reused from piece to piece (a reduction keeps
-    no piece), so streaming a run allocates, and faults in, its buffers once."""
-    held = getattr(_buffers, "arrays", None)
-    if held is None:
-        held = _buffers.arrays = {}
-    key = (name, np.dtype(dtype).str)
-    buf = held.get(key)
-    if buf is None or buf.shape[0] < n:
-        buf = held[key] = np.empty(max(n, CHUNK_ROWS if least is None else least), dtype=dtype)
-    return buf[:n]
+def fused_totals(frame, relativistic: bool = False, c=None) -> tuple[dict, dict]:
+    """``(values, nonfinite)`` of :func:`snapshot_totals` by the compiled pass, whatever the size."""
+    return _whole(Totals.of_frame(frame, relativistic, c, compiled=True), frame)
+
+
+def numpy_totals(frame, relativistic: bool = False, c=None) -> tuple[dict, dict]:
+    """``(values, nonfinite)`` of :func:`snapshot_totals`, one numpy reduction per total."""
+    return _whole(Totals.of_frame(frame, relativistic, c, compiled=False), frame)
 
 
 #: rows the compiled reader takes from each file at a time: a few such buffers stay in a core's
 #: cache between the read and the sums
 FILE_ROWS = 1 << 14
 
-
-def _row_pieces(frame, names):
-    """``(bounds, read, parallel)``: row ranges of the frame, ``read(start, stop) -> {name: rows}``.
-
-    * the columns all in memory: slices of them, reduced in parallel;
-    * none in memory and every loader reads row ranges: the pieces are read
-      from the files (``read.streamed``), so no full-length column is allocated
-      (or kept) for a total; in parallel when every loader reads straight from
-      its file (``Column.direct()``: no shared handle, other threads run meanwhile);
-    * otherwise, or for a small frame: the whole columns, one piece.
-    """
-    n = len(frame)
-    cache = getattr(frame, "_cache", {})
-    whole = [(0, n)]
-
-    def columns(start, stop):
-        return {nm: frame[nm] for nm in names}
-    columns.streamed = False
-    if n <= CHUNK_ROWS or not names:
-        return whole, columns, False
-    bounds = [(start, min(start + CHUNK_ROWS, n)) for start in range(0, n, CHUNK_ROWS)]
-    if all(nm in cache for nm in names):
-        def sliced(start, stop):
-            return {nm: cache[nm][start:stop] for nm in names}
-        sliced.streamed = False
-        return bounds, sliced, True
-    if any(nm in cache for nm in names):
-        return whole, columns, False
-    loaders = {nm: frame.loader(nm) for nm in names}
-    if not all(ld.can_read_rows for ld in loaders.values()):
-        return whole, columns, False
-
-    def streamed(start, stop):
-        cols = {}
-        for nm, ld in loaders.items():
-            if ld.dtype is not None:
-                arr = ld.rows_into(start, stop, _buffer(nm, ld.dtype, stop - start))
-            else:
-                arr = np.asarray(ld.rows(start, stop))
-            if arr.shape != (stop - start,):
-                raise InputError(frame.source, f"column '{nm}' of species '{frame.species}' "
-                                 f"gave {arr.shape[0] if arr.ndim else 0} rows for the range "
-                                 f"{start}..{stop}")
-            cols[nm] = arr
-        return cols
-    streamed.streamed = True
-
-    class _Direct:
-        # asked after the first piece: a loader may only know then whether it reads directly
-        def __bool__(self):
-            return all(ld.direct() for ld in loaders.values())
-    return bounds, streamed, _Direct()
+_file_buffers = threading.local()
 
 
-def numpy_totals(frame, relativistic: bool = False, c=None) -> tuple[dict, dict]:
-    """``(values, nonfinite)`` of :func:`snapshot_totals`, one numpy reduction per total."""
-    values: dict[str, float] = {}
-    bad: dict[str, int] = {}
-
-    def put(name, arr_or_value):
-        v, b = finite_sum(arr_or_value)
-        values[name] = v
-        bad[name] = b
-
-    n = len(frame)
-    values["count"] = float(n)
-    bad["count"] = 0
-    w, q, m, kind, axes = _totals_inputs(frame)
-    w_arr = np.asarray(w, dtype=np.float64)
-    put("weight", w_arr if w_arr.ndim else np.full(n, float(w_arr)) if n else np.zeros(0))
-    if q is not None:
-        wq = w_arr * np.asarray(q, dtype=np.float64)
-        if wq.ndim == 0:
-            wq = np.full(n, float(wq))
-        put("charge", wq)
-        put("abs_charge", np.abs(wq))
-    if axes:
-        comps = [np.asarray(frame[nm], dtype=np.float64) for _, nm in axes]
-        factor = w_arr if kind == "p" else w_arr * np.asarray(m, dtype=np.float64)
-        if relativistic and kind == "v":
-            factor = factor * lorentz_factor_of_velocity(comps, c)
-        mag2 = None
-        for (axis, _), comp in zip(axes, comps):
-            p = factor * comp
-            if p.ndim == 0:
-                p = np.full(n, float(p))
-            put(f"momentum_{axis}", p)
-            mag2 = p * p if mag2 is None else mag2 + p * p
-        put("abs_momentum", np.sqrt(mag2))
-        if m is not None:
-            terms = kinetic_energy_terms(m, w_arr, comps, kind, relativistic, c)
-            if terms.ndim == 0:
-                terms = np.full(n, float(terms))
-            put("kinetic_energy", terms)
-    return values, bad
+def _file_buffer(key: str, dtype) -> np.ndarray:
+    """This thread's read buffer of the compiled file reader for a column, reused from call to call."""
+    held = getattr(_file_buffers, "arrays", None)
+    if held is None:
+        held = _file_buffers.arrays = {}
+    k = (key, np.dtype(dtype).str)
+    buf = held.get(k)
+    if buf is None or buf.shape[0] != FILE_ROWS:
+        buf = held[k] = np.empty(FILE_ROWS, dtype=dtype)
+    return buf
 
 
 def _scale_for(quantity: str, ref_row: dict, run_max: float) -> tuple[float, str | None]:

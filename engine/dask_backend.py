@@ -376,37 +376,6 @@ def _padded(r):
     return (lo - pad, hi + pad)
 
 
-# totals --------------------------------------------------------------------------------
-def _apply_piece(piece: Piece, template: Frame, fn, kwargs):
-    return fn(piece_frame(piece, template), **kwargs)
-
-
-def _add(a, b):
-    if isinstance(a, dict):
-        return {k: _add(a[k], b[k]) if k in b else a[k] for k in a} | \
-               {k: v for k, v in b.items() if k not in a}
-    if isinstance(a, tuple):
-        return tuple(_add(x, y) for x, y in zip(a, b))
-    return a + b
-
-
-def totals_dask(frame: Frame, fn, *, engine: DaskEngine | None = None, **kwargs):
-    """``fn(frame, **kwargs)`` for an additive ``fn`` (sums of per-particle terms), piece by piece.
-
-    ``fn`` returns a number, a dict of numbers, or a tuple of those (like
-    ``diagnostics.drift.snapshot_totals(..., with_nonfinite=True)``); the
-    pieces' answers are added. Only sums combine this way, not means or maxima.
-    """
-    engine = engine or client_for()
-    res = engine.map(_apply_piece, frame_pieces(frame), frame_template(frame), fn, kwargs)
-    if not res:
-        return fn(frame, **kwargs)
-    out = res[0]
-    for r in res[1:]:
-        out = _add(out, r)
-    return out
-
-
 # migration -----------------------------------------------------------------------------
 def _key_piece(piece: Piece, key_col: str):
     k = read_column(piece, key_col)
@@ -609,15 +578,6 @@ def _migrate_in_memory(frame_a, frame_b, layout, layout_b, steps, positions, mig
 # the doors core/audit.py goes through -----------------------------------------------------
 def _roles_columns(frame: Frame, roles) -> list[str]:
     return [frame.column_for(r) for r in roles if frame.column_for(r)]
-
-
-def totals_if_partitioned(ctx, frame: Frame):
-    """``snapshot_totals(frame, ..., with_nonfinite=True)`` piece by piece, or None to stay in memory."""
-    if not use_dask(ctx, frame, frame.columns):
-        return None
-    from ..diagnostics.drift import snapshot_totals
-    return totals_dask(frame, snapshot_totals, relativistic=bool(ctx.relativistic), c=ctx.c,
-                       with_nonfinite=True, engine=client_for(ctx))
 
 
 def migration_if_partitioned(ctx, frame_a: Frame, frame_b: Frame, layout_a: BlockLayout,

@@ -182,6 +182,20 @@ def frame_pieces(frame: Frame, columns=None, rows: int | None = None) -> list[Pi
     return pieces
 
 
+def read_in_pieces(frame: Frame, columns) -> bool:
+    """Whether reducing ``columns`` of ``frame`` keeps no full column of it in memory: each is
+    held in memory already or reads row ranges alone, or the frame is one piece long anyway."""
+    if len(frame) <= PIECE_ROWS:
+        return True
+    for part, _ in parts_of(frame):
+        for c in columns:
+            if cached_column(frame, c) is not None or c not in part:
+                continue
+            if cached_column(part, c) is None and not part.loader(c).can_read_rows:
+                return False
+    return True
+
+
 _buffers = threading.local()
 
 

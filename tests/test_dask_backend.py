@@ -175,13 +175,16 @@ def test_census_with_a_rank_column_counts_where_particles_live(where):
     assert got.set_index("rank").loc[5, "count"] == 1500   # by construction of the parts
 
 
-def test_totals_equal_snapshot_totals(engine):
-    from swarmaudit.diagnostics.drift import snapshot_totals
+@pytest.mark.parametrize("where", ["serial", "threads", "dask"])
+@pytest.mark.parametrize("compiled", [True, False])
+def test_totals_equal_snapshot_totals(where, compiled):
+    from swarmaudit.diagnostics.drift import Totals, snapshot_totals
+    from swarmaudit.engine.reduce import reduce
     data = _particles(5000)
     data["vx"][[5, 900]] = np.inf
     attrs = {"mass": 2.0, "charge": -1.0}
     frame = _split(data, [1700, 2900], attrs=attrs)
-    got_v, got_bad = dk.totals_dask(frame, snapshot_totals, with_nonfinite=True, engine=engine)
+    got_v, got_bad = reduce(Totals.of_frame(frame, compiled=compiled), frame, where=where)
     ref_v, ref_bad = snapshot_totals(_frame(data, attrs=attrs), with_nonfinite=True)
     assert got_bad == ref_bad and got_bad["momentum_x"] == 2
     assert got_v.keys() == ref_v.keys()

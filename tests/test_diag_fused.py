@@ -20,11 +20,18 @@ from _need import need_that
 
 from _audit_runs import frame
 from swarmaudit.diagnostics import _kernels, drift
+from swarmaudit.engine import pieces as engine_pieces
+from swarmaudit.engine.reduce import reduce
 from swarmaudit.readers.hdf5 import HDF5Reader
 
 need_that(_kernels.available, "numba is not installed", module_level=True)
 
 RTOL = 1e-12
+
+
+def _by_engine(frame, relativistic=False, c=None, where="serial"):
+    """The compiled totals of ``frame`` run by the engine piece by piece."""
+    return reduce(drift.Totals.of_frame(frame, relativistic, c, compiled=True), frame, where=where)
 
 
 def _scale(values, quantity):
@@ -123,9 +130,9 @@ def test_streamed_rows_from_hdf5_equal_whole_columns(tmp_path, monkeypatch):
         g["weight"] = rng.random(n)
         g["charge"] = rng.normal(size=n)
         g["vy"][17] = np.nan
-    monkeypatch.setattr(drift, "CHUNK_ROWS", 1000)
+    monkeypatch.setattr(engine_pieces, "PIECE_ROWS", 1000)
     f = HDF5Reader().open(str(path)).species["e"]
-    streamed = drift.fused_totals(f)
+    streamed = _by_engine(f)
     assert f._cache == {}                               # pieces only: no column kept
     whole = HDF5Reader().open(str(path)).species["e"]
     for name in whole.columns:
@@ -250,21 +257,21 @@ def _frames(paths):
 
 
 def test_pieces_on_threads_give_the_same_bits(tmp_path, monkeypatch):
+    from swarmaudit.engine.reduce import reduce_many
     paths = _h5_run(tmp_path)
-    monkeypatch.setattr(drift, "CHUNK_ROWS", 1000)           # 10 pieces per frame
+    monkeypatch.setattr(engine_pieces, "PIECE_ROWS", 1000)    # 10 pieces per frame
     monkeypatch.setattr(_kernels, "TOTALS_MIN_SIZE", 1000)
     assert all(f.loader("vx").direct() for f in _frames(paths))
-    monkeypatch.setattr(drift, "_piece_workers", lambda: 1)
-    one = [drift.fused_totals(f) for f in _frames(paths)]
-    monkeypatch.setattr(drift, "_piece_workers", lambda: 2)
-    two = [drift.fused_totals(f) for f in _frames(paths)]
-    together = drift.fused_totals_many(_frames(paths))
-    assert one == two == together                            # bit for bit, counts included
+    one = [_by_engine(f) for f in _frames(paths)]
+    two = [_by_engine(f, where="threads") for f in _frames(paths)]
+    on_dask = [_by_engine(f, where="dask") for f in _frames(paths)]
+    together = reduce_many([(drift.Totals.of_frame(f), f) for f in _frames(paths)], where="threads")
+    assert one == two == on_dask == together                 # bit for bit, counts included
     whole = _frames(paths)
     for f in whole:
         for name in f.columns:
             f[name]                                          # in memory: sliced pieces
-    assert [drift.fused_totals(f) for f in whole] == one
+    assert [_by_engine(f, where="threads") for f in whole] == one
     for got, f in zip(one, _frames(paths)):
         _assert_same(got, drift.numpy_totals(f))
     assert one[2][1]["momentum_x"] == 1 and one[2][1]["kinetic_energy"] == 1
@@ -275,7 +282,7 @@ def test_run_totals_computed_ahead_equal_one_at_a_time(tmp_path, monkeypatch):
     from swarmaudit.core.context import AuditContext
     from swarmaudit.readers.discover import open_run
     _h5_run(tmp_path, snapshots=5)
-    monkeypatch.setattr(drift, "CHUNK_ROWS", 1000)
+    monkeypatch.setattr(engine_pieces, "PIECE_ROWS", 1000)
     monkeypatch.setattr(_kernels, "TOTALS_MIN_SIZE", 1000)
     ahead = audit.drift_table(AuditContext(open_run(str(tmp_path)), use_cache=False))
     monkeypatch.setattr(audit, "TOTALS_AHEAD", 1)
@@ -314,18 +321,18 @@ def test_compiled_file_reads_equal_the_piece_path(tmp_path, monkeypatch):
         g["weight"] = rng.random(n) + 0.5
         g["mass"] = rng.random(n) + 1.0
         g["ux"][9] = np.nan
-    monkeypatch.setattr(drift, "CHUNK_ROWS", 4096)
+    monkeypatch.setattr(engine_pieces, "PIECE_ROWS", 4096)
     monkeypatch.setattr(drift, "FILE_ROWS", 1000)         # not a divisor of the piece: partial reads
     calls = []
     real = _kernels.file_piece_sums
     monkeypatch.setattr(_kernels, "file_piece_sums", lambda *a, **k: calls.append(1) or real(*a, **k))
     frame = HDF5Reader().open(str(path)).species["e"]
     with _held_open(frame):
-        from_files = drift.fused_totals(frame, True, 1.0)
+        from_files = _by_engine(frame, True, 1.0)
     assert calls
     calls.clear()
     frame = HDF5Reader().open(str(path)).species["e"]
-    pieces = drift.fused_totals(frame, True, 1.0)           # no hold: Python reads, same pieces
+    pieces = _by_engine(frame, True, 1.0)                  # no hold: Python reads, same pieces
     assert not calls and from_files == pieces
     _assert_same(from_files, drift.numpy_totals(frame, True, 1.0))
     assert from_files[1]["momentum_x"] == 1
@@ -346,7 +353,7 @@ def test_a_file_cut_short_under_the_compiled_reader_is_a_clear_error(tmp_path):
         with open(path, "r+b") as fh:                        # the writer truncates it meanwhile
             fh.truncate(os.path.getsize(path) // 2)
         with pytest.raises(InputError) as err:
-            drift.fused_totals(frame)
+            _by_engine(frame)
     assert "s.h5" in str(err.value)
 
 
@@ -362,10 +369,10 @@ def test_only_streamed_snapshots_are_reduced_together(tmp_path, monkeypatch):
     for s in range(3):                                   # whole columns: read in one go
         np.savez(npz_dir / f"snap_{s}.npz", x=rng.random(600), vx=rng.normal(size=600),
                  weight=np.ones(600), mass=np.ones(600))
-    monkeypatch.setattr(drift, "CHUNK_ROWS", 256)
+    monkeypatch.setattr(engine_pieces, "PIECE_ROWS", 256)
     sizes = []
-    real = drift.snapshot_totals_many
-    monkeypatch.setattr(drift, "snapshot_totals_many", lambda frames, *a: sizes.append(len(frames)) or real(frames, *a))
+    real = audit.reduce_many
+    monkeypatch.setattr(audit, "reduce_many", lambda jobs, *a, **k: sizes.append(len(jobs)) or real(jobs, *a, **k))
     audit.drift_table(AuditContext(open_run(str(npz_dir)), use_cache=False))
     assert sizes == [1, 1, 1]                          # one snapshot's columns in memory at a time
     sizes.clear()

@@ -115,13 +115,15 @@ def test_compiled_file_reads_and_the_drift_table(tmp_path, monkeypatch, kind):
     want = _expected(v, w, gamma)
     tol = 1e-12 * np.sum(w * gamma * M * np.linalg.norm(v, axis=1))     # of Σ|p|
     if _kernels.available and _kernels.can_read_files:
-        monkeypatch.setattr(drift, "CHUNK_ROWS", 4096)
+        from swarmaudit.engine import pieces as engine_pieces
+        from swarmaudit.engine.reduce import reduce
+        monkeypatch.setattr(engine_pieces, "PIECE_ROWS", 4096)
         calls = []
         real = _kernels.file_piece_sums
         monkeypatch.setattr(_kernels, "file_piece_sums", lambda *a, **k: calls.append(1) or real(*a, **k))
         f = HDF5Reader().open(str(tmp_path / "snap_0.h5")).species["e"]
         with _held_open(f):
-            got = drift.fused_totals(f, True)[0]
+            got = reduce(drift.Totals.of_frame(f, True, compiled=True), f, where="serial")[0]
         assert calls
         for q, value in want.items():
             assert got[q] == pytest.approx(value, rel=1e-12, abs=tol), q

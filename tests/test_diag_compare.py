@@ -1,0 +1,243 @@
+"""Two runs against each other: KS, Wasserstein, census chi-square, particle differences.
+
+Outside references: scipy.stats.ks_2samp, scipy.stats.wasserstein_distance,
+scipy.stats.chi2_contingency, the large-sample critical values of the
+two-sample Kolmogorov–Smirnov test, hand-worked weighted cases and a
+brute-force minimum image.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from swarmaudit.core.layout import regular_layout
+from swarmaudit.diagnostics import _kernels
+from swarmaudit.diagnostics.compare import (PairStats, census_chi2, compare_particles,
+                                            distribution_distance, effective_size, ks_pvalue,
+                                            pair_stats)
+from swarmaudit.diagnostics.migration import DuplicateKeyError
+
+
+# Kolmogorov–Smirnov -------------------------------------------------------------------
+@pytest.mark.parametrize("seed,na,nb,shift", [(0, 300, 450, 0.0), (1, 2000, 1500, 0.1),
+                                              (2, 50, 80, 0.5), (3, 20000, 30000, 0.02)])
+def test_ks_matches_scipy_unweighted(seed, na, nb, shift):
+    rng = np.random.default_rng(seed)
+    a = rng.normal(0, 1, na)
+    b = rng.normal(shift, 1, nb)
+    got = distribution_distance(a, b)
+    ref = stats.ks_2samp(a, b, method="asymp")
+    assert got.ks_statistic == pytest.approx(ref.statistic, abs=1e-12)
+    assert got.ks_pvalue == pytest.approx(ref.pvalue, rel=1e-9, abs=1e-300)
+
+
+def test_ks_with_ties_matches_scipy():
+    # integer data: many ties, where only the last partial sum of a run of equal values counts
+    rng = np.random.default_rng(4)
+    a = rng.integers(0, 12, 700).astype(float)
+    b = rng.integers(1, 13, 500).astype(float)
+    got = distribution_distance(a, b)
+    ref = stats.ks_2samp(a, b, method="asymp")
+    assert got.ks_statistic == pytest.approx(ref.statistic, abs=1e-12)
+    assert got.ks_pvalue == pytest.approx(ref.pvalue, rel=1e-9)
+
+
+@pytest.mark.parametrize("alpha,c", [(0.10, 1.224), (0.05, 1.358), (0.01, 1.628)])
+def test_ks_pvalue_at_published_critical_values(alpha, c):
+    # Large-sample critical values of the two-sample KS test, D_alpha = c(alpha) sqrt((n+m)/(n m)),
+    # c = 1.22, 1.36, 1.63 at alpha = 0.10, 0.05, 0.01 (Smirnov 1948, as tabulated in Massey 1951,
+    # J. Amer. Statist. Assoc. 46, 68-78; from memory)
+    n, m = 4000, 6000
+    d = c * math.sqrt((n + m) / (n * m))
+    assert ks_pvalue(d, n, m) == pytest.approx(alpha, rel=0.03)
+
+
+def test_weighted_ks_hand_worked():
+    # F_ref jumps 1/4, 1/4, 1/2 at 1, 2, 3; F_cand 1/4, 3/4 at 2, 4.
+    # F_ref - F_cand: 1/4 on [1,2), 1/4 on [2,3), 3/4 on [3,4), 0 from 4: D = 3/4, W1 = 5/4
+    got = distribution_distance([1, 2, 3], [2, 4], [1, 1, 2], [1, 3])
+    assert got.ks_statistic == pytest.approx(0.75)
+    assert got.wasserstein == pytest.approx(1.25)
+    # Kish: (1+1+2)^2 / (1+1+4) and (1+3)^2 / (1+9)
+    assert got.ref_effective == pytest.approx(16 / 6)
+    assert got.cand_effective == pytest.approx(1.6)
+    assert got.ref_mean == pytest.approx(9 / 4)
+    assert got.cand_mean == pytest.approx(14 / 4)
+
+
+def test_integer_weights_equal_repeated_values():
+    # a weight of k counts like k copies of the value (for the statistic)
+    rng = np.random.default_rng(5)
+    a, b = rng.normal(size=200), rng.normal(0.2, 1.1, 300)
+    wa, wb = rng.integers(1, 4, a.size), rng.integers(1, 4, b.size)
+    got = distribution_distance(a, b, wa, wb)
+    ref = stats.ks_2samp(np.repeat(a, wa), np.repeat(b, wb))
+    assert got.ks_statistic == pytest.approx(ref.statistic, abs=1e-12)
+    assert got.wasserstein == pytest.approx(stats.wasserstein_distance(np.repeat(a, wa), np.repeat(b, wb)))
+
+
+def test_effective_size():
+    assert effective_size(None, 17) == 17
+    assert effective_size(np.full(10, 3.0)) == pytest.approx(10)
+    assert effective_size([1.0, 0.0, 0.0]) == pytest.approx(1)
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_wasserstein_matches_scipy(seed):
+    rng = np.random.default_rng(seed)
+    a, b = rng.gamma(2.0, 1.0, 1000), rng.normal(2, 1.5, 1500)
+    wa, wb = rng.random(a.size), rng.random(b.size) * 3
+    got = distribution_distance(a, b, wa, wb)
+    assert got.wasserstein == pytest.approx(stats.wasserstein_distance(a, b, wa, wb), rel=1e-9)
+    got = distribution_distance(a.astype(np.float32), b)
+    assert got.wasserstein == pytest.approx(
+        stats.wasserstein_distance(a.astype(np.float32).astype(float), b), rel=1e-6)
+
+
+def test_identical_samples_and_nonfinite():
+    a = np.array([0.5, 1.0, np.nan, 2.0, np.inf])
+    got = distribution_distance(a, a[::-1])
+    assert got.ks_statistic == 0 and got.wasserstein == 0 and got.ks_pvalue == 1.0
+    assert got.nonfinite == 4 and got.ref_count == 3
+    empty = distribution_distance([], [1.0])
+    assert math.isnan(empty.ks_statistic) and math.isnan(empty.ks_pvalue)
+
+
+# census chi-square ---------------------------------------------------------------------
+def test_census_chi2_matches_chi2_contingency():
+    rng = np.random.default_rng(6)
+    r = rng.poisson(200, 30)
+    c = rng.poisson(220, 30)
+    r[[3, 7]] = 0
+    c[7] = 0          # a block empty in both runs carries no information
+    chi2, dof, p = census_chi2(r, c)
+    keep = (r + c) > 0
+    ref = stats.chi2_contingency(np.stack([r[keep], c[keep]]), correction=False)
+    assert chi2 == pytest.approx(ref.statistic, rel=1e-12)
+    assert dof == ref.dof == 28
+    assert p == pytest.approx(ref.pvalue, rel=1e-9)
+
+
+def test_census_chi2_equal_counts_and_degenerate():
+    assert census_chi2([5, 6, 7], [5, 6, 7])[::2] == (0.0, 1.0)
+    assert math.isnan(census_chi2([5, 0], [3, 0])[0])
+    with pytest.raises(ValueError):
+        census_chi2([1, 2], [1, 2, 3])
+
+
+# particle by particle ------------------------------------------------------------------
+def _brute_cells(xa, xb, h, length, periodic):
+    d = np.abs(xb - xa)
+    if periodic:
+        # every image of b within one box length: the nearest one is the minimum image
+        d = np.min(np.abs(np.stack([xb - xa + k * length for k in (-1, 0, 1)])), axis=0)
+    return d / h
+
+
+@pytest.mark.parametrize("n", [5000, 300_000])
+def test_particle_differences_against_brute_force(n):
+    rng = np.random.default_rng(7)
+    lay = regular_layout([0, 2.0, 0, 1.0], [40, 10], [4, 2], periodic=("x",))
+    x, y = rng.random(n) * 2.0, rng.random(n)
+    ux, uy = rng.normal(0, 1, n), rng.normal(0, 2, n)
+    ids = np.arange(n) + 100
+    order = rng.permutation(n)                 # the candidate stores its particles in another order
+    xb = (x + rng.normal(0, 0.03, n)) % 2.0    # some cross the periodic x edge
+    yb = np.clip(y + rng.normal(0, 0.01, n), 0, 0.999)
+    uxb, uyb = ux + rng.normal(0, 1e-3, n), uy.copy()
+    got = compare_particles(ids, ids[order], [x, y], [xb[order], yb[order]], [ux, uy],
+                            [uxb[order], uyb[order]], lay)
+    dx = _brute_cells(x, xb, 0.05, 2.0, True)
+    dy = _brute_cells(y, yb, 0.1, 1.0, False)
+    cheb = np.maximum(dx, dy)
+    assert got.pairs == n and got.same_particles and got.matched_fraction == 1
+    assert got.position_max == pytest.approx(cheb.max(), rel=1e-12)
+    assert got.position_rms == pytest.approx(math.sqrt(np.mean(cheb ** 2)), rel=1e-9)
+    du = np.hypot(uxb - ux, uyb - uy)
+    scale = math.sqrt(np.mean(ux ** 2 + uy ** 2))
+    assert got.momentum_max_relative == pytest.approx(du.max() / scale, rel=1e-9)
+    assert got.momentum_rms_relative == pytest.approx(math.sqrt(np.mean(du ** 2)) / scale, rel=1e-9)
+    worst = np.argsort(-cheb, kind="stable")[:10]
+    assert list(got.worst_key) == list(ids[worst])
+    assert not got.identical
+
+
+def test_identical_particles_in_another_order_and_one_changed():
+    rng = np.random.default_rng(8)
+    n = 1000
+    lay = regular_layout([0, 1, 0, 1], [8, 8], [2, 2], periodic=("x", "y"))
+    x, y, u = rng.random(n).astype(np.float32), rng.random(n).astype(np.float32), rng.normal(size=n)
+    w = np.full(n, 2.5)
+    o = rng.permutation(n)
+    same = compare_particles(np.arange(n), o, [x, y], [x[o], y[o]], [u], [u[o]], lay, [w], [w[o]])
+    assert same.identical and same.position_max == 0 and same.momentum_max_relative == 0
+    w2 = w[o].copy()
+    w2[5] = 2.0
+    assert not compare_particles(np.arange(n), o, [x, y], [x[o], y[o]], [u], [u[o]], lay, [w], [w2]).identical
+    xb = x[o].copy()
+    xb[17] += np.float32(0.25)                  # two cells
+    moved = compare_particles(np.arange(n), o, [x, y], [xb, y[o]], [u], [u[o]], lay)
+    assert not moved.identical
+    assert moved.worst_key[0] == o[17]
+    assert moved.position_max == pytest.approx(2.0, rel=1e-6)
+
+
+def test_unmatched_and_duplicates():
+    lay = regular_layout([0, 1], [10], [1])
+    a = compare_particles(np.array([1, 2, 3, 4]), np.array([3, 4, 5]), [np.zeros(4)], [np.zeros(3)],
+                          [], [], lay)
+    assert (a.pairs, a.only_ref, a.only_cand) == (2, 2, 1)
+    assert a.matched_fraction == pytest.approx(2 / 5)
+    assert not a.identical
+    assert math.isnan(a.momentum_max_relative)
+    with pytest.raises(DuplicateKeyError):
+        compare_particles(np.array([1, 1]), np.array([1, 2]), [np.zeros(2)], [np.zeros(2)], [], [], lay)
+
+
+def test_composite_keys_label_worst():
+    lay = regular_layout([0, 1], [10], [1])
+    ka = (np.array([0, 1, 0]), np.array([7, 7, 8]))
+    kb = (np.array([0, 0, 1]), np.array([8, 7, 7]))
+    got = compare_particles(ka, kb, [np.array([0.1, 0.2, 0.3])], [np.array([0.35, 0.1, 0.2])], [], [], lay,
+                            worst=1)
+    assert got.pairs == 3 and list(got.worst_key) == ["0:8"]
+    assert got.position_max == pytest.approx(0.5)
+
+
+def test_merge_of_pieces_equals_whole():
+    rng = np.random.default_rng(9)
+    n = 4000
+    lay = regular_layout([0, 1, 0, 1], [16, 16], [2, 2], periodic=("y",))
+    ids = rng.permutation(n)
+    pa = [rng.random(n), rng.random(n)]
+    pb = [(p + rng.normal(0, 0.02, n)) % 1.0 for p in pa]
+    ua, ub = [rng.normal(size=n)], [rng.normal(size=n)]
+    whole = pair_stats(ids, pa, pb, ua, ub, lay)
+    cut = 1234
+    parts = [pair_stats(ids[s], [p[s] for p in pa], [p[s] for p in pb], [u[s] for u in ua],
+                        [u[s] for u in ub], lay) for s in (slice(0, cut), slice(cut, n))]
+    merged = parts[0].merge(parts[1])
+    assert merged.pairs == whole.pairs
+    assert merged.position_max == whole.position_max
+    assert merged.position_rms == pytest.approx(whole.position_rms, rel=1e-12)
+    assert merged.momentum_max_relative == pytest.approx(whole.momentum_max_relative, rel=1e-12)
+    assert list(merged.worst_key) == list(whole.worst_key)
+    assert PairStats().merge(whole).pairs == n
+
+
+@pytest.mark.skipif(not _kernels.available, reason="numba not installed")
+def test_momentum_kernel_equals_numpy_path():
+    rng = np.random.default_rng(10)
+    n = _kernels.MIN_SIZE + 10
+    ia, ib = rng.permutation(n), rng.permutation(n)
+    ua = [rng.normal(size=n).astype(np.float32) for _ in range(3)]
+    ub = [rng.normal(size=n) for _ in range(3)]
+    du, uref = _kernels.momentum_pairs(ia, ib, ua, ub)
+    want_du = sum((b[ib] - a[ia].astype(float)) ** 2 for a, b in zip(ua, ub))
+    want_ref = sum(a[ia].astype(float) ** 2 for a in ua)
+    np.testing.assert_allclose(du, want_du, rtol=1e-12)
+    np.testing.assert_allclose(uref, want_ref, rtol=1e-12)

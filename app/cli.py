@@ -102,6 +102,9 @@ def build_parser() -> argparse.ArgumentParser:
     from .movie import add_movie_options
     add_movie_options(m)
 
+    from .compare_cmd import add_compare_parser
+    add_compare_parser(sub, _physics_options, _positive_float)
+
     d = sub.add_parser("demo", help="write the demo runs and serve them")
     d.add_argument("--out", default="swarmaudit-demo", metavar="DIR", help="where to write (default ./swarmaudit-demo)")
     d.add_argument("--particles", type=int, default=None, metavar="N",
@@ -166,6 +169,9 @@ def _dispatch(args) -> int:
     if args.command == "demo":
         from .demo_cmd import demo_command
         return demo_command(args)
+    if args.command == "compare":
+        from .compare_cmd import run_compare
+        return run_compare(args)
     from .options import context_from_options
     ctx = context_from_options(args)
     if args.command == "inspect":

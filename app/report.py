@@ -33,6 +33,7 @@ class FigureItem:
     title: str
     caption: str = ""
     wide: bool = False          # spans the whole width of the page (panels of small plots)
+    kind: str = ""              # what the figure shows (space, phase, totals...), for grouping
 
 
 @dataclass
@@ -64,6 +65,7 @@ class Verdict:
     rtol: float
     ok: bool
     lines: list[str] = field(default_factory=list)
+    head: str = ""              # the headline, when it is not the drift check's
 
 
 _CSS = """
@@ -219,8 +221,8 @@ def render_report(title: str, facts: list[tuple[str, str]], sections: list[Secti
     if verdict is not None:
         cls = "ok" if verdict.ok else "bad"
         band = f"±{verdict.rtol:g} ({verdict.rtol * 100:.3g} %)"
-        head = (f"Check passed: every checked total stays within {band} of the first snapshot."
-                if verdict.ok else f"Check failed: a total left the {band} band.")
+        head = verdict.head or (f"Check passed: every checked total stays within {band} of the first "
+                                f"snapshot." if verdict.ok else f"Check failed: a total left the {band} band.")
         items = "".join(f"<li>{_e(line)}</li>" for line in verdict.lines)
         out.append(f"<div class='verdict {cls}' id='verdict'>{_e(head)}"
                    + (f"<ul>{items}</ul>" if items else "") + "</div>")
@@ -240,6 +242,69 @@ def render_report(title: str, facts: list[tuple[str, str]], sections: list[Secti
     out.append("</main><footer>swarmaudit report — figures and tables are also in this "
                "folder as PNG and CSV files.</footer></body></html>")
     return "\n".join(out)
+
+
+def comparison_sections(comp, figures, summary: list[str]) -> list[Section]:
+    """The sections of a comparison of two runs (``swarmaudit compare --out``).
+
+    ``comp`` is an :class:`audit.compare.Comparison`; ``figures`` the
+    :class:`FigureItem` records its figures were written as, each with a
+    ``kind`` of ``space``, ``phase`` or ``totals``.
+    """
+    def figs(kind):
+        return [f for f in figures if getattr(f, "kind", "") == kind]
+
+    pr = comp.pairing
+    text = list(summary)
+    pairs = Section("Pairing and summary", text=text, anchor="comparison")
+    out = [pairs]
+    p = comp.particles
+    if len(p):
+        shown = p.drop(columns=["worst_ids"])
+        out.append(Section("Particle by particle", tables=[
+            TableItem("Matched particles, per paired snapshot and species", shown, "compare_particles.csv",
+                      caption="Position differences in level-0 cells of the reference's layout (largest "
+                              "axis, minimum image on periodic axes); momentum differences |Δu| relative "
+                              "to the RMS |u| of the reference's matched particles."),
+            TableItem("Particles that differ most", comp.worst, "compare_worst.csv",
+                      caption="Ranked by position difference, per paired snapshot and species.")],
+            anchor="compare-particles"))
+    d = comp.distributions
+    if len(d):
+        out.append(Section("Distributions", tables=[
+            TableItem("Per column: weighted Kolmogorov–Smirnov and first Wasserstein distance", d,
+                      "compare_distributions.csv",
+                      caption="p-values from Smirnov's large-sample form with Kish's effective sample "
+                              "sizes; the Wasserstein distance is in the column's units.")],
+            anchor="compare-distributions"))
+    dens = figs("space") + figs("phase")
+    if dens:
+        out.append(Section("Density, both runs and their difference", figures=dens, anchor="compare-density",
+                           text=["Each row: the reference, the candidate (same bins, same colour range) "
+                                 "and candidate minus reference on a diverging scale centred on zero "
+                                 "(red: more particles in the candidate, blue: fewer)."]))
+    c = comp.census
+    if len(c):
+        chi = c.drop_duplicates(["ref_snapshot", "cand_snapshot", "species"])[
+            ["ref_snapshot", "cand_snapshot", "species", "chi2", "chi2_dof", "chi2_pvalue"]]
+        c2 = c.assign(count_difference=c["cand_count"] - c["ref_count"])
+        worst = c2.reindex(c2["count_difference"].abs().sort_values(ascending=False, kind="stable").index)
+        out.append(Section("Block census", tables=[
+            TableItem("Chi-square test of homogeneity over the reference's blocks", chi, "compare_census.csv"),
+            TableItem("Blocks whose counts differ most", worst.drop(columns=["chi2", "chi2_dof", "chi2_pvalue"]),
+                      "compare_census.csv", subset="the blocks with the largest count difference",
+                      total_rows=len(c))],
+            text=["Both runs are counted in the blocks of the reference's layout, so a different "
+                  "decomposition of the candidate is not itself a difference."],
+            anchor="compare-census"))
+    t = comp.totals
+    if len(t):
+        tot = figs("totals")
+        shown = t[t["species"].astype(str) == "all"]
+        out.append(Section("Totals side by side", figures=tot, tables=[
+            TableItem("Totals of both runs (species all)", shown, "compare_totals.csv",
+                      subset="species all", total_rows=len(t))], anchor="compare-totals"))
+    return out
 
 
 def write_report(path: str, text: str) -> str:

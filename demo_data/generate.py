@@ -11,7 +11,13 @@ Runs written under OUT:
 * ``small_npz/`` — a drifting 3-D Plummer star cluster (:mod:`.nbody`);
 * ``small_csv/`` — nitrogen in a duct leaking through a pump port, with a
   ``layout.csv`` sidecar (:mod:`.duct`): the run a conservation gate fails;
-* ``small_npy/`` — elastic grains in a periodic box (:mod:`.grains`).
+* ``small_npy/`` — elastic grains in a periodic box (:mod:`.grains`);
+* ``two_stream_ranks/`` — the two-stream run again on 6 ranks and 8 × 4
+  blocks with its particles held sorted by cell: the same particles, equal
+  to the main run up to rounding (sums in another order), at 10 of its steps;
+* ``two_stream_dt/`` — the two-stream run again with a time step of 0.125
+  instead of 0.1 to the same end time: statistically close, not equal, at
+  10 of the main run's times.
 
 A manifest ``swarmaudit-demo.json`` records the parameters; runs already
 there with the same parameters are not written again unless forced.
@@ -30,17 +36,40 @@ from ..core.errors import OptionError
 
 MANIFEST = "swarmaudit-demo.json"
 #: bump when the runs change, so old demo folders are written afresh
-GENERATOR_VERSION = 1
+GENERATOR_VERSION = 2
 DEFAULT_PARTICLES = 250_000
 DEFAULT_SNAPSHOTS = 40
-RUNS = ("two_stream", "inlet_wall", "small_npz", "small_csv", "small_npy")
+RUNS = ("two_stream", "inlet_wall", "small_npz", "small_csv", "small_npy", "two_stream_ranks",
+        "two_stream_dt")
+#: snapshots of the variants of the main run (pairs for ``swarmaudit compare``)
+VARIANT_SNAPSHOTS = 10
+#: the time step of the changed-step variant (the main run's is 0.1)
+VARIANT_DT = 0.125
 DESCRIPTIONS = {
     "two_stream": "2-D electrostatic PIC, two-stream instability; per-rank HDF5, 4 ranks, refined blocks, one rebalance",
     "inlet_wall": "Ar+ / Ar2+ ions injected at an inlet, absorbed at a wall or turned back by a potential hill; HDF5",
     "small_npz": "drifting 3-D Plummer star cluster, direct-sum N-body; .npz",
     "small_csv": "nitrogen in a duct leaking through a pump port (fails a tight check); CSV + layout.csv",
     "small_npy": "elastic glass grains in a periodic box; structured .npy",
+    "two_stream_ranks": "two_stream on 6 ranks, 8x4 blocks, particles sorted by cell: equal up to rounding",
+    "two_stream_dt": "two_stream with time step 0.125 instead of 0.1: statistically close, not equal",
 }
+
+
+def variant_steps(main_steps, dt_main: float, dt_variant: float, count: int = VARIANT_SNAPSHOTS):
+    """Steps of a variant at up to ``count`` of the main run's snapshot times, spread evenly.
+
+    Only times that both time steps reach exactly (on a whole step of each) are taken.
+    """
+    main_steps = np.asarray(main_steps, dtype=np.int64)
+    ratio = dt_main / dt_variant
+    k = main_steps * ratio
+    hit = np.abs(k - np.round(k)) < 1e-9
+    usable = np.round(k[hit]).astype(np.int64)
+    if usable.size <= count:
+        return usable
+    pick = np.unique(np.round(np.linspace(0, usable.size - 1, count)).astype(np.int64))
+    return usable[pick]
 
 
 def _read_manifest(out: str):
@@ -152,12 +181,22 @@ def write_demo_runs(out, particles=None, snapshots=None, force: bool = False, pr
     except FileNotFoundError:
         pass
     started = time.perf_counter()
+    from .pic2d import TwoStreamSetup
+    from .two_stream import snapshot_steps
+    main_setup = TwoStreamSetup(particles=particles)
+    main = snapshot_steps(main_setup.steps, snapshots)
     writers = {
         "two_stream": lambda d: write_two_stream(d, particles, snapshots, progress),
         "inlet_wall": lambda d: write_inlet_wall(d, progress),
         "small_npz": lambda d: write_small_npz(d, progress),
         "small_csv": lambda d: write_small_csv(d, progress),
         "small_npy": lambda d: write_small_npy(d, progress),
+        "two_stream_ranks": lambda d: write_two_stream(
+            d, particles, snapshots, progress, ranks=6, blocks=(8, 4), sort_by_cell=True,
+            at_steps=variant_steps(main, 1.0, 1.0), label="two_stream_ranks"),
+        "two_stream_dt": lambda d: write_two_stream(
+            d, particles, snapshots, progress, dt=VARIANT_DT,
+            steps=round(main_setup.steps * main_setup.dt / VARIANT_DT), at_steps=variant_steps(main, main_setup.dt, VARIANT_DT), label="two_stream_dt"),
     }
     facts: dict = {}
     seconds: dict = {}
@@ -170,7 +209,7 @@ def write_demo_runs(out, particles=None, snapshots=None, force: bool = False, pr
         t0 = time.perf_counter()
         summary = writers[name](partial)
         seconds[name] = round(time.perf_counter() - t0, 2)
-        facts[name] = _two_stream_facts(summary) if name == "two_stream" else summary
+        facts[name] = _two_stream_facts(summary) if name.startswith("two_stream") else summary
         shutil.rmtree(final, ignore_errors=True)
         os.replace(partial, final)
     elapsed = time.perf_counter() - started

@@ -338,7 +338,7 @@ SnapshotCallback = Callable[[int, float, np.ndarray, np.ndarray, np.ndarray, np.
 
 
 def run_two_stream(setup: TwoStreamSetup, snapshot_steps=(), on_snapshot: SnapshotCallback | None = None,
-                   chunk: int = CHUNK, every_step: bool = False) -> dict[str, np.ndarray]:
+                   chunk: int = CHUNK, every_step: bool = False, order=None) -> dict[str, np.ndarray]:
     """Advance the two beams ``setup.steps`` steps by leapfrog.
 
     At each step in ``snapshot_steps`` calls ``on_snapshot(step, time, x, y,
@@ -348,9 +348,14 @@ def run_two_stream(setup: TwoStreamSetup, snapshot_steps=(), on_snapshot: Snapsh
     per-step history: time and field_energy at every step, kinetic_energy
     and momentum_x/y at snapshot steps (NaN between them unless
     ``every_step``, which costs two more sweeps over the particles a step).
+    ``order`` (a permutation) holds the loaded particles in that order: row r
+    is particle ``order[r]``, as another decomposition over ranks would hold
+    them; the charge then sums in another order, so results differ by rounding.
     """
     grid = setup.grid
     x, y, vx, vy = load_beams(setup)
+    if order is not None:
+        x, y, vx, vy = (a[order] for a in (x, y, vx, vy))
     n = x.shape[0]
     qw = CHARGE * setup.weight
     qm = CHARGE / MASS

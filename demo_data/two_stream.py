@@ -34,15 +34,23 @@ def snapshot_steps(steps: int, snapshots: int) -> np.ndarray:
     return np.unique(np.round(np.linspace(0, steps, max(1, snapshots))).astype(np.int64))
 
 
-def two_stream_layout(setup: pic2d.TwoStreamSetup):
+def two_stream_layout(setup: pic2d.TwoStreamSetup, blocks=BLOCKS, ranks: int = RANKS):
     nx, ny = setup.nx, setup.ny
     dx, dy = setup.grid.dx, setup.grid.dy
     # level-1 blocks over level-0 cells [3/8, 5/8) of x, lower and upper half of y
     x0, x1 = (3 * nx // 8) * dx, (5 * nx // 8) * dx
     refined = [((x0, 0.0), (x1, (ny // 2) * dy)), ((x0, (ny // 2) * dy), (x1, setup.ly))]
-    return demo_layout((0.0, setup.lx, 0.0, setup.ly), (nx, ny), BLOCKS,
-                       rank_of_block=lambda ix, iy: ix * RANKS // BLOCKS[0],
-                       refined=refined, refined_ranks=(1, 2), periodic=("x", "y"))
+    return demo_layout((0.0, setup.lx, 0.0, setup.ly), (nx, ny), blocks,
+                       rank_of_block=lambda ix, iy: ix * ranks // blocks[0],
+                       refined=refined, refined_ranks=(1 % ranks, 2 % ranks), periodic=("x", "y"))
+
+
+def cell_order(setup: pic2d.TwoStreamSetup) -> np.ndarray:
+    """The loaded particles sorted by the cell they start in (as a cell-sorting code holds them)."""
+    x, y, _, _ = pic2d.load_beams(setup)
+    cell = (np.floor(x / setup.grid.dx).astype(np.int64) % setup.nx
+            + setup.nx * (np.floor(y / setup.grid.dy).astype(np.int64) % setup.ny))
+    return np.argsort(cell, kind="stable")
 
 
 def _below(limit: float) -> np.float32:
@@ -54,11 +62,25 @@ def _below(limit: float) -> np.float32:
 
 
 def write_two_stream(folder: str, particles: int, snapshots: int, progress=print,
-                     steps: int | None = None) -> dict:
-    """Run the two-stream PIC and write its snapshots under ``folder``; return a summary."""
-    setup = pic2d.TwoStreamSetup(particles=particles, **({} if steps is None else {"steps": steps}))
-    wanted = snapshot_steps(setup.steps, snapshots)
-    layout = two_stream_layout(setup)
+                     steps: int | None = None, *, dt: float | None = None, ranks: int = RANKS,
+                     blocks=BLOCKS, at_steps=None, sort_by_cell: bool = False,
+                     label: str = "two_stream") -> dict:
+    """Run the two-stream PIC and write its snapshots under ``folder``; return a summary.
+
+    The variants of the demo change one thing each: ``ranks``/``blocks`` and
+    ``sort_by_cell`` (the particles held in another order, so sums round
+    differently), or ``dt`` with ``steps`` (a different time step to the same
+    end time). ``at_steps`` names the snapshot steps instead of ``snapshots``.
+    """
+    extra = {} if steps is None else {"steps": steps}
+    if dt is not None:
+        extra["dt"] = dt
+    setup = pic2d.TwoStreamSetup(particles=particles, **extra)
+    wanted = (np.unique(np.asarray(at_steps, dtype=np.int64)) if at_steps is not None
+              else snapshot_steps(setup.steps, snapshots))
+    layout = two_stream_layout(setup, blocks, ranks)
+    order = cell_order(setup) if sort_by_cell else None
+    ids = order if order is not None else np.arange(2 * setup.per_beam, dtype=np.int64)
     rebalance_at = int(wanted[len(wanted) // 2]) if len(wanted) >= 4 else None
     n_right = setup.per_beam
     state = {"layout": layout, "done": 0}
@@ -73,22 +95,22 @@ def write_two_stream(folder: str, particles: int, snapshots: int, progress=print
         if step == rebalance_at:
             block, _ = particle_ranks((x32, y32), lay)
             load = np.bincount(lay.block_index(block), minlength=lay.nblocks)
-            lay = state["layout"] = with_ranks(lay, balance_ranks(load, RANKS))
+            lay = state["layout"] = with_ranks(lay, balance_ranks(load, ranks))
         _, rank = particle_ranks((x32, y32), lay)
         sub = os.path.join(folder, f"step_{step:06d}")
         os.makedirs(sub, exist_ok=True)
         vx32 = vx.astype(np.float32)
         vy32 = vy.astype(np.float32)
-        for r, idx in enumerate(split_by_rank(rank, RANKS)):
-            cut = int(np.searchsorted(idx, n_right))
+        for r, idx in enumerate(split_by_rank(rank, ranks)):
+            right = ids[idx] < n_right
             _write_rank_file(os.path.join(sub, f"rank_{r:03d}.h5"), step, time, we, lay,
-                             [(SPECIES[0], idx[:cut]), (SPECIES[1], idx[cut:])],
-                             x32, y32, vx32, vy32, setup.weight)
+                             [(SPECIES[0], idx[right]), (SPECIES[1], idx[~right])],
+                             x32, y32, vx32, vy32, setup.weight, ids)
         state["done"] += 1
         if progress and (state["done"] % 10 == 0 or state["done"] == len(wanted)):
-            progress(f"  two_stream: {state['done']}/{len(wanted)} snapshots (t = {time:.1f}/omega_p)")
+            progress(f"  {label}: {state['done']}/{len(wanted)} snapshots (t = {time:.1f}/omega_p)")
 
-    history = pic2d.run_two_stream(setup, wanted, on_snapshot)
+    history = pic2d.run_two_stream(setup, wanted, on_snapshot, order=order)
     return {
         "particles": 2 * setup.per_beam,
         "snapshots": int(len(wanted)),
@@ -104,7 +126,7 @@ def write_two_stream(folder: str, particles: int, snapshots: int, progress=print
     }
 
 
-def _write_rank_file(path, step, time, we, layout, parts, x32, y32, vx32, vy32, weight):
+def _write_rank_file(path, step, time, we, layout, parts, x32, y32, vx32, vy32, weight, ids):
     import h5py
     with h5py.File(path, "w") as fh:
         fh.attrs["step"] = np.int64(step)
@@ -121,7 +143,7 @@ def _write_rank_file(path, step, time, we, layout, parts, x32, y32, vx32, vy32, 
                 for axis, col in (("x", cx), ("y", cy)):
                     ds = sub.create_dataset(axis, data=col[idx])
                     ds.attrs["units"] = unit
-            ds = g.create_dataset("id", data=idx.astype(np.int64), **(PACKED if idx.size else {}))
+            ds = g.create_dataset("id", data=ids[idx].astype(np.int64), **(PACKED if idx.size else {}))
             ds.attrs["units"] = "1"
             ds = g.create_dataset("weight", data=np.full(idx.size, weight), **(PACKED if idx.size else {}))
             ds.attrs["units"] = "1"

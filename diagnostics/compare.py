@@ -341,6 +341,8 @@ def _pair_stats(keys_cand, ia, ib, pos_ref, pos_cand, mom_ref, mom_cand, layout,
                                             equal_nan=a.dtype.kind == "f" and b.dtype.kind == "f"))
     out.identical = identical
     top = _top(disp, du, worst)
+    # a pair that does not differ at all is not worth naming
+    top = top[~((disp[top] == 0) & (du[top] == 0))]
     out.worst_key = _key_labels(keys_cand, ib[top])
     out.worst_position = disp[top]
     out.worst_momentum = du[top]

@@ -533,7 +533,9 @@ def summary_lines(comp: Comparison) -> list[str]:
                 continue
             k = int(np.nanargmax(g["max_position_cells"].fillna(-1).to_numpy()))
             w = g.iloc[k]
-            out.append(f"{s}: matched {g['matched_fraction'].min():.4g} of particles at worst; largest "
+            frac = g["matched_fraction"].min()
+            matched = "every particle matched" if frac == 1 else f"matched fraction {frac:.4g} at worst"
+            out.append(f"{s}: {matched}; largest "
                        f"position difference {w['max_position_cells']:.3g} cells at reference snapshot "
                        f"{int(w['ref_snapshot'])} (particle {w['worst_ids'].split(' ')[0] if w['worst_ids'] else '?'}), "
                        f"largest relative momentum difference {g['max_relative_momentum'].max():.3g}")

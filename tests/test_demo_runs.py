@@ -50,13 +50,14 @@ def _owner(x, y, blocks):
 
 def test_writes_every_run_and_a_manifest(demo):
     out, paths, lines = demo
-    assert set(paths) == {"two_stream", "inlet_wall", "small_npz", "small_csv", "small_npy"}
+    assert set(paths) == {"two_stream", "inlet_wall", "small_npz", "small_csv", "small_npy",
+                          "two_stream_ranks", "two_stream_dt"}
     assert all(os.path.isdir(p) and os.path.dirname(p) == str(out) for p in paths.values())
     manifest = json.loads((out / generate.MANIFEST).read_text())
     assert manifest["parameters"] == {"version": generate.GENERATOR_VERSION,
                                       "particles": PARTICLES, "snapshots": SNAPSHOTS}
     assert not glob.glob(str(out / ".*.partial"))
-    assert any("wrote 5 demo runs" in s for s in lines)
+    assert any("wrote 7 demo runs" in s for s in lines)
 
 
 def test_two_stream_per_rank_hdf5(demo):
@@ -181,6 +182,24 @@ def test_runs_open_through_discovery(demo):
     assert [ts[i].step for i in range(len(ts))] == sorted(ts[i].step for i in range(len(ts)))
     assert sum(len(f) for f in ts[0].species.values()) == PARTICLES
     assert ts[0].layout is not None and sorted(ts[0].layout.levels.tolist()) == [0, 1]
+
+
+def test_variants_of_the_main_run(demo):
+    from swarmaudit.readers.discover import open_run
+    _, paths, _ = demo
+    main, ranks, dt = (open_run(paths[k]) for k in ("two_stream", "two_stream_ranks", "two_stream_dt"))
+    main_times = {round(main[i].time, 9) for i in range(len(main))}
+    # the rank variant: 6 files a snapshot, 8 x 4 + 2 blocks, the same particles at the main run's steps
+    assert {ranks[i].step for i in range(len(ranks))} <= {main[i].step for i in range(len(main))}
+    assert len(ranks.refs[0].paths) == 6 and ranks[0].layout.nblocks == 34
+    for sp in ("beam_right", "beam_left"):
+        a, b = main[0].species[sp], ranks[0].species[sp]
+        oa, ob = np.argsort(a["id"]), np.argsort(b["id"])
+        np.testing.assert_array_equal(a["id"][oa], b["id"][ob])
+        np.testing.assert_array_equal(a["position/x"][oa], b["position/x"][ob])
+    # the changed-step variant: other steps, at times the main run also has
+    assert {round(dt[i].time, 9) for i in range(len(dt))} <= main_times
+    assert dt[len(dt) - 1].step == 384 and len(dt) >= 2
 
 
 def test_second_call_with_the_same_parameters_keeps_the_runs(demo):

@@ -21,6 +21,8 @@ from swarmaudit.diagnostics.compare import (PairStats, census_chi2, compare_part
                                             pair_stats)
 from swarmaudit.diagnostics.migration import DuplicateKeyError
 
+from _need import need_that
+
 
 # Kolmogorov–Smirnov -------------------------------------------------------------------
 @pytest.mark.parametrize("seed,na,nb,shift", [(0, 300, 450, 0.0), (1, 2000, 1500, 0.1),
@@ -229,8 +231,8 @@ def test_merge_of_pieces_equals_whole():
     assert PairStats().merge(whole).pairs == n
 
 
-@pytest.mark.skipif(not _kernels.available, reason="numba not installed")
 def test_momentum_kernel_equals_numpy_path():
+    need_that(_kernels.available, "numba is not installed: no compiled momentum kernel")
     rng = np.random.default_rng(10)
     n = _kernels.MIN_SIZE + 10
     ia, ib = rng.permutation(n), rng.permutation(n)

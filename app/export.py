@@ -637,7 +637,8 @@ def _facts(ctx, chosen, species) -> list[tuple[str, str]]:
     first, last = run[0], run[n - 1]
     facts = [("run", str(run.source)), ("snapshots", f"{n} ({run.refs[0].label} … {run.refs[-1].label})")]
     if first.step is not None and last.step is not None:
-        facts.append(("steps", f"{first.step} … {last.step}"))
+        facts.append(("steps", f"{first.step} … {last.step}, {run.steps_source()}"
+                               + ("" if run.steps_stored else " (none stored)")))
     if first.time is not None and last.time is not None:
         unit = f" {first.time_unit}" if first.time_unit else ""
         facts.append(("time", f"{first.time:.6g} … {last.time:.6g}{unit}"))

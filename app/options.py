@@ -9,6 +9,7 @@ from ..core.context import AuditContext
 from ..core.errors import OptionError
 from ..core.layout import regular_layout
 from ..core.roles import AXES, RoleMap
+from ..core.run import parse_step_rule
 
 
 def _numbers(value, kind, what: str):
@@ -40,6 +41,9 @@ def _names(value, what: str) -> list[str]:
 def add_run_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("run", nargs="+", metavar="RUN",
                    help="a folder of snapshots, a glob, or snapshot files (a sub-folder of per-rank files is one snapshot)")
+    p.add_argument("--steps-per-snapshot", metavar="K|index|names",
+                   help="when the files store no step: K steps between snapshots, 'index' to count "
+                        "snapshots, or 'names' (the default) for the integer in each file name")
     g = p.add_argument_group("layout")
     g.add_argument("--domain", metavar="XLO,XHI,YLO,YHI[,ZLO,ZHI]", help="physical bounds of the domain")
     g.add_argument("--cells", metavar="NX,NY[,NZ]", help="level-0 cells per axis")
@@ -99,6 +103,7 @@ RUN_OPTIONS = {
     "domain": None, "cells": None, "blocks": None, "ranks": 1, "layout": None, "periodic": "",
     "roles_file": None, "role": (), "id": None, "species": None,
     "engine": "auto", "scheduler": None, "no_cache": False, "relativistic": False, "c": None,
+    "steps_per_snapshot": None,
 }
 
 
@@ -153,6 +158,7 @@ def _option_values(args, keywords: dict):
         if not (0 < c < float("inf")):
             raise OptionError(f"--c takes a positive number, got '{values['c']}'")
         values["c"] = c
+    values["steps_per_snapshot"] = parse_step_rule(values["steps_per_snapshot"])
     if values["engine"] not in ("auto", "memory", "dask"):
         raise OptionError(f"--engine takes one of auto, memory, dask, got '{values['engine']}'")
     # --role ROLE=NAME (repeatable), roles={ROLE: NAME} and roles=["ROLE=NAME"] say the same
@@ -184,7 +190,7 @@ def context_from_options(args=None, follow: bool = True, **keywords) -> AuditCon
     species = [s.strip() for s in opts.species.split(",")] if opts.species else None
     ctx = AuditContext(run, fixed, species=species, engine=opts.engine, scheduler=opts.scheduler,
                        relativistic=bool(opts.relativistic), c=opts.c,
-                       use_cache=not opts.no_cache)
+                       use_cache=not opts.no_cache, steps_per_snapshot=opts.steps_per_snapshot)
     ctx.notes.extend(run.skipped)
     check_role_columns(role_map, run)
     from ..engine.dask_backend import configure

@@ -389,12 +389,14 @@ def _migration_pair(ctx: AuditContext, a: int, b: int) -> dict:
     """species -> MigrationResult for one pair (cached like the reductions)."""
     la, lb = ctx.layout(a), ctx.layout(b)
     sig_b = ctx.run.refs[b].signature()
+    steps = [ctx.run[a].step, ctx.run[b].step]     # taken from the names or an option when not stored
     key = ("migration", a, b, ctx.run.refs[a].signature(), sig_b,
-           tuple(ctx.species_names()), id(la), id(lb))
+           tuple(ctx.species_names()), id(la), id(lb), tuple(steps))
     cache = _cache(ctx)
     if key not in cache:
         params = {"with": [list(t) for t in sig_b], "layout_a": layout_fingerprint(la),
-                  "layout_b": layout_fingerprint(lb), "periodic": [list(la.periodic), list(lb.periodic)]}
+                  "layout_b": layout_fingerprint(lb), "periodic": [list(la.periodic), list(lb.periodic)],
+                  "steps": steps}
         if any(size < 0 for _, size, _ in sig_b):
             params = None   # the second snapshot has no file to key on
         compute = lambda: _compute_migration(ctx, a, b, la, lb)   # noqa: E731

@@ -9,7 +9,7 @@ import numpy as np
 from .errors import InputError
 from .layout import BlockLayout, bounding_layout
 from .roles import missing_roles_help
-from .run import Run
+from .run import Run, parse_step_rule
 
 
 @dataclass
@@ -30,9 +30,20 @@ class AuditContext:
     use_cache: bool = True                  # False (--no-cache): no persistent reduction cache
     relativistic: bool = False
     c: float | None = None                  # speed of light in the run's units (None: SI)
+    steps_per_snapshot: int | str | None = None   # --steps-per-snapshot: K, "index" or "names"
     notes: list[str] = field(default_factory=list)
     _sidecar: BlockLayout | None | bool = field(default=False, repr=False)
     _fallback: BlockLayout | None = field(default=None, repr=False)
+
+    def __post_init__(self):
+        rule = parse_step_rule(self.steps_per_snapshot)
+        if rule is not None and getattr(self.run, "steps_stored", True):
+            self.notes.append(f"--steps-per-snapshot {rule} is not used: every snapshot stores its step")
+        elif rule is not None:
+            self.run.take_steps(rule)
+        note = self.run.steps_note() if hasattr(self.run, "steps_note") else None
+        if note:
+            self.notes.append(note)
 
     def species_names(self) -> list[str]:
         names = self.run.species_names()

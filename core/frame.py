@@ -281,6 +281,7 @@ class Snapshot:
     warnings: list[str] = field(default_factory=list)
     parts: list[str] = field(default_factory=list)
     time_unit: str = ""
+    step_taken: bool = False     # the step was not stored: the run took it (``Run.step_rule``)
 
     @property
     def count(self) -> int:
@@ -296,7 +297,7 @@ class Snapshot:
     def with_role_map(self, role_map: RoleMap) -> "Snapshot":
         return Snapshot(self.path, {k: f.with_role_map(role_map) for k, f in self.species.items()},
                         self.step, self.time, dict(self.meta), self.layout, list(self.warnings),
-                        list(self.parts), self.time_unit)
+                        list(self.parts), self.time_unit, self.step_taken)
 
 
 @contextmanager

@@ -7,8 +7,28 @@ import threading
 from dataclasses import dataclass, field
 from typing import Callable
 
+from .errors import OptionError
 from .frame import Snapshot
-from .roles import RoleMap
+from .roles import RoleMap, last_integer
+
+#: how the steps of a run are taken when its files store none (``Run.step_rule``)
+STEP_RULES = ("names", "index")
+#: the rule a run falls back to when its names do not number its snapshots either
+BY_POSITION = "positions"
+
+
+def parse_step_rule(value):
+    """``--steps-per-snapshot``: ``names`` (the integer that orders each file name), ``index``
+    (count snapshots) or a whole number K >= 1 of steps between snapshots; None stays None."""
+    if value is None:
+        return None
+    text = str(value).strip().lower()
+    if text in STEP_RULES:
+        return text
+    if isinstance(value, bool) or not text.isdigit() or int(text) < 1:
+        raise OptionError(f"--steps-per-snapshot takes a whole number of at least 1, 'index' or "
+                          f"'names', got '{value}'")
+    return int(text)
 
 
 @dataclass
@@ -55,6 +75,18 @@ class Run:
     _lock: threading.RLock = field(default_factory=threading.RLock, repr=False, compare=False)
     _species: tuple = field(default=(None, None), repr=False, compare=False)   # (key, names)
     _version: int = field(default=0, repr=False, compare=False)
+    # Steps: when not every snapshot stores one, each snapshot's step is taken by ``step_rule``
+    # ("names": the integer that orders its file name, "index": its position, K: K × its
+    # position), so the steps between two snapshots are known however the files were written
+    steps_stored: bool = True
+    step_rule: object = "names"
+
+    def take_steps(self, rule) -> None:
+        """Take the steps by ``rule`` when the files store none (``names`` falls back to
+        positions when the names do not number the snapshots)."""
+        if rule == "names" and not self.names_number_snapshots():
+            rule = BY_POSITION
+        self.step_rule = rule
 
     def __len__(self) -> int:
         return len(self.refs)
@@ -65,14 +97,49 @@ class Run:
                 i += len(self.refs)
             snap = self._open.get(i)
             ref = self.refs[i]
-        if snap is not None:
-            return snap
-        snap = self.opener(ref, self.role_map)
-        with self._lock:
-            # a rescan may have moved or replaced the ref meanwhile: keep only a matching result
-            if i < len(self.refs) and self.refs[i] is ref:
-                snap = self._open.setdefault(i, snap)
+        if snap is None:
+            snap = self.opener(ref, self.role_map)
+            with self._lock:
+                # a rescan may have moved or replaced the ref meanwhile: keep only a matching result
+                if i < len(self.refs) and self.refs[i] is ref:
+                    snap = self._open.setdefault(i, snap)
+        if not self.steps_stored:
+            # set on every look-up: a rescan may move the snapshot, the rule may change
+            snap.step, snap.step_taken = self.taken_step(i, ref), True
         return snap
+
+    def taken_step(self, i: int, ref: SnapshotRef | None = None) -> int | None:
+        """The step of snapshot ``i`` by ``step_rule`` (used when the files store none)."""
+        rule = self.step_rule
+        if rule == "names":
+            return last_integer((ref or self.refs[i]).label)
+        return i * (1 if rule in ("index", BY_POSITION) else int(rule))
+
+    def names_number_snapshots(self) -> bool:
+        """Whether every snapshot's name holds an integer and no two the same (steps by name)."""
+        nums = [last_integer(r.label) for r in self.refs]
+        return None not in nums and len(set(nums)) == len(nums)
+
+    def steps_source(self) -> str:
+        """Where the steps come from, in words (for notes and reports)."""
+        if self.steps_stored:
+            return "stored in the files"
+        rule = self.step_rule
+        if rule == "names":
+            return "taken from the file names"
+        if rule == "index":
+            return "counted by snapshot (--steps-per-snapshot index)"
+        if rule == BY_POSITION:
+            return "counted by snapshot (the file names do not number the snapshots)"
+        return f"{int(rule)} per snapshot (--steps-per-snapshot {int(rule)})"
+
+    def steps_note(self) -> str | None:
+        """The one note saying that the steps were taken, not read, and which they are."""
+        if self.steps_stored or not self.refs:
+            return None
+        shown = [self.taken_step(i) for i in range(min(3, len(self.refs)))]
+        listed = ", ".join(str(v) for v in shown) + (", …" if len(self.refs) > 3 else "")
+        return f"no step stored; steps {self.steps_source()} ({listed})"
 
     def __iter__(self):
         for i in range(len(self)):

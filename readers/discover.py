@@ -190,7 +190,7 @@ def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True) -> R
     """Find, order and (lazily) open the snapshots of a run.
 
     Snapshots are ordered by their ``step``, else by the last integer in the
-    name. With ``follow``, a snapshot that cannot be opened yet, or a
+    name, which is then their step too (``Run.step_rule``). With ``follow``, a snapshot that cannot be opened yet, or a
     per-rank snapshot with fewer files than the others, written in the last
     ``FRESH_SECONDS`` is left out with a note: the simulation is most likely
     still writing it (:func:`rescan_run` picks it up later).
@@ -234,6 +234,10 @@ def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True) -> R
               spec=spec, follow=follow, sidecar=lambda: find_sidecar_layout(run))
     for i, (_, snap) in enumerate(opened):
         run._open[i] = snap
+    if not have_steps:
+        # no step stored (or not in every file): the integer that orders the names is the step
+        run.steps_stored = False
+        run.take_steps("names")
     return run
 
 

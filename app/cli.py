@@ -173,6 +173,10 @@ def _dispatch(args) -> int:
         from .compare_cmd import run_compare
         return run_compare(args)
     from .options import context_from_options
+    if args.command == "serve":
+        from .options import contexts_from_options
+        from .serve import run_serve
+        return run_serve(contexts_from_options(args), args)
     ctx = context_from_options(args)
     if args.command == "inspect":
         from .inspect_cmd import run_inspect
@@ -183,9 +187,6 @@ def _dispatch(args) -> int:
     if args.command == "check":
         from .check import run_check
         return run_check(ctx, args)
-    if args.command == "serve":
-        from .serve import run_serve
-        return run_serve(ctx, args)
     if args.command == "movie":
         from .movie import run_movie
         return run_movie(ctx, args)

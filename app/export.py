@@ -11,6 +11,8 @@ from __future__ import annotations
 import math
 import os
 import re
+import secrets
+import shutil
 import time
 from dataclasses import dataclass, field
 
@@ -19,11 +21,9 @@ import numpy as np
 from ..core import interrupt
 from ..core.errors import InputError, OptionError
 from ..core.frame import transient_columns
+from ..core.outputs import FIGURE_DIR, REPORT_NAME, TABLE_NAMES
 from .png import use_headless_matplotlib
 
-TABLE_NAMES = ("census.csv", "migration.csv", "migration_summary.csv", "drift.csv")
-REPORT_NAME = "report.html"
-FIGURE_DIR = "figures"
 
 #: share of the picture the density image itself covers (the rest is axes, title, colour bar)
 _IMAGE_SHARE = (0.78, 0.80)
@@ -188,22 +188,39 @@ def guard_outputs(paths, inputs: set[str]) -> None:
                                  "overwrites an input", "choose another --out folder")
 
 
-def guard_run_folder(out: str, ctx) -> None:
-    """Refuse to write into a folder the run's snapshots are found in.
-
-    The tables are CSV files: written beside the snapshots, the next command
-    on that folder would read them as snapshots of the run.
-    """
+def run_folders(ctx) -> set[str]:
+    """Real paths of the folders a run lives in: the folders named as the run, those holding
+    its snapshot files, and a per-rank snapshot folder's parent."""
     folders = set()
+    spec = getattr(ctx.run, "spec", None)
+    items = [spec] if isinstance(spec, (str, os.PathLike)) else list(spec or ())
+    for item in items:
+        if os.path.isdir(item):
+            folders.add(os.path.realpath(item))
     for ref in ctx.run.refs:
         if len(ref.paths) == 1:
             folders.add(os.path.realpath(os.path.dirname(os.path.abspath(ref.paths[0]))))
         else:      # a folder of per-rank files, inside the run folder
             folders.add(os.path.realpath(os.path.abspath(ref.path)))
             folders.add(os.path.realpath(os.path.dirname(os.path.abspath(ref.path))))
-    if os.path.realpath(out) in folders:
-        raise OptionError(f"--out {out} is a folder of the run itself: the tables written there "
-                          "would be read as snapshots next time; choose another folder")
+    return folders
+
+
+def guard_run_folder(out: str, ctx) -> None:
+    """Refuse to write into, or anywhere inside, a folder the run's snapshots are found in.
+
+    The tables are CSV files: written beside the snapshots, or in a sub-folder of the run
+    folder, the next command on that folder would read them as snapshots of the run.
+    """
+    real = os.path.realpath(out)
+    for folder in sorted(run_folders(ctx)):
+        if real == folder:
+            raise OptionError(f"--out {out} is a folder of the run itself: the tables written there "
+                              "would be read as snapshots next time; choose another folder")
+        if real.startswith(folder.rstrip(os.sep) + os.sep):
+            raise OptionError(f"--out {out} is inside the run folder {folder}: the tables written "
+                              "there would be read as a snapshot next time; choose a folder "
+                              "outside the run")
 
 
 def _safe(name: str) -> str:
@@ -314,34 +331,61 @@ def density_view(frame, xcol, ycol, *, grid, x_range, y_range, cmap, scaling, ti
 
 # the export --------------------------------------------------------------------------------
 class _Plan:
-    """Every output path, known before anything is written (for the clobber guard)."""
+    """Every output path, known before anything is written (for the clobber guard).
+
+    ``fig`` and ``file`` hand out where to write: a hidden staging folder inside the output
+    folder. Only when the whole export has succeeded does ``commit`` move each file to its
+    own name; ``abort`` removes the staging folder, so a failed export leaves no half-written
+    table or figure (and a folder it made itself, if empty, goes too).
+    """
 
     def __init__(self, out):
         self.out = out
-        self.figdir = os.path.join(out, FIGURE_DIR)
-        self.paths: list[str] = []
+        self.stage = os.path.join(out, f".export-{os.getpid()}-{secrets.token_hex(4)}")
+        self.figdir = os.path.join(self.stage, FIGURE_DIR)
+        self.paths: list[str] = []              # final names (what the guards check)
+        self._final: dict[str, str] = {}        # staged name -> final name
+        self._made_out = False
+
+    def _add(self, rel: str) -> str:
+        final, staged = os.path.join(self.out, rel), os.path.join(self.stage, rel)
+        self.paths.append(final)
+        self._final[staged] = final
+        return staged
 
     def fig(self, name) -> str:
-        p = os.path.join(self.figdir, name)
-        self.paths.append(p)
-        return p
+        return self._add(os.path.join(FIGURE_DIR, name))
 
     def file(self, name) -> str:
-        p = os.path.join(self.out, name)
-        self.paths.append(p)
-        return p
+        return self._add(name)
+
+    def final(self, staged: str) -> str:
+        return self._final.get(staged, staged)
+
+    def begin(self) -> None:
+        self._made_out = not os.path.isdir(self.out)
+        os.makedirs(self.figdir)
+
+    def commit(self) -> None:
+        os.makedirs(os.path.join(self.out, FIGURE_DIR), exist_ok=True)
+        for staged, final in self._final.items():
+            if os.path.exists(staged):
+                os.replace(staged, final)
+        shutil.rmtree(self.stage, ignore_errors=True)
+
+    def abort(self) -> None:
+        shutil.rmtree(self.stage, ignore_errors=True)
+        if self._made_out:
+            try:
+                os.rmdir(self.out)
+            except OSError:     # something else is in it now: leave it
+                pass
 
 
 def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = False,
                stream=None) -> ExportResult:
     """Write figures, tables and report.html into ``opts.out``; return what was written."""
     use_headless_matplotlib()
-    from . import figures as F
-    from .png import save_png
-    from .progress import Progress
-    from .report import FigureItem, Section, TableItem, Verdict, render_report, write_report
-    from ..audit import tables as audit
-
     t0 = time.perf_counter()
     out = os.path.abspath(opts.out)
     if os.path.exists(out) and not os.path.isdir(out):
@@ -395,7 +439,35 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     ctx.layout(chosen[0])   # finds a layout file beside the run, which is an input too
     guard_outputs(plan.paths, input_files(ctx, args))
     guard_run_folder(out, ctx)
-    os.makedirs(plan.figdir, exist_ok=True)
+    plan.begin()
+    try:
+        _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
+                       migration_figs, drift_fig, deposit_figs, table_paths, report_path,
+                       keep_aggregates, stream)
+    except BaseException:
+        plan.abort()
+        raise
+    plan.commit()
+    for rec in res.figures:
+        rec.path = plan.final(rec.path)
+    res.tables = {k: plan.final(v) for k, v in res.tables.items()}
+    res.report = plan.final(res.report) if res.report else res.report
+    res.seconds = time.perf_counter() - t0
+    return res
+
+
+def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
+                   migration_figs, drift_fig, deposit_figs, table_paths, report_path,
+                   keep_aggregates, stream) -> None:
+    """Draw and write everything into the plan's staging folder."""
+    from . import figures as F
+    from .png import save_png
+    from .progress import Progress
+    from .report import FigureItem, Section, TableItem, Verdict, render_report, write_report
+    from ..audit import tables as audit
+    run = ctx.run
+    n = len(run)
+    notes = res.notes
 
     total = (len(views) + 2 * len(census_figs) + 2 * len(migration_figs) + (1 if drift_fig else 0)
              + len(deposit_figs) + 4 + 1)
@@ -571,8 +643,6 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
         write_report(report_path, text)
         res.report = report_path
         bar.step("report")
-    res.seconds = time.perf_counter() - t0
-    return res
 
 
 # per-snapshot pieces the figures need (compositions of core.audit and diagnostics) ----------

@@ -40,7 +40,8 @@ def _names(value, what: str) -> list[str]:
 
 def add_run_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("run", nargs="+", metavar="RUN",
-                   help="a folder of snapshots, a glob, or snapshot files (a sub-folder of per-rank files is one snapshot)")
+                   help="a folder of snapshots, a glob, or snapshot files (a sub-folder of per-rank "
+                        "files is one snapshot); serve takes several run folders")
     p.add_argument("--steps-per-snapshot", metavar="K|index|names",
                    help="when the files store no step: K steps between snapshots, 'index' to count "
                         "snapshots, or 'names' (the default) for the integer in each file name")
@@ -182,11 +183,15 @@ def context_from_options(args=None, follow: bool = True, **keywords) -> AuditCon
     options by name (``swarmaudit.open_run``). Bad values raise the
     OptionError/InputError the command line prints.
     """
-    from ..readers.discover import open_run
+    from ..readers.discover import open_run, split_runs
     opts = _option_values(args, keywords)
+    runs = split_runs(opts.run)
+    if len(runs) > 1:
+        raise OptionError(f"{', '.join(runs)} are {len(runs)} run folders, and this command "
+                          "takes one run (swarmaudit serve shows several)")
     role_map = RoleMap.from_options(opts.role, opts.roles_file, opts.id)
     fixed = layout_from_options(opts)
-    run = open_run(opts.run, role_map, follow=follow)
+    run = open_run(runs[0], role_map, follow=follow)
     species = [s.strip() for s in opts.species.split(",")] if opts.species else None
     ctx = AuditContext(run, fixed, species=species, engine=opts.engine, scheduler=opts.scheduler,
                        relativistic=bool(opts.relativistic), c=opts.c,
@@ -196,6 +201,12 @@ def context_from_options(args=None, follow: bool = True, **keywords) -> AuditCon
     from ..engine.dask_backend import configure
     configure(ctx.engine, ctx.scheduler)   # images follow the same engine as the tables
     return ctx
+
+
+def contexts_from_options(args, follow: bool = True) -> list[AuditContext]:
+    """A context per run named: each folder given is a run of its own, files or a glob one run."""
+    from ..readers.discover import split_runs
+    return [context_from_options(args, follow, run=spec) for spec in split_runs(args.run)]
 
 
 def check_role_columns(role_map: RoleMap, run) -> None:

@@ -163,8 +163,8 @@ def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
     for item in paths_or_contexts:
         if isinstance(item, AuditContext):
             runs.add(run_name(item), item, roots=roots)
-        elif isinstance(item, tuple):
-            runs.add(item[0], item[1], roots=roots)
+        elif isinstance(item, tuple):      # (name, context) or (name, context, its roots)
+            runs.add(item[0], item[1], roots=item[2] if len(item) > 2 else roots)
         else:
             from ..readers.discover import open_run
             ctx = AuditContext(open_run(os.fspath(item), RoleMap()))
@@ -255,9 +255,16 @@ def _open_browser(url: str) -> None:
         pass
 
 
-def run_serve(ctx: AuditContext, args) -> int:
-    """``swarmaudit serve RUN``: one run."""
-    roots = [r for r in getattr(args, "run", []) if os.path.isdir(r)]
-    confine(ctx, roots)
-    # snapshots appearing later (a live run) are confined the same way
-    return serve_runs([ctx], args, roots=roots)
+def run_serve(contexts, args) -> int:
+    """``swarmaudit serve RUN [RUN...]``: one run, or a run per folder named."""
+    if isinstance(contexts, AuditContext):
+        contexts = [contexts]
+    items = []
+    for ctx in contexts:
+        spec = ctx.run.spec
+        named = [spec] if isinstance(spec, (str, os.PathLike)) else list(spec or ())
+        roots = [os.fspath(r) for r in named if os.path.isdir(r)]
+        confine(ctx, roots)
+        # snapshots appearing later (a live run) are confined the same way
+        items.append((run_name(ctx), ctx, roots))
+    return serve_runs(items, args)

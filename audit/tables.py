@@ -169,6 +169,10 @@ def _compute_census(ctx: AuditContext, i: int, layout) -> dict:
             with _held_open(frame):
                 got = reduce(acc, frame, ctx)
         out[s] = (got["block"], got["rank"])
+        bad = int(got.get("nonfinite", 0))
+        if bad:
+            _note(ctx, f"{_where(ctx, i)}: {bad:,} particle(s) of species '{s}' with a NaN or "
+                       "infinite position are counted in block -1")
     return out
 
 

@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import InputError
-from .layout import BlockLayout, bounding_layout
+from .layout import BlockLayout, bounding_layout, nonfinite_rows
 from .roles import missing_roles_help
 from .run import Run, parse_step_rule
 
@@ -19,7 +19,7 @@ class AuditContext:
     Layout precedence: the command line (``--domain/--cells/--blocks`` or
     ``--layout``), else the snapshot's own ``blocks`` group, else a
     ``layout.csv``/``blocks.csv`` beside the snapshots, else one block around
-    the first snapshot's particles (with a warning).
+    the first snapshot's particles with a finite position (with a note).
     """
 
     run: Run
@@ -90,7 +90,14 @@ class AuditContext:
                                  "give --domain, --cells and --blocks")
             d = frames[0].ndim
             cols = [np.concatenate([f.positions()[a] for f in frames if f.ndim == d]) for a in range(d)]
+            bad = int(np.count_nonzero(nonfinite_rows(cols)))
+            if bad == len(cols[0]):
+                raise InputError(first.path, "has no particle with a finite position to place a "
+                                 "layout around", "give --domain, --cells and --blocks")
             self._fallback = bounding_layout(cols)
             self.notes.append("no block layout given or stored: using one block around the first "
                               "snapshot's particles (give --domain/--cells/--blocks or --layout)")
+            if bad:
+                self.notes.append(f"{bad:,} particle(s) of the first snapshot with a NaN or infinite "
+                                  "position are left out of that block (they are counted in block -1)")
         return self._fallback

@@ -326,11 +326,29 @@ def cell_index(positions, layout: BlockLayout, clip: bool = True) -> np.ndarray:
     return flat
 
 
+def nonfinite_rows(cols, n: int | None = None) -> np.ndarray:
+    """True for each particle with a NaN or infinite value in any of ``cols`` (integers never are)."""
+    cols = _as_columns(cols)
+    n = (cols[0].shape[0] if cols else 0) if n is None else n
+    bad = np.zeros(n, dtype=bool)
+    for c in cols:
+        if c.dtype.kind in "fc":
+            bad |= ~np.isfinite(c)
+    return bad
+
+
 def bounding_layout(positions, axes_count: int | None = None, cells: int = 64) -> BlockLayout:
-    """One block around the particles, for runs that come with no layout at all."""
+    """One block around the particles, for runs that come with no layout at all.
+
+    Particles with a NaN or infinite coordinate are left out of the box (an infinite
+    bound would make every cell infinitely wide); they land in no block, so in ``-1``.
+    """
     cols = _as_columns(positions)
-    lo = np.array([np.nanmin(c) if c.size else 0.0 for c in cols], dtype=np.float64)
-    hi = np.array([np.nanmax(c) if c.size else 1.0 for c in cols], dtype=np.float64)
+    bad = nonfinite_rows(cols)
+    if bad.any():
+        cols = [c[~bad] for c in cols]
+    lo = np.array([np.min(c) if c.size else 0.0 for c in cols], dtype=np.float64)
+    hi = np.array([np.max(c) if c.size else 1.0 for c in cols], dtype=np.float64)
     span = np.where(hi > lo, hi - lo, 1.0)
     hi = hi + span * 1e-9 + np.where(hi > lo, 0.0, 1.0)   # half-open: the largest particle inside
     d = len(cols)

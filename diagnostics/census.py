@@ -13,7 +13,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from ..core.layout import BlockLayout, assign_blocks
+from ..core.layout import BlockLayout, assign_blocks, nonfinite_rows
 from ._bincount import counts_and_sums
 from .accumulate import Accumulator, one_piece
 
@@ -59,7 +59,8 @@ class Census(Accumulator):
     The state holds ``counts``/``wsum`` per slot (slot 0: in no block, slot
     r+1: layout row r) and, with ``rank``, ``rank_counts``/``rank_wsum``
     (slot 0: no rank, slot r+1: rank r). ``finish`` gives
-    ``{"block", "rank", "level"}`` tables.
+    ``{"block", "rank", "level"}`` tables and ``nonfinite``: how many of the particles in no
+    block are there for a NaN or infinite coordinate.
     """
 
     def __init__(self, layout: BlockLayout, positions=(), *, block: str | None = None,
@@ -93,7 +94,7 @@ class Census(Accumulator):
 
     def start(self):
         n = self.layout.nblocks + 1
-        state = {"counts": np.zeros(n, np.int64), "wsum": np.zeros(n)}
+        state = {"counts": np.zeros(n, np.int64), "wsum": np.zeros(n), "nonfinite": 0}
         if self.rank is not None:
             state["rank_counts"] = np.zeros(1, np.int64)
             state["rank_wsum"] = np.zeros(1)
@@ -111,6 +112,12 @@ class Census(Accumulator):
         counts, wsum = counts_and_sums(slots, w, self.layout.nblocks + 1)
         state["counts"] += counts
         state["wsum"] += wsum
+        if self.positions and counts[0]:
+            # of the particles in no block, those there for a NaN or infinite coordinate (looked
+            # for only when some particle is in no block, so a full census costs nothing more)
+            out = np.flatnonzero(slots == 0)
+            state["nonfinite"] += int(np.count_nonzero(
+                nonfinite_rows([np.asarray(piece[c])[out] for c in self.positions])))
         if self.rank is not None:
             value = piece.constant(self.rank)
             if value is not None:     # a per-rank file: every particle has its file's rank
@@ -130,7 +137,8 @@ class Census(Accumulator):
         return state
 
     def merge(self, a, b):
-        out = {"counts": a["counts"] + b["counts"], "wsum": a["wsum"] + b["wsum"]}
+        out = {"counts": a["counts"] + b["counts"], "wsum": a["wsum"] + b["wsum"],
+               "nonfinite": a.get("nonfinite", 0) + b.get("nonfinite", 0)}
         if "rank_counts" in a:
             m = max(a["rank_counts"].shape[0], b["rank_counts"].shape[0])
             out["rank_counts"] = _grown(a["rank_counts"], m) + _grown(b["rank_counts"], m)
@@ -143,7 +151,8 @@ class Census(Accumulator):
             rank = _rank_table(state["rank_counts"], state["rank_wsum"], self.layout)
         else:
             rank = _rank_table(*_owner_sums(state["counts"], state["wsum"], self.layout), self.layout)
-        return {"block": block, "rank": rank, "level": _level_table(block)}
+        return {"block": block, "rank": rank, "level": _level_table(block),
+                "nonfinite": int(state.get("nonfinite", 0))}
 
 
 def _block_table(counts, wsum, layout: BlockLayout) -> pd.DataFrame:

@@ -304,7 +304,8 @@ def displacement_cells(pos_a, pos_b, layout: BlockLayout) -> np.ndarray:
     h = layout.cell_size
     out = None
     for a in range(layout.ndim):
-        d = np.subtract(pos_b[a], pos_a[a], dtype=np.float64)
+        with np.errstate(invalid="ignore"):   # inf - inf is NaN, as documented above
+            d = np.subtract(pos_b[a], pos_a[a], dtype=np.float64)
         d /= h[a]
         if layout.periodic[a]:
             n = float(layout.cells[a])

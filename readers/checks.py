@@ -8,13 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-
-def _nonfinite_rows(cols: list[np.ndarray], n: int) -> np.ndarray:
-    bad = np.zeros(n, dtype=bool)
-    for c in cols:
-        if c.dtype.kind == "f":
-            bad |= ~np.isfinite(c)
-    return bad
+from ..core.layout import nonfinite_rows as _nonfinite_rows
 
 
 def duplicate_count(cols: list[np.ndarray]) -> int:

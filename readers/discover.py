@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot, concat_frames
+from ..core.outputs import only_our_output
 from ..core.roles import RoleMap, last_integer
 from ..core.run import Run, SnapshotRef
 from . import registry
@@ -57,8 +58,12 @@ def _group_per_rank(files: list[str]) -> list[SnapshotRef]:
     return refs
 
 
-def find_snapshots(spec) -> tuple[list[SnapshotRef], str]:
-    """SnapshotRefs for a folder, a glob, or a list of files/folders (unordered)."""
+def find_snapshots(spec, notes: list | None = None) -> tuple[list[SnapshotRef], str]:
+    """SnapshotRefs for a folder, a glob, or a list of files/folders (unordered).
+
+    A sub-folder holding only swarmaudit's own tables (an export written into the run folder
+    by an older version, or by hand) is not a snapshot: it is left out, with a note in ``notes``.
+    """
     items = [spec] if isinstance(spec, (str, os.PathLike)) else list(spec)
     if not items:
         raise InputError(None, "no run given: name a folder, a glob or snapshot files")
@@ -93,6 +98,11 @@ def find_snapshots(spec) -> tuple[list[SnapshotRef], str]:
                            if os.path.isfile(os.path.join(d, e)) and _is_snapshot_file(e, known))
             if not parts:
                 continue
+            if only_our_output(os.path.basename(p) for p in parts):
+                if notes is not None:
+                    notes.append(f"{os.path.basename(d)}: left out, it holds swarmaudit's own "
+                                 "tables, not a snapshot")
+                continue
             ranks = [last_integer(os.path.basename(p)) for p in parts]
             if None in ranks or len(set(ranks)) != len(ranks):
                 ranks = list(range(len(parts)))
@@ -104,6 +114,29 @@ def find_snapshots(spec) -> tuple[list[SnapshotRef], str]:
                              "known endings: " + ", ".join(sorted(known)))
     source = ", ".join(map(os.fspath, items))
     return refs, source
+
+
+def split_runs(spec) -> list:
+    """What the user named, as one spec per run.
+
+    Each folder named is a run of its own (``serve A B`` shows two runs); files and globs
+    name the snapshots of one run. Folders mixed with files or globs are refused: which run
+    would the files belong to?
+    """
+    items = [spec] if isinstance(spec, (str, os.PathLike)) else list(spec)
+    folders, seen = [], set()
+    for item in map(os.fspath, items):
+        if os.path.isdir(item) and os.path.realpath(item) not in seen:
+            seen.add(os.path.realpath(item))
+            folders.append(item)
+    if len(folders) < 2:
+        return [spec]
+    others = [os.fspath(i) for i in items if not os.path.isdir(i)]
+    if others:
+        raise InputError(others[0], "is named beside several run folders",
+                         "give run folders (each is a run of its own) or the files or glob "
+                         "of one run, not both")
+    return folders
 
 
 def open_ref(ref: SnapshotRef, role_map: RoleMap | None = None, columns=None) -> Snapshot:
@@ -196,9 +229,9 @@ def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True) -> R
     still writing it (:func:`rescan_run` picks it up later).
     """
     role_map = role_map or RoleMap()
-    refs, source = find_snapshots(spec)
-    opened: list[tuple[SnapshotRef, Snapshot]] = []
     skipped: list[str] = []
+    refs, source = find_snapshots(spec, skipped)
+    opened: list[tuple[SnapshotRef, Snapshot]] = []
     now = time.time()
     usual = _usual_parts(refs)
     for ref in refs:
@@ -293,7 +326,7 @@ def rescan_run(run: Run, allow=None, now: float | None = None) -> Rescan:
     if run.spec is None:
         return out
     now = time.time() if now is None else now
-    refs, _ = find_snapshots(run.spec)
+    refs, _ = find_snapshots(run.spec, out.notes)
     failed: dict = run.__dict__.setdefault("_failed", {})   # key -> (signature, note) of misses
     with run._lock:
         old_refs = list(run.refs)

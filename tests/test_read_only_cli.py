@@ -246,14 +246,19 @@ def test_errors_leave_inputs_alone(inputs, tmp_path):
     assert_untouched(broken_before, broken, what="broken file")
 
 
+def _staged(out, pattern):
+    """What an export has written so far: into its hidden staging folder until it is done."""
+    return list(out.glob(".export-*/" + pattern))
+
+
 #: moments of an export to press Ctrl-C at: (name, has it come?) from the output folder
 INTERRUPT_MOMENTS = {
     # tables being reduced on the thread pools, no figure yet
-    "early": lambda out: (out / "figures").is_dir() and not any((out / "figures").glob("*.png")),
+    "early": lambda out: bool(_staged(out, "figures")) and not _staged(out, "figures/*.png"),
     # the density views being drawn
-    "mid": lambda out: any((out / "figures").glob("*.png")),
+    "mid": lambda out: bool(_staged(out, "figures/*.png")),
     # past the drift figure: the last figures before the report
-    "late": lambda out: (out / "figures" / "drift.png").exists(),
+    "late": lambda out: bool(_staged(out, "figures/drift.png")),
 }
 
 
@@ -283,7 +288,8 @@ def test_interrupted_export_stops_at_once_and_leaves_inputs_alone(inputs, tmp_pa
         assert code == 130, f"{moment}: exit {code}: {err}"
         assert "Traceback" not in err and "Exception ignored" not in err, f"{moment}: {err}"
         assert err.strip().splitlines()[-1] == "swarmaudit: interrupted", f"{moment}: {err}"
-        assert not (j["out"] / "report.html").exists(), moment      # it did stop midway
+        # it did stop midway, and left nothing half-written (the folder it made is gone too)
+        assert not j["out"].exists(), (moment, sorted(map(str, j["out"].rglob("*"))))
         assert_untouched(j["before"], j["root"], what=f"export interrupted {moment}")
 
 

@@ -54,7 +54,8 @@ def _free_port():
 class Server:
     def __init__(self, run, *extra):
         self.port = _free_port()
-        cmd = [sys.executable, "-m", "swarmaudit", "serve", str(run), "--domain", "0,1,0,1",
+        runs = [str(r) for r in run] if isinstance(run, (list, tuple)) else [str(run)]
+        cmd = [sys.executable, "-m", "swarmaudit", "serve", *runs, "--domain", "0,1,0,1",
                "--cells", "8,8", "--blocks", "2,2", "--port", str(self.port), "--no-browser", *extra]
         env = dict(os.environ, PYTHONUNBUFFERED="1")
         self.proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,

@@ -20,6 +20,7 @@ from ..core import interrupt
 from ..core.context import AuditContext
 from ..core.errors import OptionError
 from ..core.run import Run
+from . import login
 from .state import SCAN_SECONDS, SERVED, URL_KEYS, ServedRuns
 
 #: how long a page's session waits for its browser to connect. Bokeh's 15 s is short when many
@@ -185,9 +186,6 @@ def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
             generated = False
             if len(password) < 8:
                 raise OptionError("--password needs at least 8 characters")
-            if os.path.exists(password):
-                # the login check would read a file of that name as a table of users
-                raise OptionError("--password must not be the name of an existing file")
     address = "0.0.0.0" if share else "127.0.0.1"
     port = int(getattr(args, "port", 5006) or 0)
     if port < 0 or port > 65535:
@@ -199,12 +197,9 @@ def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
 
     kwargs = dict(port=port, address=address, websocket_origin=origins, show=False, start=False,
                   title="swarmaudit", verbose=False, cookie_secret=secrets.token_urlsafe(32),
-                  unused_session_lifetime_milliseconds=UNUSED_SESSION_MS)
+                  unused_session_lifetime_milliseconds=UNUSED_SESSION_MS, **login.TOKEN_EXCLUDES)
     if share:
-        kwargs.update(basic_auth=password)
-        tmpl = _login_template()
-        if tmpl:
-            kwargs.update(login_template=tmpl)
+        kwargs.update(auth_provider=login.auth_provider(password, _login_template()))
     # the served runs are fixed here, once per process: every session shares them
     app = {"/": lambda: _session_page(runs)}
     try:
@@ -212,6 +207,7 @@ def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
     except OSError as exc:
         raise OptionError(f"cannot listen on {address}:{port} ({exc.strerror or exc}); "
                           f"try another --port") from None
+    login.refuse_foreign_hosts(server._tornado, hosts)
     local = f"http://127.0.0.1:{port}/"
     print(f"swarmaudit: serving {', '.join(runs.names)} at {local}", flush=True)
     if share:

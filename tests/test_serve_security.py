@@ -223,3 +223,122 @@ def test_password_without_share_is_an_option_error(run_folder):
     r = subprocess.run([sys.executable, "-m", "swarmaudit", "serve", str(run_folder), "--password",
                         "abcdefgh12", "--no-browser"], capture_output=True, text=True, timeout=120)
     assert r.returncode == 2 and "--password only makes sense with --share" in r.stderr
+
+
+# sign-in protections of --share -----------------------------------------------------------------
+PASSWORD = "correct-horse-42"
+
+
+@pytest.fixture(scope="module")
+def shared(run_folder):
+    s = Server(run_folder, "--share", "--password", PASSWORD)
+    yield s
+    s.stop()
+
+
+def _post_login(s, password, opener=None):
+    opener = opener or urllib.request.build_opener(NoRedirect)
+    data = urllib.parse.urlencode({"username": "colleague", "password": password}).encode()
+    try:
+        r = opener.open(urllib.request.Request(s.url + "login", data=data), timeout=30)
+        return r.status, r.headers
+    except urllib.error.HTTPError as e:
+        return e.code, e.headers
+
+
+def test_throttle_waits_double_after_the_free_tries():
+    from swarmaudit.app.login import Throttle
+    now = [0.0]
+    t = Throttle(free=3, first=1.0, cap=8.0, forget=100.0, clock=lambda: now[0])
+    waits = [t.failed("a") for _ in range(8)]
+    assert waits == [0, 0, 0, 1, 2, 4, 8, 8]          # exponential, capped
+    assert t.wait("a") == 8 and t.wait("b") == 0        # per client
+    now[0] = 5.0
+    assert t.wait("a") == 3.0
+    t.succeeded("a")
+    assert t.wait("a") == 0
+    t.failed("c")
+    now[0] = 500.0                                      # quiet long enough: forgotten
+    assert [t.failed("c") for _ in range(3)] == [0, 0, 0]
+
+
+def test_password_is_compared_in_constant_time(monkeypatch):
+    import hmac
+
+    from swarmaudit.app import login
+    calls = []
+    real = hmac.compare_digest
+    monkeypatch.setattr(login.hmac, "compare_digest", lambda a, b: calls.append(1) or real(a, b))
+    assert login.same_password(PASSWORD, PASSWORD) and not login.same_password("x" * 16, PASSWORD)
+    assert len(calls) == 2
+
+
+def test_wrong_passwords_are_throttled_without_stalling_the_server(shared):
+    s = shared
+    # the probe: about 170 tries a second were answered; now a burst gets the free tries and the
+    # first doubled one looked at, and the rest refused at once without comparing the password
+    answered, refused, retry = 0, 0, None
+    t0 = time.time()
+    for k in range(30):
+        code, headers = _post_login(s, f"guess-{k:04d}")
+        if code == 429:
+            refused += 1
+            retry = int(headers["Retry-After"])
+        else:
+            assert code in (302, 303) and "error" in headers.get("Location", "")
+            answered += 1
+    took = time.time() - t0
+    assert answered <= 4 + int(took), (answered, took)   # 3 free + one per second of waiting at most
+    assert refused >= 30 - answered and retry >= 1
+    # even the right password is not looked at while locked out
+    code, _ = _post_login(s, PASSWORD)
+    assert code == 429
+    # meanwhile the server answers everybody else at once (nothing sleeps on its event loop)
+    t1 = time.time()
+    status, _, body = _get(s.url + "login")
+    assert status == 200 and "password" in body and time.time() - t1 < 5
+    # after the wait the right password gets in
+    deadline = time.time() + 400
+    while time.time() < deadline:
+        code, headers = _post_login(s, PASSWORD)
+        if code != 429:
+            break
+        time.sleep(int(headers["Retry-After"]))
+    assert code in (302, 303) and "error" not in headers.get("Location", "")
+
+
+def test_cookies_are_strict_http_only_and_kept_out_of_the_page(shared):
+    s = shared
+    jar = CookieJar()
+    opener = urllib.request.build_opener(urllib.request.HTTPCookieProcessor(jar), NoRedirect)
+    status, headers, _ = _get(s.url + "login?next=/", opener)
+    set_cookies = headers.get_all("Set-Cookie") or []
+    code, headers = _post_login(s, PASSWORD, opener)
+    assert code in (302, 303), "signed in (the throttle test ends with a success)"
+    set_cookies += headers.get_all("Set-Cookie") or []
+    names = {c.split("=", 1)[0] for c in set_cookies}
+    assert {"user", "next_url"} <= names
+    for c in set_cookies:
+        flags = [f.strip().lower() for f in c.split(";")[1:]]
+        assert "httponly" in flags and "samesite=strict" in flags, c
+    user = next(c.value for c in jar if c.name == "user")
+    status, _, page = _get(s.url, opener)
+    assert status == 200 and "swarmaudit" in page
+    # the session token written into the page carries no cookie and no Cookie header
+    from bokeh.util.token import get_token_payload
+    token = re.search(r'"token":\s*"([^"]+)"', page).group(1)
+    payload = get_token_payload(token)
+    assert payload.get("cookies") == {}
+    assert "Cookie" not in payload.get("headers", {})
+    assert user not in page and user not in json.dumps(payload)
+
+
+@pytest.mark.parametrize("host", ["evil.example", "127.0.0.1.evil.example"])
+def test_foreign_host_header_is_refused(shared, plain, host):
+    for s in (shared, plain):
+        req = urllib.request.Request(s.url + "login", headers={"Host": f"{host}:{s.port}"})
+        status, _, body = _get(req)
+        assert status == 421 and "host name" in body
+    # the server's own names still work
+    assert _get(plain.url)[0] == 200
+    assert _get(f"http://localhost:{plain.port}/")[0] == 200

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import sys
 
-from ..audit.tables import check
+from ..audit.tables import check, validate_snapshots
 from ..core.errors import InputError, OptionError
 from ..core.roles import missing_roles_help
 
@@ -30,6 +30,7 @@ def run_check(ctx, args, out=None, err=None) -> int:
     err = err or sys.stderr
     quantities = _quantities(getattr(args, "quantities", None))
     _say_missing_velocities(ctx, quantities)
+    validate_snapshots(ctx, allow_empty=bool(getattr(args, "allow_empty", False)))
     result = check(ctx, args.rtol, quantities)
     for line in result.lines:
         print(line, file=out)

@@ -90,6 +90,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="largest relative drift allowed against the first snapshot")
     c.add_argument("--quantities", metavar="NAMES",
                    help="only these totals (e.g. count,charge,total_energy); default every one")
+    c.add_argument("--allow-empty", action="store_true",
+                   help="a snapshot with no particles is not bad input (default: exit 2 on one)")
 
     s = sub.add_parser("serve", help="the dashboard in a browser")
     add_run_options(s)

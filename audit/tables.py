@@ -635,6 +635,26 @@ def drift_table(ctx: AuditContext, details: bool = False) -> pd.DataFrame:
 
 
 # check -------------------------------------------------------------------------------
+def validate_snapshots(ctx: AuditContext, allow_empty: bool = False) -> None:
+    """Refuse (InputError) what the export would refuse in snapshots ``check`` judges.
+
+    Every snapshot must hold particles unless ``allow_empty`` (``check --allow-empty``), and
+    the position and id columns, which the totals do not read, must read cleanly (numbers in
+    every row, rows as long as the header): one extra read of those columns per snapshot.
+    """
+    from ..core.errors import InputError
+    names = ctx.species_names()
+    for i in range(len(ctx.run)):
+        snap = ctx.run[i]
+        frames = [snap.species[s] for s in names if s in snap.species]
+        if not allow_empty and sum(f.length for f in frames) == 0:
+            raise InputError(snap.path, "holds no particles",
+                             "if the run may be empty at some snapshots, pass --allow-empty")
+        for f in frames:
+            for c in dict.fromkeys(list(f.position_names) + list(f.key_columns() or ())):
+                f.read_uncached(c)
+
+
 @dataclass
 class CheckResult:
     ok: bool

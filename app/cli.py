@@ -9,6 +9,7 @@ import sys
 
 from ..core import interrupt
 from ..core.errors import SwarmAuditError
+from .view_policy import DEFAULT_CMAP, DEFAULT_SCALING   # plain constants, no numpy
 
 # .options and everything below it (numpy, pandas...) are imported inside main, after the
 # SIGINT handler is in place: a Ctrl-C while they load is then an interrupt, not a traceback
@@ -74,9 +75,12 @@ def build_parser() -> argparse.ArgumentParser:
     e.add_argument("--width", type=int, default=900, help="figure width in pixels (default 900)")
     e.add_argument("--height", type=int, default=700, help="figure height in pixels (default 700)")
     e.add_argument("--dpi", type=int, default=100, help="dots per inch of the PNGs (default 100)")
-    e.add_argument("--cmap", default="viridis", help="colour map name (default viridis)")
-    e.add_argument("--scale", choices=("linear", "log", "eq_hist"), default="eq_hist",
-                   help="colour scaling of density images (default eq_hist)")
+    e.add_argument("--cmap", default=DEFAULT_CMAP, help=f"colour map name (default {DEFAULT_CMAP})")
+    e.add_argument("--scale", choices=("linear", "log", "eq_hist"), default=DEFAULT_SCALING,
+                   help=f"colour scaling of density images (default {DEFAULT_SCALING})")
+    e.add_argument("--view", metavar="LINK",
+                   help="a dashboard link (or its query): also draw the two views of that state, "
+                        "as the screen shows them")
     e.add_argument("--space", metavar="A,B", help="columns of the spatial view (default: first two position axes)")
     e.add_argument("--phase", metavar="A,B", help="columns of the phase-space view (default: x against its momentum)")
     e.add_argument("--range", action="append", default=[], metavar="COL=LO,HI",

@@ -8,6 +8,7 @@ by a RangeXY stream). Only the image reaches the browser.
 
 from __future__ import annotations
 
+import logging
 import os
 
 import numpy as np
@@ -17,11 +18,15 @@ import param
 import holoviews as hv
 
 from ..core.errors import SwarmAuditError
-from . import render
-from .state import BLOCK_MODES, CMAPS, SERVED, ServedRuns, ViewState
+from . import render, view_policy
+from .state import SERVED, ServedRuns, ViewState
+from .view_policy import (BLOCK_MODE_LABELS, CMAPS, COLOR_BY_LABELS, LABELS, SCALING_LABELS,
+                          SECTIONS)
 
-#: pixels of each particle view (aggregates are binned at exactly this size)
-VIEW_W, VIEW_H = 560, 440
+log = logging.getLogger("swarmaudit.dashboard")
+
+#: pixels of each particle view (the view policy bins for exactly this box)
+VIEW_W, VIEW_H = view_policy.SCREEN_BOX
 #: the page's own colours
 INK = "#1d2433"
 ACCENT = "#0f8b8d"
@@ -66,15 +71,6 @@ def _message_element(text: str, x_range=(0, 1), y_range=(0, 1)):
     return hv.Text(x, y, text).opts(backend="bokeh", text_color="#9a3412", text_font_size="11pt")
 
 
-def bin_factor(n: int) -> int:
-    """Screen pixels per bin side: 1 from a million particles on, up to 4 for a few thousand.
-
-    Below about one particle per screen pixel a density image is salt and pepper;
-    coarser bins (still re-binned on every zoom) show the density instead.
-    """
-    return 1 if n >= 1_000_000 else (2 if n >= 20_000 else 4)
-
-
 def _highlight(img):
     # 1 = selected pixel, 0 = none; below the colour range is transparent, so no NaN is needed
     return img.opts(backend="bokeh", cmap=HIGHLIGHT, colorbar=False, alpha=0.9, clim=(0.5, 1.5),
@@ -84,7 +80,7 @@ def _highlight(img):
 class Dashboard(param.Parameterized):
     """One session's page, built around its ViewState."""
 
-    reset_count = param.Integer(0, doc="bumped by 'whole view' to rebuild the views at full extent")
+    reset_count = param.Integer(0, doc="bumped by 'reset zoom' to rebuild the views at their opening ranges")
 
     def __init__(self, state: ViewState, runs: ServedRuns | None = None, **params):
         super().__init__(**params)
@@ -98,6 +94,10 @@ class Dashboard(param.Parameterized):
         self.link_text = pn.widgets.TextInput(label="", value="", sizing_mode="stretch_width",
                                               styles={"font-size": "12px"})
         self._base_url = ""
+        #: the view policy's decision and the aggregate behind each picture last drawn
+        self.shown: dict[str, tuple] = {}
+        self.link_note = pn.pane.Alert("", alert_type="info", visible=False, margin=(4, 8))
+        self._show_link_notes()
         state.param.watch(self._update_link, list(state.param))
         state.param.watch(self._check_snapshot, ["snapshot", "run", "species"])
         state.param.watch(self._update_selection_info,
@@ -110,6 +110,12 @@ class Dashboard(param.Parameterized):
         self._update_live_note()
         from .panels import SidePanels
         self.side = SidePanels(state)
+
+    def _show_link_notes(self):
+        notes = self.state.link_notes
+        self.link_note.object = "\n\n".join(notes[:6]) + (
+            f"\n\n… and {len(notes) - 6} more." if len(notes) > 6 else "")
+        self.link_note.visible = bool(notes)
 
     # a run still being written ---------------------------------------------------------
     def follow_run(self):
@@ -201,50 +207,48 @@ class Dashboard(param.Parameterized):
 
     def render_view(self, which, x_range=None, y_range=None, snapshot=None, slab_range=None,
                     select_box=None, select_view=None, **_):
-        """One frame of a particle view (the DynamicMap callback)."""
+        """One frame of a particle view (the DynamicMap callback); never raises."""
+        try:
+            return self._render_view(which, x_range, y_range, snapshot, slab_range, select_box,
+                                     select_view)
+        except Exception as exc:   # a view must not take the page down: a message, one log line
+            log.error("%s view could not be drawn: %s: %s", which, type(exc).__name__, exc)
+            self._status[which].object = "⚠ this view could not be drawn (the server's log says why)"
+            return self._empty_overlay(which, (0, 1), (0, 1), "this view could not be drawn")
+
+    def _render_view(self, which, x_range, y_range, snapshot, slab_range, select_box, select_view):
         s = self.state
-        xcol, ycol = self._axes(which)
         status = self._status[which]
+        zoom = x_range is not None and y_range is not None
         try:
             frame = s.frame(snapshot)
-            if x_range is None or y_range is None:
-                sx, sy = self._ranges(which)
-                x_range = x_range or sx or render.default_range(frame, xcol)
-                y_range = y_range or sy or render.default_range(frame, ycol)
-            else:
-                self._store_ranges(which, x_range, y_range)
-            slab = None
-            if s.slab_axis and slab_range:
-                slab = (s.slab_axis, slab_range[0], slab_range[1])
-            reduction, value = {"count": ("count", None),
-                                "weight": ("sum", frame.column_for("weight")),
-                                "mean": ("mean", s.color_column)}[s.color_by]
-            if reduction == "sum" and value is None:
-                reduction = "count"   # no weight column: every weight is 1
-            # few particles: coarser bins so a lone particle is a visible dot, not one pixel
-            k = bin_factor(frame.length)
-            agg = render.aggregate_points(frame, xcol, ycol, width=VIEW_W // k, height=VIEW_H // k,
-                                          x_range=x_range, y_range=y_range, reduction=reduction,
-                                          value=value, slab=slab)
+            view = view_policy.particle_view(s, which, frame=frame, snapshot=snapshot,
+                                             x_range=x_range if zoom else None,
+                                             y_range=y_range if zoom else None,
+                                             slab_range=slab_range)
+            if zoom and not view.notes:
+                self._store_ranges(which, view.x_range, view.y_range)
+            agg = view.aggregate(frame)
         except SwarmAuditError as exc:
             status.object = f"⚠ {exc}"
             self.problem.object = f"**Snapshot {s.snapshot if snapshot is None else snapshot} cannot be shown.** {exc}"
             self.problem.visible = True
-            xr_ = tuple(x_range) if x_range else (0, 1)
-            yr_ = tuple(y_range) if y_range else (0, 1)
+            xr_ = tuple(x_range) if x_range and not view_policy.range_problem(x_range) else (0, 1)
+            yr_ = tuple(y_range) if y_range and not view_policy.range_problem(y_range) else (0, 1)
             return self._empty_overlay(which, xr_, yr_, str(exc))
-        title = f"{'Space' if which == 'space' else 'Phase space'}: {s.species}"
-        img = render.density_image(agg, cmap=s.cmap, scaling=s.scaling, title=title)
+        self.shown[which] = (view, agg)
+        img = view.image(agg)
         img = img.opts(backend="bokeh", width=VIEW_W, height=VIEW_H,
                        tools=["hover", "box_select"], active_tools=["wheel_zoom"],
                        bgcolor=PAPER, toolbar="above")
         # selection layer: the same particles, wherever the box was drawn
-        sel_img, box = self._selection_layer(frame, which, xcol, ycol, x_range, y_range, slab,
-                                             select_box, select_view)
-        blocks = self._blocks_layer(frame, which, xcol, ycol, snapshot)
+        sel_img, box = self._selection_layer(frame, which, view, select_box, select_view)
+        blocks = self._blocks_layer(frame, which, view.xcol, view.ycol, snapshot)
         extra = ""
         if agg.attrs["nonfinite"]:
             extra = f" · **{agg.attrs['nonfinite']:,} with NaN/inf coordinates left out**"
+        for note in view.notes:
+            extra += f" · {note}"
         ny, nx = agg.shape
         status.object = f"{agg.attrs['particles']:,} particles binned on {nx}×{ny} bins{extra}"
         return img * sel_img * blocks * box
@@ -256,8 +260,8 @@ class Dashboard(param.Parameterized):
         return (empty * hv.Image(np.full((2, 2), np.nan), bounds=(xr_[0], yr_[0], xr_[1], yr_[1]))
                 * hv.Rectangles([]) * _message_element(text[:90], xr_, yr_))
 
-    def _selection_layer(self, frame, which, xcol, ycol, x_range, y_range, slab, select_box,
-                         select_view):
+    def _selection_layer(self, frame, which, view, select_box, select_view):
+        x_range, y_range = view.x_range, view.y_range
         empty_box = hv.Rectangles([]).opts(backend="bokeh", fill_alpha=0, line_color="#e11d48")
         if not select_box or not select_view:
             nothing = hv.Image(np.zeros((2, 2)),
@@ -265,9 +269,7 @@ class Dashboard(param.Parameterized):
             return _highlight(nothing), empty_box
         sx, sy = self._axes(select_view)
         mask = render.box_mask(frame, sx, sy, select_box)
-        k = bin_factor(frame.length)
-        agg = render.aggregate_points(frame, xcol, ycol, width=VIEW_W // k, height=VIEW_H // k,
-                                      x_range=x_range, y_range=y_range, mask=mask, slab=slab)
+        agg = view.aggregate(frame, mask=mask)
         data = (np.asarray(agg.values) > 0).astype(np.float64)
         sel = _highlight(hv.Image((agg.coords[agg.dims[1]].values, agg.coords[agg.dims[0]].values,
                                    data), bounds=(x_range[0], y_range[0], x_range[1], y_range[1])))
@@ -333,7 +335,7 @@ class Dashboard(param.Parameterized):
             return
         self.state.param.update(select_view=which, select_box=(x0, y0, x1, y1))
 
-    def whole_view(self, *_):
+    def reset_zoom(self, *_):
         s = self.state
         s.param.update(space_xr=None, space_yr=None, phase_xr=None, phase_yr=None)
         self.reset_count += 1
@@ -369,32 +371,32 @@ class Dashboard(param.Parameterized):
             player.param.update(end=max(m - 1, 1), disabled=m < 2, value=s.snapshot)
         s.param.watch(on_run, ["run", "run_revision"])
 
-        run_select = pn.widgets.Select.from_param(s.param.run, label="Run",
+        run_select = pn.widgets.Select.from_param(s.param.run, label=LABELS["run"],
                                                   sizing_mode="stretch_width")
         run_select.visible = len(self.runs) > 1
         w = {}
-        for p, label in (("species", "Species"), ("space_x", "Space: across"),
-                         ("space_y", "Space: up"), ("phase_x", "Phase: across"),
-                         ("phase_y", "Phase: up"), ("color_column", "Mean of column")):
-            w[p] = pn.widgets.Select.from_param(s.param[p], label=label, sizing_mode="stretch_width")
+        for p in ("species", "space_x", "space_y", "phase_x", "phase_y", "color_column"):
+            w[p] = pn.widgets.Select.from_param(s.param[p], label=LABELS[p],
+                                                sizing_mode="stretch_width")
         color = pn.widgets.RadioButtonGroup.from_param(
-            s.param.color_by, options={"count": "count", "weight": "weight", "mean": "mean"},
+            s.param.color_by, options={v: k for k, v in COLOR_BY_LABELS.items()},
             color="light", sizing_mode="stretch_width")
         scale = pn.widgets.RadioButtonGroup.from_param(
-            s.param.scaling, options={"eq. hist": "eq_hist", "log": "log", "linear": "linear"},
+            s.param.scaling, options={v: k for k, v in SCALING_LABELS.items()},
             color="light", sizing_mode="stretch_width")
-        cmap = pn.widgets.Select.from_param(s.param.cmap, label="Colours", options=list(CMAPS),
+        cmap = pn.widgets.Select.from_param(s.param.cmap, label=LABELS["cmap"], options=list(CMAPS),
                                             sizing_mode="stretch_width")
-        blocks = pn.widgets.RadioButtonGroup.from_param(s.param.blocks, options=list(BLOCK_MODES),
+        blocks = pn.widgets.RadioButtonGroup.from_param(s.param.blocks,
+                                                        options={v: k for k, v in BLOCK_MODE_LABELS.items()},
                                                         color="light",
                                                         sizing_mode="stretch_width")
         w["color_column"].visible = s.color_by == "mean"
         s.param.watch(lambda e: setattr(w["color_column"], "visible", e.new == "mean"), "color_by")
         slab_box = self._slab_controls()
-        whole = pn.widgets.Button(label="Whole view", color="default",
+        whole = pn.widgets.Button(label=LABELS["reset_zoom"], color="default",
                                   sizing_mode="stretch_width")
-        whole.on_click(self.whole_view)
-        clear = pn.widgets.Button(label="Clear selection", color="default",
+        whole.on_click(self.reset_zoom)
+        clear = pn.widgets.Button(label=LABELS["clear_selection"], color="default",
                                   sizing_mode="stretch_width")
         clear.on_click(self.clear_selection)
         return pn.Column(
@@ -403,15 +405,15 @@ class Dashboard(param.Parameterized):
             player,
             self.live_note,
             w["species"],
-            _section("Axes"),
+            _section(SECTIONS["axes"]),
             pn.Row(w["space_x"], w["space_y"], sizing_mode="stretch_width"),
             pn.Row(w["phase_x"], w["phase_y"], sizing_mode="stretch_width"),
             slab_box,
-            _section("Colour"),
+            _section(SECTIONS["colour"]),
             color, w["color_column"], scale, cmap,
-            _section("Blocks on the space view"),
+            _section(SECTIONS["blocks"]),
             blocks,
-            _section("Selection"),
+            _section(SECTIONS["selection"]),
             self.selection_info,
             pn.Row(whole, clear, sizing_mode="stretch_width"),
             width=330, styles=CONTROLS_STYLE, margin=0,
@@ -444,7 +446,7 @@ class Dashboard(param.Parameterized):
 
     def header(self):
         s = self.state
-        copy = pn.widgets.Button(label="Copy link", color="warning", width=120,
+        copy = pn.widgets.Button(label=LABELS["copy_link"], color="warning", width=120,
                                  margin=(14, 12, 8, 4))
         copy.js_on_click(args={"box": self.link_text}, code="""
 const url = window.location.href;
@@ -477,7 +479,7 @@ box.value = url;
             margin=(4, 0))
 
     def page(self):
-        body = pn.Column(self.problem, self.views(), self.side.tabs(), margin=(0, 8))
+        body = pn.Column(self.link_note, self.problem, self.views(), self.side.tabs(), margin=(0, 8))
         return pn.Column(
             self.header(),
             pn.Row(self.controls(), body, margin=0),

@@ -1,9 +1,12 @@
 """``swarmaudit export RUN --out DIR``: figures, tables and report.html, with no display.
 
-The views go through ``render.aggregate_points`` and ``render.density_image``
-and the audit figures through ``app.figures``: the same code the dashboard
-draws with. Every PNG is drawn by the holoviews matplotlib backend on the
-Agg canvas at exactly ``--width`` x ``--height`` pixels.
+Each particle view is the view of a dashboard state (``ViewState``) as
+``view_policy.particle_view`` decides it: axes, ranges, colour map, scale,
+grid and labels come from the one policy the dashboard draws with, and
+``--view LINK`` draws the very state a dashboard link holds. The audit
+figures go through ``app.figures``, as on the screen. Every PNG is drawn by
+the holoviews matplotlib backend on the Agg canvas at exactly ``--width`` x
+``--height`` pixels.
 """
 
 from __future__ import annotations
@@ -22,13 +25,10 @@ from ..core import interrupt
 from ..core.errors import InputError, OptionError
 from ..core.frame import transient_columns
 from ..core.outputs import FIGURE_DIR, REPORT_NAME, TABLE_NAMES
+from . import view_policy as policy
 from .png import use_headless_matplotlib
 
 
-#: share of the picture the density image itself covers (the rest is axes, title, colour bar)
-_IMAGE_SHARE = (0.78, 0.80)
-#: particles per pixel below which a view's grid is made coarser
-_PER_PIXEL = 6.0
 
 
 # options -------------------------------------------------------------------------------------
@@ -40,13 +40,14 @@ class ExportOptions:
     width: int = 900
     height: int = 700
     dpi: int = 100
-    cmap: str = "viridis"
-    scale: str = "eq_hist"
+    cmap: str = policy.DEFAULT_CMAP
+    scale: str = policy.DEFAULT_SCALING
     space: tuple[str, str] | None = None
     phase: tuple[str, str] | None = None
     ranges: dict[str, tuple[float, float]] = field(default_factory=dict)
     quiet: bool = False
     fontscale: float = 1.15
+    view: str | None = None         # a dashboard link (or its query): draw that state too
 
     @classmethod
     def from_args(cls, args) -> "ExportOptions":
@@ -57,14 +58,14 @@ class ExportOptions:
                 raise OptionError(f"{name} takes a whole number from {lo} to {hi}, got {v}")
         cmap = str(args.cmap)
         check_cmap(cmap)
-        scale = getattr(args, "scale", "eq_hist") or "eq_hist"
-        if scale not in ("linear", "log", "eq_hist"):
+        scale = getattr(args, "scale", policy.DEFAULT_SCALING) or policy.DEFAULT_SCALING
+        if scale not in policy.SCALINGS:
             raise OptionError(f"--scale takes linear, log or eq_hist, got '{scale}'")
         return cls(out=args.out, snapshots=args.snapshots or "first,last", rtol=args.rtol,
                    width=width, height=height, dpi=dpi, cmap=cmap, scale=scale,
                    space=parse_pair(args.space, "--space"), phase=parse_pair(args.phase, "--phase"),
                    ranges=parse_ranges(getattr(args, "range", None) or []),
-                   quiet=bool(getattr(args, "quiet", False)))
+                   quiet=bool(getattr(args, "quiet", False)), view=getattr(args, "view", None))
 
 
 def check_cmap(name: str) -> None:
@@ -227,106 +228,58 @@ def _safe(name: str) -> str:
     return re.sub(r"[^A-Za-z0-9_.-]+", "_", str(name)).strip("_") or "species"
 
 
-def _run_name(ctx) -> str:
-    src = ctx.run.source or ""
-    if isinstance(src, (list, tuple)):
-        src = src[0] if src else ""
-    src = str(src).rstrip("/\\")
-    return os.path.basename(src) or src or "run"
-
-
-def _when(snap, i: int) -> str:
-    bits = [f"snapshot {i}"]
-    if snap.step is not None:
-        bits.append(f"step {snap.step}")
-    if snap.time is not None:
-        unit = f" {snap.time_unit}" if getattr(snap, "time_unit", "") else ""
-        bits.append(f"t = {snap.time:.4g}{unit}")
-    return ", ".join(bits)
-
-
 # views -----------------------------------------------------------------------------------
-def default_space(frame):
-    names = frame.position_names
-    if len(names) >= 2:
-        return (names[0], names[1])
-    return None
+def export_runs(ctx):
+    """The run as the one served run of a headless state (a ViewState needs a run to show)."""
+    from .state import ServedRuns
+    runs = ServedRuns()
+    runs.add(policy.run_name(ctx), ctx)
+    return runs
 
 
-def default_phase(frame):
-    names = frame.position_names
-    mom = frame.momentum_names()
-    if not names or not mom:
-        return None
-    # x against the momentum along x: the classic phase-space picture
-    return (names[0], mom[0])
+def export_state(runs, opts: ExportOptions, snapshot: int, species: str):
+    """The dashboard state of one exported view: the export's options in a ViewState."""
+    from .state import ViewState
+    state = ViewState(runs)
+    if opts.cmap not in state.param.cmap.objects:      # any map matplotlib and bokeh both know
+        state.param.cmap.objects = list(state.param.cmap.objects) + [opts.cmap]
+    state.param.update(snapshot=int(snapshot), species=species, cmap=opts.cmap,
+                       scaling=opts.scale)
+    return state
 
 
-def _is_position(frame, col) -> bool:
-    return col in frame.position_names
+def _set_view(state, kind, pair, ranges):
+    """Axes ``pair`` of view ``kind`` and the user's --range of either column."""
+    a, b = (("space_x", "space_y"), ("phase_x", "phase_y"))[kind == "phase"]
+    for p, col in ((a, pair[0]), (b, pair[1])):
+        if col not in state.param[p].objects:
+            state.param[p].objects = list(state.param[p].objects) + [col]
+    state.param.update(**{a: pair[0], b: pair[1]})
+    ra, rb = (("space_xr", "space_yr"), ("phase_xr", "phase_yr"))[kind == "phase"]
+    state.param.update(**{ra: ranges.get(pair[0]), rb: ranges.get(pair[1])})
 
 
-def view_ranges(ctx, frames, cols, layout, user) -> dict:
-    """One range per column for every view: the user's, the domain for positions, else the data's union."""
-    from .render import DATA_MARGIN, data_range, padded_range
-    out = {}
-    for c in cols:
-        if c in user:
-            out[c] = user[c]
-            continue
-        f0 = next((f for f in frames if c in f), None)
-        if f0 is not None and _is_position(f0, c) and layout is not None:
-            a = f0.position_names.index(c)
-            if a < layout.ndim:
-                out[c] = (float(layout.domain_lower[a]), float(layout.domain_upper[a]))
-                continue
-        lo, hi = math.inf, -math.inf
-        for f in frames:
-            if c in f and f.length:
-                a, b = data_range(f, c)
-                lo, hi = min(lo, a), max(hi, b)
-        out[c] = padded_range(lo, hi, margin=DATA_MARGIN) if hi >= lo else (0.0, 1.0)
-    return out
+def _caption(view, agg, frame, prefix=""):
+    nonfinite = int(agg.attrs.get("nonfinite", 0))
+    cap = [f"{prefix}{policy.VIEWS[view.which].lower()} view: {view.clabel} per bin on a "
+           f"{view.grid[0]} × {view.grid[1]} grid, {view.scaling} colour scale, colour map {view.cmap}"]
+    if nonfinite:
+        cap.append(f"{nonfinite:,} with NaN/inf coordinates left out")
+    if view.reduction == "count":
+        outside = frame.length - nonfinite - int(np.nansum(agg.values))
+        if view.slab is None and outside > 0:
+            cap.append(f"{outside:,} outside the drawn range")
+    cap.extend(view.notes)
+    return "; ".join(cap)
 
 
-def view_grid(opts: ExportOptions, xr_, yr_, equal: bool, particles: int | None = None) -> tuple[int, int]:
-    """Aggregate size: the pixels the image covers, coarser for few particles.
-
-    With fewer particles than about six per pixel a full-resolution image is
-    speckle; the grid is then made coarser (never below 64 bins a side) so
-    the density reads. Kept to the data's shape when both axes are positions.
-    """
-    w = max(int(opts.width * _IMAGE_SHARE[0]), 16)
-    h = max(int(opts.height * _IMAGE_SHARE[1]), 16)
-    if equal:
-        sx, sy = xr_[1] - xr_[0], yr_[1] - yr_[0]
-        if sx > 0 and sy > 0:
-            if sy / sx > h / w:
-                w = max(int(round(h * sx / sy)), 16)
-            else:
-                h = max(int(round(w * sy / sx)), 16)
-    if particles is not None and particles > 0:
-        shrink = math.sqrt(particles / (_PER_PIXEL * w * h))
-        if shrink < 1.0:
-            floor = min(64 / min(w, h), 1.0)
-            shrink = max(shrink, floor)
-            w, h = max(int(round(w * shrink)), 1), max(int(round(h * shrink)), 1)
-    return w, h
-
-
-def density_view(frame, xcol, ycol, *, grid, x_range, y_range, cmap, scaling, title, equal):
-    """Aggregate then shade one view of a frame (the dashboard's pipeline)."""
-    from . import render
-    agg = render.aggregate_points(frame, xcol, ycol, width=grid[0], height=grid[1],
-                                  x_range=x_range, y_range=y_range, reduction="count")
-    img = render.density_image(agg, cmap=cmap, scaling=scaling, title=title,
-                               xlabel=render.axis_label(frame, xcol),
-                               ylabel=render.axis_label(frame, ycol))
-    if equal:
-        img = img.opts(aspect="equal", backend="matplotlib")
-    else:
-        img = img.opts(aspect="auto", backend="matplotlib")
-    return agg, img
+def _view_record(kind, path, view, agg, frame, i, sp, keep, prefix=""):
+    return FigureRecord(kind, path, view.title, i, sp, _caption(view, agg, frame, prefix),
+                        agg if keep else None,
+                        view=dict(xcol=view.xcol, ycol=view.ycol, width=view.grid[0],
+                                  height=view.grid[1], x_range=tuple(view.x_range),
+                                  y_range=tuple(view.y_range), cmap=view.cmap,
+                                  scaling=view.scaling, reduction=view.reduction))
 
 
 # the export --------------------------------------------------------------------------------
@@ -394,7 +347,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     n = len(run)
     chosen = select_snapshots(opts.snapshots, n)
     species = ctx.species_names()
-    name = _run_name(ctx)
+    name = policy.run_name(ctx)
     res = ExportResult(out=out)
     notes = res.notes
 
@@ -408,13 +361,12 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
                 notes.append(f"snapshot {i} has no species '{sp}'")
                 continue
             frame = snap.species[sp]
-            space = opts.space or default_space(frame)
-            phase = opts.phase or default_phase(frame)
+            space, phase = policy.default_axes(frame, frame.columns)
+            space = opts.space or (space if policy.has_view(frame, "space") is None else None)
+            phase = opts.phase or (phase if policy.has_view(frame, "phase") is None else None)
             for kind, pair in (("space", space), ("phase", phase)):
                 if pair is None:
-                    what = ("two position axes" if kind == "space"
-                            else "a position and a momentum (or velocity) column")
-                    msg = f"no {kind} view for '{sp}': it has no {what}"
+                    msg = f"no {kind} view for '{sp}': it has no {policy.has_view(frame, kind)}"
                     if msg not in notes:
                         notes.append(msg)
                     continue
@@ -425,6 +377,8 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
                                          f"columns are: {', '.join(frame.columns)}")
                 views.append((kind, i, sp, pair[0], pair[1],
                               plan.fig(f"{kind}_{i:04d}_{_safe(sp)}.png")))
+    link_figs = ([(kind, plan.fig(f"link_{kind}.png")) for kind in ("space", "phase")]
+                 if opts.view else [])
     census_figs = [(i, plan.fig(f"census_map_{i:04d}.png"), plan.fig(f"rank_load_{i:04d}.png"))
                    for i in chosen]
     pairs = [(i - 1, i) for i in chosen if i > 0]
@@ -469,7 +423,7 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
     n = len(run)
     notes = res.notes
 
-    total = (len(views) + 2 * len(census_figs) + 2 * len(migration_figs) + (1 if drift_fig else 0)
+    total = (len(views) + len(link_figs) + 2 * len(census_figs) + 2 * len(migration_figs) + (1 if drift_fig else 0)
              + len(deposit_figs) + 4 + 1)
     bar = Progress(total, "export", stream=stream,
                    enabled=False if opts.quiet else None)
@@ -507,36 +461,42 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
         by_cols: dict[tuple, list] = {}
         for v in views:
             by_cols.setdefault((v[0], v[3], v[4]), []).append(v)
+        runs = export_runs(ctx)
+        box = policy.figure_box(opts.width, opts.height)
         for (kind, xcol, ycol), group in by_cols.items():
             frames = [run[i].species[sp] for _, i, sp, *_ in group]
-            layout = ctx.layout(group[0][1])
             # one range for a pair of columns in every snapshot and species, so views compare
-            with transient_columns(frames):
-                rng = view_ranges(ctx, frames, (xcol, ycol), layout, opts.ranges)
-            equal = all(_is_position(f, xcol) and _is_position(f, ycol) for f in frames)
-            grid = view_grid(opts, rng[xcol], rng[ycol], equal, max(f.length for f in frames))
             for _, i, sp, _, _, path in group:
-                snap = run[i]
-                frame = snap.species[sp]
-                title = f"{name} · {sp} · {_when(snap, i)}"
-                with transient_columns([frame]):
-                    agg, img = density_view(frame, xcol, ycol, grid=grid, x_range=rng[xcol],
-                                            y_range=rng[ycol], cmap=opts.cmap, scaling=opts.scale,
-                                            title=title, equal=equal)
-                nonfinite = int(agg.attrs.get("nonfinite", 0))
-                outside = frame.length - nonfinite - int(np.nansum(agg.values))
-                cap = [f"{'space' if kind == 'space' else 'phase-space'} view: particles per bin "
-                       f"on a {grid[0]} × {grid[1]} grid, {opts.scale} colour scale"]
-                if nonfinite:
-                    cap.append(f"{nonfinite:,} with NaN/inf coordinates left out")
-                if outside > 0:
-                    cap.append(f"{outside:,} outside the drawn range")
-                rec = FigureRecord(kind, path, title, i, sp, "; ".join(cap),
-                                   agg if keep_aggregates else None,
-                                   view=dict(xcol=xcol, ycol=ycol, width=grid[0], height=grid[1],
-                                             x_range=tuple(rng[xcol]), y_range=tuple(rng[ycol])))
-                add_figure(rec, img)
+                frame = run[i].species[sp]
+                state = export_state(runs, opts, i, sp)
+                _set_view(state, kind, (xcol, ycol), opts.ranges)
+                with transient_columns(frames):
+                    view = policy.particle_view(state, kind, frame=frame, snapshot=i,
+                                                frames=frames, box=box)
+                    agg = view.aggregate(frame)
+                    rec = _view_record(kind, path, view, agg, frame, i, sp, keep_aggregates)
+                add_figure(rec, view.image(agg))
                 bar.step(f"{kind} view {i} {sp}")
+        if link_figs:
+            state = export_state(runs, opts, 0, runs[runs.names[0]].species_names(0)[-1])
+            from .state import link_query
+            state.apply_query(link_query(opts.view.split("?", 1)[-1]))
+            for note in state.link_notes:
+                notes.append(f"--view: {note}")
+            for kind, path in link_figs:
+                try:
+                    frame = state.frame()
+                    view = policy.particle_view(state, kind, frame=frame)   # the screen's grid
+                    with transient_columns([frame]):
+                        agg = view.aggregate(frame)
+                except (InputError, OptionError) as exc:
+                    notes.append(f"--view: the {kind} view of the link cannot be drawn: {exc}")
+                    bar.step()
+                    continue
+                add_figure(_view_record(kind, path, view, agg, frame, state.snapshot,
+                                        state.species, keep_aggregates, prefix="the link's "),
+                           view.image(agg))
+                bar.step(f"link {kind} view")
 
         # census ----------------------------------------------------------------------------------
         for i, map_path, bar_path in census_figs:
@@ -544,13 +504,13 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
             layout = ctx.layout(i)
             blocks, ranks, imb = audit.snapshot_census(ctx, i, audit.ALL, census_df)
             xl, yl = _position_labels(ctx, i, species)
-            title = f"{name} · particles per block, all species · {_when(snap, i)}"
+            title = f"{name} · particles per block, all species · {policy.snapshot_label_of(snap, i)}"
             obj = F.census_map(blocks, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl)
             add_figure(FigureRecord("census_map", map_path, title, i, "all",
                                     "particles per block (all species); refined blocks outlined"),
                        obj)
             bar.step(f"census map {i}")
-            title = f"{name} · particles per rank, all species · {_when(snap, i)}"
+            title = f"{name} · particles per rank, all species · {policy.snapshot_label_of(snap, i)}"
             obj = F.rank_bars(ranks, imb, title)
             add_figure(FigureRecord("rank_load", bar_path, title, i, "all",
                                     "particles per rank with the mean (dashed)"), obj)
@@ -615,7 +575,7 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                 continue
             grid = snapshot_deposit(ctx, i, species)
             xl, yl = _position_labels(ctx, i, species)
-            title = f"{name} · weight deposited (CIC) · {_when(snap, i)}"
+            title = f"{name} · weight deposited (CIC) · {policy.snapshot_label_of(snap, i)}"
             label = "weight per cell" + (" (summed over z)" if layout.ndim == 3 else "")
             add_figure(FigureRecord("deposit", path, title, i, "all",
                                     "cloud-in-cell deposit of particle weight on the level-0 cells"),

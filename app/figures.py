@@ -13,6 +13,8 @@ import pandas as pd
 
 import holoviews as hv
 
+from .view_policy import DEFAULT_CMAP
+
 #: colours of the marks drawn over the data (band, reference lines, exits)
 BAND_COLOUR = "#2a9d8f"
 LINE_COLOUR = "#d1495b"
@@ -81,7 +83,7 @@ def _sum_over_species(df: pd.DataFrame, keys, values) -> pd.DataFrame:
 
 # census ------------------------------------------------------------------------------------
 def census_map(census_df: pd.DataFrame, layout, title: str = "", *, value: str = "count",
-               cmap="viridis", xlabel=None, ylabel=None, labels: bool | None = None):
+               cmap=DEFAULT_CMAP, xlabel=None, ylabel=None, labels: bool | None = None):
     """Blocks drawn over the domain, coloured by ``value`` (count or weight) per block.
 
     Finer levels are drawn after coarser ones so refined blocks sit on top.
@@ -253,7 +255,7 @@ def rank_bars(rank_df: pd.DataFrame, imbalance=None, title: str = "", *, value: 
 
 
 # migration -----------------------------------------------------------------------------------
-def transfer_heatmap(migration_df: pd.DataFrame, title: str = "", *, cmap="viridis",
+def transfer_heatmap(migration_df: pd.DataFrame, title: str = "", *, cmap=DEFAULT_CMAP,
                      include_stay: bool = False):
     """Particles that went from block i to block j, log colour, empty cells left blank.
 
@@ -487,7 +489,7 @@ def drift_curves(drift_df: pd.DataFrame, rtol=None, title: str = "", *, x: str |
 
 
 # deposition and plain histograms --------------------------------------------------------------
-def deposit_map(grid, layout, title: str = "", *, cmap="viridis", xlabel=None, ylabel=None,
+def deposit_map(grid, layout, title: str = "", *, cmap=DEFAULT_CMAP, xlabel=None, ylabel=None,
                 label: str = "weight per cell"):
     """A deposited field on the level-0 cells of a 2-D (or summed 3-D) domain.
 

@@ -1,4 +1,4 @@
-"""The side panels of the dashboard: Blocks, Moves, Totals, Histogram.
+"""The side panels of the dashboard: Blocks, Migration, Drift, Histogram (view_policy.PANELS).
 
 Numbers come from ``core.audit`` / ``diagnostics`` and figures from
 ``app.figures`` (the builders the export uses). Work over a whole run (drift)
@@ -20,8 +20,7 @@ import param
 from ..core.errors import SwarmAuditError
 from . import figures
 from .state import ALL_SPECIES, RESULTS, SIDE_PANELS, ViewState
-
-TAB_TITLES = {"blocks": "Blocks", "moves": "Moves", "totals": "Totals", "histogram": "Histogram"}
+from .view_policy import LABELS, PANELS as TAB_TITLES, SUMMARY_LABELS
 
 #: size of each side figure on the page (two side by side beside the controls)
 SIDE_W, SIDE_H = 560, 400
@@ -75,8 +74,8 @@ class SidePanels(param.Parameterized):
         s = self.state
         tabs = pn.Tabs(
             (TAB_TITLES["blocks"], pn.panel(self.blocks_panel, loading_indicator=True)),
-            (TAB_TITLES["moves"], pn.Column(pn.panel(self.moves_panel), self._moves)),
-            (TAB_TITLES["totals"], pn.Column(pn.panel(self.totals_panel), self._totals)),
+            (TAB_TITLES["migration"], pn.Column(pn.panel(self.moves_panel), self._moves)),
+            (TAB_TITLES["drift"], pn.Column(pn.panel(self.totals_panel), self._totals)),
             (TAB_TITLES["histogram"], pn.panel(self.histogram_panel, loading_indicator=True)),
             active=SIDE_PANELS.index(s.side), dynamic=True,
             styles={"background": "#ffffff", "border": "1px solid #e4e0d8", "border-radius": "6px"},
@@ -147,7 +146,7 @@ class SidePanels(param.Parameterized):
         ref = s.compare_to if s.compare_to >= 0 else i - 1
         options = {"previous snapshot": -1}
         options.update({s.served.describe(k): k for k in range(n)})
-        pick = pn.widgets.Select(label="Compare with", options=options, value=s.compare_to,
+        pick = pn.widgets.Select(label=LABELS["compare_to"], options=options, value=s.compare_to,
                                  width=320)
         pick.param.watch(lambda e: s.param.update(compare_to=e.new), "value")
         if ref < 0 or ref == i:
@@ -180,9 +179,9 @@ class SidePanels(param.Parameterized):
         n = s.nsnapshots
         if n < 2:
             self._totals.objects = []
-            return _note("This run has one snapshot: a drift needs at least two, so totals are "
+            return _note("This run has one snapshot: a drift needs at least two, so drift is "
                          "not shown.")
-        rtol = pn.widgets.FloatInput(label="Tolerance (relative)", value=s.rtol, start=1e-15,
+        rtol = pn.widgets.FloatInput(label=LABELS["rtol"], value=s.rtol, start=1e-15,
                                      step=1e-4, width=200)
         rtol.param.watch(lambda e: s.param.update(rtol=float(e.new)) if e.new and e.new > 0 else None,
                          "value")
@@ -234,7 +233,7 @@ class SidePanels(param.Parameterized):
     def histogram_panel(self):
         s = self.state
         col = s.hist_column
-        pick = pn.widgets.Select.from_param(s.param.hist_column, label="Column", width=240)
+        pick = pn.widgets.Select.from_param(s.param.hist_column, label=LABELS["hist_column"], width=240)
         try:
             frame = s.frame()
             values = frame[col]
@@ -319,14 +318,14 @@ def _moves_facts(summary: pd.DataFrame) -> str:
         return "No particles to match."
     row = summary.sum(numeric_only=True)
     bits = []
-    for k, label in (("matched", "matched"), ("migrated", "changed block"), ("created", "created"),
-                     ("lost", "lost")):
+    for k in ("matched", "migrated", "created", "lost"):
         if k in row:
-            bits.append(f"{label} **{int(row[k]):,}**")
+            bits.append(f"{SUMMARY_LABELS[k]} **{int(row[k]):,}**")
     if "max_displacement_cells" in summary:
-        bits.append(f"largest move **{float(summary['max_displacement_cells'].max()):.3g}** cells")
+        bits.append(f"{SUMMARY_LABELS['max_displacement_cells']} "
+                    f"**{float(summary['max_displacement_cells'].max()):.3g}**")
     if "over_one_cell" in summary:
-        bits.append(f"beyond one cell per step **{int(row['over_one_cell']):,}**")
+        bits.append(f"{SUMMARY_LABELS['over_one_cell']} **{int(row['over_one_cell']):,}**")
     return " · ".join(bits)
 
 

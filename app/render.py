@@ -22,6 +22,7 @@ import holoviews as hv
 from ..engine import dask_backend
 from ..diagnostics._colstats import finite_stats
 from ..core.errors import OptionError
+from .view_policy import DEFAULT_CMAP
 
 REDUCTIONS = ("count", "sum", "mean")
 SCALINGS = ("linear", "log", "eq_hist")
@@ -88,11 +89,6 @@ def _stats(frame, col: str):
     return _cached(frame, ("stats", col), lambda: finite_stats(_column(frame, col)))
 
 
-#: share of the span added on each side of a data range that is not a position
-#: (a cold beam sits exactly on its min/max and would vanish into the frame)
-DATA_MARGIN = 0.04
-
-
 def padded_range(lo: float, hi: float, margin: float = 0.0) -> tuple[float, float]:
     """A range with room for a single value (a zero-width range cannot be binned).
 
@@ -104,12 +100,6 @@ def padded_range(lo: float, hi: float, margin: float = 0.0) -> tuple[float, floa
         return (lo - pad, hi + pad)
     pad = abs(lo) * 1e-6 if lo != 0 else 0.5
     return (lo - pad, hi + pad)
-
-
-def default_range(frame, col: str) -> tuple[float, float]:
-    """The range a view opens on: positions as they are, other columns with a margin."""
-    margin = 0.0 if col in frame.position_names else DATA_MARGIN
-    return padded_range(*data_range(frame, col), margin=margin)
 
 
 def _nonfinite(frame, cols) -> np.ndarray | None:
@@ -240,7 +230,7 @@ def histogram_counts(agg: xr.DataArray) -> np.ndarray:
 
 
 # ---------------------------------------------------------------------------
-def density_image(agg: xr.DataArray, *, cmap="viridis", scaling: str = "eq_hist", title: str = "",
+def density_image(agg: xr.DataArray, *, cmap=DEFAULT_CMAP, scaling: str = "eq_hist", title: str = "",
                   xlabel: str = "", ylabel: str = "", clabel: str = "", width: int | None = None,
                   height: int | None = None):
     """A holoviews Image of an aggregate, with a colour bar, for bokeh and matplotlib alike.

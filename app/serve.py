@@ -10,6 +10,7 @@ from this host's own names and addresses.
 
 from __future__ import annotations
 
+import logging
 import os
 import secrets
 import socket
@@ -21,7 +22,10 @@ from ..core.context import AuditContext
 from ..core.errors import OptionError
 from ..core.run import Run
 from . import login
-from .state import SCAN_SECONDS, SERVED, URL_KEYS, ServedRuns
+from .state import SCAN_SECONDS, SERVED, URL_KEYS, ServedRuns, link_query
+from .view_policy import run_name
+
+log = logging.getLogger("swarmaudit.serve")
 
 #: how long a page's session waits for its browser to connect. Bokeh's 15 s is short when many
 #: pages load at once on a busy machine: a session dropped before its browser connects is made
@@ -32,13 +36,6 @@ UNUSED_SESSION_MS = 120_000
 FOLLOW_SECONDS = SCAN_SECONDS
 
 _ASSETS = os.path.join(os.path.dirname(__file__), "assets")
-
-
-def run_name(ctx: AuditContext) -> str:
-    """A short name for a run: its folder name (what the run menu and links show)."""
-    src = (ctx.run.source or "run").split(",")[0].strip()
-    name = os.path.basename(os.path.normpath(src)) or "run"
-    return name.replace("*", "").replace("?", "") or "run"
 
 
 def _inside(path: str, real_roots: list[str]) -> bool:
@@ -114,12 +111,28 @@ def host_names() -> list[str]:
 
 
 def _session_page(runs: ServedRuns):
-    """The panel app of one browser session."""
+    """The panel app of one browser session; never a traceback on the page."""
+    try:
+        return _build_session_page(runs)
+    except Exception as exc:     # the page says it failed; the server log gets one line
+        log.error("page could not be built: %s: %s", type(exc).__name__, exc)
+        import panel as pn
+        return pn.pane.Alert("This page could not be built; the server's log says why. "
+                             "Open the address without its query to get the default view.",
+                             alert_type="danger")
+
+
+def _build_session_page(runs: ServedRuns):
     import panel as pn
 
     from .dashboard import build_page
     loc = pn.state.location
-    query = dict(loc.query_params) if loc is not None else {}
+    search = loc.search if loc is not None else ""
+    query = link_query(search)
+    if loc is not None:
+        # nothing else may parse the address as it came (panel's own query parsing turns long
+        # digit strings into ints); the page's own query replaces it once the state holds it
+        loc.search = ""
     base = ""
     if loc is not None:
         port = f":{loc.port}" if loc.port else ""
@@ -128,17 +141,17 @@ def _session_page(runs: ServedRuns):
     # a run still being written: new snapshots join every open page (the scan itself is shared)
     pn.state.add_periodic_callback(dash.follow_run, period=int(1000 * FOLLOW_SECONDS))
     if loc is not None:
-        # the state already holds the validated query; what sync cannot apply is dropped
-        loc.sync(dash.state, URL_KEYS, on_error=lambda refused: None)
+        # the state is read from the address once (validated, key by key, above) and then
+        # written to it: the address never sets the state again, so a value the state refused
+        # cannot come back through the browser's report of its own address
         state = dash.state
 
         def write_url(*_):
-            # the whole query every time: sync alone merges changed keys into the old query,
-            # which keeps keys whose value went back to None (a stale zoom after an axis change)
             search = "?" + urlencode(state.query())
             if loc.search != search:
                 loc.search = search
         state.param.watch(write_url, list(URL_KEYS))
+        write_url()
         # the browser reports its own address once it connects; write ours after that
         pn.state.onload(write_url)
     return page

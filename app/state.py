@@ -18,25 +18,30 @@ import threading
 import time
 from collections import OrderedDict
 from concurrent.futures import Future, ThreadPoolExecutor
-from urllib.parse import urlencode
+from urllib.parse import parse_qsl, urlencode
 
 import param
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import concat_frames
+from .view_policy import (BLOCK_MODE_LABELS, CMAPS, COLOR_BY, DEFAULT_CMAP, DEFAULT_SCALING,
+                          PANEL_ALIASES, PANELS, SCALINGS, default_axes, opening_range,
+                          range_problem, snapshot_label_of)
 
 ALL_SPECIES = "all"
 #: a served run's folders are listed again at most this often (seconds), however many viewers
 SCAN_SECONDS = 3.0
 
-COLOR_BY = ("count", "weight", "mean")
-SCALINGS = ("eq_hist", "log", "linear")
-#: colour maps offered; names both bokeh and matplotlib resolve through holoviews
-CMAPS = ("magma", "viridis", "cividis", "inferno", "fire", "kbc", "bmy", "gray")
-BLOCK_MODES = ("off", "outline", "tinted", "labelled")
+BLOCK_MODES = tuple(BLOCK_MODE_LABELS)
 #: side panels, in the order of their tabs
-SIDE_PANELS = ("blocks", "moves", "totals", "histogram")
+SIDE_PANELS = tuple(PANELS)
 SELECT_VIEWS = ("", "space", "phase")
+#: longest value a link may carry for one key; longer ones are dropped unread (a number of
+#: thousands of digits would otherwise meet Python's limit on int parsing)
+MAX_QUERY_VALUE = 256
+#: the range parameters of the state and the view and axis each belongs to
+RANGE_AXES = {"space_xr": ("space", 0), "space_yr": ("space", 1),
+              "phase_xr": ("phase", 0), "phase_yr": ("phase", 1)}
 
 #: state parameter -> URL query key (short, stable: these are what links carry)
 URL_KEYS = {
@@ -217,12 +222,7 @@ class ServedRun:
             snap = self.snapshot(i)
         except SwarmAuditError:
             return f"#{i} {self.labels[i]} (unreadable)"
-        bits = [f"#{i}"]
-        if snap.step is not None:
-            bits.append(f"step {snap.step}")
-        if snap.time is not None:
-            bits.append(f"t = {snap.time:.4g}{(' ' + snap.time_unit) if snap.time_unit else ''}")
-        return "  ·  ".join(bits)
+        return snapshot_label_of(snap, int(i))
 
 
 class ServedRuns:
@@ -307,6 +307,34 @@ RESULTS = Results()
 
 
 # ---------------------------------------------------------------------------
+class ViewRange(param.Range):
+    """A range of a view: None, or two finite numbers, the second above the first.
+
+    Checked on every set, so no caller (a link, the page's own location sync,
+    a widget) can hand the views a range they cannot bin.
+    """
+
+    def _validate_value(self, val, allow_None):
+        super()._validate_value(val, allow_None)
+        if val is not None:
+            problem = range_problem(val)
+            if problem:
+                raise ValueError(f"{self.name}: {problem}, got {val!r}")
+
+
+class SelectionBox(param.NumericTuple):
+    """(x0, y0, x1, y1) of a selection: finite, x1 above x0 and y1 above y0."""
+
+    def _validate_value(self, val, allow_None):
+        super()._validate_value(val, allow_None)
+        if val is not None:
+            if len(val) != 4:
+                raise ValueError(f"{self.name}: a selection is four numbers, got {val!r}")
+            problem = range_problem((val[0], val[2])) or range_problem((val[1], val[3]))
+            if problem:
+                raise ValueError(f"{self.name}: {problem}, got {val!r}")
+
+
 class ViewState(param.Parameterized):
     """The whole view of one dashboard session; what a shared link encodes.
 
@@ -322,17 +350,17 @@ class ViewState(param.Parameterized):
     space_y = param.Selector(check_on_set=True, objects=[], doc="vertical axis of the spatial view")
     phase_x = param.Selector(check_on_set=True, objects=[], doc="horizontal axis of the phase-space view")
     phase_y = param.Selector(check_on_set=True, objects=[], doc="vertical axis of the phase-space view")
-    space_xr = param.Range(None, allow_None=True, doc="visible range of space_x (None: all)")
-    space_yr = param.Range(None, allow_None=True)
-    phase_xr = param.Range(None, allow_None=True)
-    phase_yr = param.Range(None, allow_None=True)
+    space_xr = ViewRange(None, allow_None=True, doc="visible range of space_x (None: all)")
+    space_yr = ViewRange(None, allow_None=True)
+    phase_xr = ViewRange(None, allow_None=True)
+    phase_yr = ViewRange(None, allow_None=True)
     color_by = param.Selector(check_on_set=True, default="count", objects=list(COLOR_BY),
                               doc="count per pixel, summed weight, or mean of color_column")
     color_column = param.Selector(check_on_set=True, objects=[], doc="column averaged when color_by is 'mean'")
-    scaling = param.Selector(check_on_set=True, default="eq_hist", objects=list(SCALINGS))
-    cmap = param.Selector(check_on_set=True, default="magma", objects=list(CMAPS))
+    scaling = param.Selector(check_on_set=True, default=DEFAULT_SCALING, objects=list(SCALINGS))
+    cmap = param.Selector(check_on_set=True, default=DEFAULT_CMAP, objects=list(CMAPS))
     slab_axis = param.Selector(check_on_set=True, default="", objects=[""], doc="third axis cut into a slab (3-D runs)")
-    slab_range = param.Range(None, allow_None=True, doc="lo <= slab_axis < hi")
+    slab_range = ViewRange(None, allow_None=True, doc="lo <= slab_axis < hi")
     blocks = param.Selector(check_on_set=True, default="outline", objects=list(BLOCK_MODES))
     side = param.Selector(check_on_set=True, default="blocks", objects=list(SIDE_PANELS))
     compare_to = param.Integer(-1, bounds=(-1, None), doc="migration reference snapshot (-1: previous)")
@@ -340,14 +368,16 @@ class ViewState(param.Parameterized):
                         doc="tolerance band of the drift panel")
     hist_column = param.Selector(check_on_set=True, objects=[], doc="column of the 1-D histogram")
     select_view = param.Selector(check_on_set=True, default="", objects=list(SELECT_VIEWS))
-    select_box = param.NumericTuple(None, length=4, allow_None=True,
-                                    doc="(x0, y0, x1, y1) of the selection in select_view's axes")
+    select_box = SelectionBox(None, length=4, allow_None=True,
+                              doc="(x0, y0, x1, y1) of the selection in select_view's axes")
     # not in links: bumped when a live run's files change under this view
     run_revision = param.Integer(0, doc="bumped when snapshots joined or left the run in view")
     data_revision = param.Integer(0, doc="bumped when the files of the snapshot in view changed")
 
     def __init__(self, runs: ServedRuns | None = None, **params):
         self._runs = runs if runs is not None else SERVED
+        #: one sentence per link value that was left out (shown on the page)
+        self.link_notes: list[str] = []
         names = self._runs.names
         if not names:
             raise SwarmAuditError("no run to show")
@@ -530,19 +560,36 @@ class ViewState(param.Parameterized):
         """Set the state from a URL query, key by key; returns the keys refused.
 
         Values are checked against the choices the server offers (run names,
-        column names, fixed option lists) and numeric bounds; anything else is
-        refused and the view keeps its default. Nothing in a query is ever
-        used as a path or evaluated.
+        column names, fixed option lists) and numeric bounds; a view range
+        must be finite, ordered, non-empty and within a sane span of the data
+        (view_policy.range_problem). Anything else is refused, the view keeps
+        its default and ``link_notes`` gets one sentence about it. Nothing in
+        a query is ever used as a path or evaluated.
         """
         inverse = {v: k for k, v in URL_KEYS.items()}
-        refused = [k for k in query if k not in inverse]
-        wanted = {inverse[k]: v for k, v in query.items() if k in inverse}
+        refused = []
+        wanted = {}
+        for k, v in query.items():
+            if k not in inverse:
+                refused.append(k)
+                self._note_refused(k, None, "this link key is unknown")
+            elif isinstance(v, str) and len(v) > MAX_QUERY_VALUE:
+                refused.append(k)
+                self._note_refused(k, None, f"the value is longer than {MAX_QUERY_VALUE} characters")
+            else:
+                wanted[inverse[k]] = v
+        if isinstance(wanted.get("side"), str):
+            wanted["side"] = PANEL_ALIASES.get(wanted["side"], wanted["side"])
         # axis changes clear the view range and the selection; a link sets all of them at once
         for p in _APPLY_ORDER:
             if p not in wanted:
                 continue
             try:
                 value = _coerce(self.param[p], wanted[p])
+                if p in RANGE_AXES and value is not None:
+                    problem = self._range_problem(p, value)
+                    if problem:
+                        raise ValueError(problem)
                 if p in ("space_x", "space_y", "phase_x", "phase_y"):
                     self._adjusting = True
                     try:
@@ -551,21 +598,46 @@ class ViewState(param.Parameterized):
                         self._adjusting = False
                 else:
                     setattr(self, p, value)
-            except (ValueError, TypeError):
+            except (ValueError, TypeError, OverflowError, RecursionError) as exc:
                 refused.append(URL_KEYS[p])
+                self._note_refused(URL_KEYS[p], wanted[p], _reason(exc))
         return refused
 
+    def _range_problem(self, p: str, value) -> str | None:
+        """Why a range from a link cannot be drawn around the data in view (None: it can)."""
+        which, axis = RANGE_AXES[p]
+        col = (self.space_x, self.space_y)[axis] if which == "space" else (self.phase_x, self.phase_y)[axis]
+        try:
+            frame = self.frame()
+            layout = self.served.layout(self.snapshot)
+        except SwarmAuditError:
+            return range_problem(value)
+        return range_problem(value, opening_range([frame], col, layout))
 
-def default_axes(frame, cols):
-    """Spatial view: first two position axes. Phase view: x against its momentum component."""
-    pos = frame.position_names if frame is not None else []
-    mom = frame.momentum_names() if frame is not None else []
-    space = (pos + [c for c in cols if c not in pos])[:2]
-    if len(space) < 2:
-        space = (space + cols + cols)[:2]
-    first = pos[0] if pos else cols[0]
-    partner = mom[0] if mom else next((c for c in cols if c != first), first)
-    return tuple(space), (first, partner)
+    def _note_refused(self, key: str, value, why: str) -> None:
+        shown = "" if value is None else repr(value if not isinstance(value, str) else value[:40])
+        shown = shown if len(shown) <= 44 else shown[:40] + "…"
+        self.link_notes.append(f"The link's '{key}'{(' ' + shown) if shown else ''} was left out "
+                               f"({why}); the view shows its default there.")
+
+
+def link_query(search: str) -> dict[str, str]:
+    """The query of a page's address, as strings, read without converting any value.
+
+    A value is only ever parsed by ``ViewState.apply_query``, which refuses
+    one longer than MAX_QUERY_VALUE unread (a value of thousands of digits
+    would otherwise reach Python's limit on int parsing and fail the page).
+    """
+    pairs = parse_qsl((search or "").lstrip("?"), keep_blank_values=True, max_num_fields=None)
+    out = {}
+    for k, v in pairs[:len(URL_KEYS) * 2]:
+        out[k[:MAX_QUERY_VALUE]] = v if len(v) <= MAX_QUERY_VALUE else v[:MAX_QUERY_VALUE + 1]
+    return out
+
+
+def _reason(exc: Exception) -> str:
+    text = str(exc).split(", got ")[0]
+    return text.split(": ", 1)[1] if text.startswith(tuple(URL_KEYS)) and ": " in text else text
 
 
 def _coerce(p: param.Parameter, value):
@@ -594,9 +666,9 @@ def _coerce(p: param.Parameter, value):
             raise ValueError("not a list")
         vals = tuple(float(v) for v in value if not isinstance(v, bool))
         if len(vals) != len(value) or not all(math.isfinite(v) for v in vals):
-            raise ValueError("not finite numbers")
+            raise ValueError("a range needs finite numbers")
         if isinstance(p, param.Range) and (len(vals) != 2 or vals[1] <= vals[0]):
-            raise ValueError("not an increasing pair")
+            raise ValueError("a range needs its upper end above its lower end")
         return vals
     if isinstance(p, param.Number):
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):

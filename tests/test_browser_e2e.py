@@ -219,7 +219,7 @@ def make_screenshot(path, demo_out):
         with sync_playwright() as p:
             browser = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
             page = browser.new_page(viewport={"width": 1560, "height": 1180})
-            page.goto(url + "?snap=24&sp=all&blocks=outline&tab=moves")
+            page.goto(url + "?snap=24&sp=all&blocks=outline&tab=migration")
             wait_drawn(page)
             time.sleep(4)
             os.makedirs(os.path.dirname(os.path.abspath(path)), exist_ok=True)

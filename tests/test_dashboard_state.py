@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from dash_fixtures import memory_context, two_beam_snapshot
 
-from swarmaudit.app import render
-from swarmaudit.app.dashboard import Dashboard, bin_factor, build_page
+from swarmaudit.app import render, view_policy
+from swarmaudit.app.dashboard import Dashboard, build_page
 from swarmaudit.app.state import RESULTS, URL_KEYS, ServedRuns, ViewState
 
 
@@ -36,7 +36,7 @@ def test_link_round_trip_reopens_the_same_view(runs):
     a = ViewState(runs)
     a.param.update(snapshot=2, species="beam_left", space_x="vx", space_y="y", phase_y="vy",
                    color_by="mean", color_column="vy", scaling="log", cmap="kbc", blocks="tinted",
-                   side="totals", rtol=2.5e-4, hist_column="weight")
+                   side="drift", rtol=2.5e-4, hist_column="weight")
     a.param.update(space_xr=(0.25, 0.75), space_yr=(-1.0, 1.5),
                    select_view="space", select_box=(0.1, 0.2, 0.6, 1.0))
     q = a.query()
@@ -88,11 +88,12 @@ def test_space_view_equals_histogram2d(runs):
     s.species = "beam_right"
     dash = Dashboard(s, runs)
     frame = s.frame()
-    k = bin_factor(frame.length)
-    nx, ny = 560 // k, 440 // k
-    # dyadic bin sizes (1/32) make both sides round the same way at bin edges
-    xr, yr = (0.0, nx / 32), (0.0, ny / 32)
+    xr, yr = (0.0, 4.0), (0.0, 2.0)
     out = dash.render_view("space", x_range=xr, y_range=yr, snapshot=0)
+    nx, ny = dash.shown["space"][0].grid
+    # the policy keeps square bins: 128 x 64 here, so dyadic bin sizes (1/32) make both sides
+    # round the same way at bin edges
+    assert (nx, ny) == (128, 64)
     ref, _, _ = np.histogram2d(frame["x"], frame["y"], bins=[nx, ny], range=[xr, yr])
     got = _image_counts(out)
     np.testing.assert_array_equal(got, ref.T)
@@ -104,10 +105,10 @@ def test_weight_colouring_sums_weights(runs):
     s.param.update(species="beam_left", color_by="weight")
     dash = Dashboard(s, runs)
     f = s.frame()
-    out = dash.render_view("phase", x_range=(0.0, 140 / 32), y_range=(-2.0, -2.0 + 110 / 32),
-                           snapshot=0)
-    ref, _, _ = np.histogram2d(f["x"], f["vx"], bins=[140, 110],
-                               range=[(0.0, 140 / 32), (-2.0, -2.0 + 110 / 32)], weights=f["weight"])
+    out = dash.render_view("phase", x_range=(0.0, 4.0), y_range=(-2.0, 2.0), snapshot=0)
+    nx, ny = dash.shown["phase"][0].grid
+    ref, _, _ = np.histogram2d(f["x"], f["vx"], bins=[nx, ny], range=[(0.0, 4.0), (-2.0, 2.0)],
+                               weights=f["weight"])
     np.testing.assert_allclose(_image_counts(out), ref.T)
 
 
@@ -124,11 +125,12 @@ def test_linked_selection_counts_and_weight(runs):
     assert f"**{n:,}**" in dash.selection_info.object
     # the phase view draws the selected particles as a second layer: its pixels are exactly
     # those where a selected particle falls
-    xr, yr = (0.0, 140 / 32), (-2.0, -2.0 + 110 / 32)
+    xr, yr = (0.0, 4.0), (-2.0, 2.0)
     out = dash.render_view("phase", x_range=xr, y_range=yr, snapshot=0, select_box=box,
                            select_view="space")
     layer = out.get(1).dimension_values(2, flat=False)
-    ref, _, _ = np.histogram2d(f["x"][inside], f["vx"][inside], bins=[140, 110], range=[xr, yr])
+    nx, ny = dash.shown["phase"][0].grid
+    ref, _, _ = np.histogram2d(f["x"][inside], f["vx"][inside], bins=[nx, ny], range=[xr, yr])
     np.testing.assert_array_equal(layer > 0, ref.T > 0)
 
 
@@ -178,10 +180,10 @@ def test_slab_of_a_3d_run(runs):
     assert s.slab_axis == "z"
     s.slab_range = (0.25, 0.5)
     dash = Dashboard(s, r)
-    k = bin_factor(5000)
-    nx, ny = 560 // k, 440 // k
-    xr, yr = (0.0, nx / 256), (0.0, ny / 256)
+    xr, yr = (0.0, 0.5), (0.0, 0.5)
     out = dash.render_view("space", x_range=xr, y_range=yr, snapshot=0, slab_range=s.slab_range)
+    nx, ny = dash.shown["space"][0].grid
+    assert (nx, ny) == (64, 64)       # square bins of 1/128: dyadic edges
     keep = (cols["z"] >= 0.25) & (cols["z"] < 0.5)
     ref2, _, _ = np.histogram2d(cols["x"][keep], cols["y"][keep], bins=[nx, ny], range=[xr, yr])
     np.testing.assert_array_equal(_image_counts(out), ref2.T)
@@ -208,6 +210,9 @@ def test_sessions_share_one_copy_and_one_result(runs):
 def test_snapshot_label_names_step_and_time(runs):
     served = runs["beams"]
     assert served.describe(2) == "#2  ·  step 20  ·  t = 0.2"
+    # the same words title the views on the screen and in the export
+    s = ViewState(runs)
+    assert served.describe(2) in view_policy.particle_view(s, "space", snapshot=2).title
     assert "unreadable" in served.describe(3) or "step 30" in served.describe(3)
 
 

@@ -1,0 +1,383 @@
+"""The one view policy: what a particle view of a given state shows, wherever it is drawn.
+
+From a view state (:class:`~.state.ViewState`, or anything with the same
+attributes) this module decides the default axes, the range a view opens
+on, whether a range from a link or a zoom may be used, the colour map and
+scale, the grid of bins, the labels, the title and the names of runs and
+snapshots. The dashboard, ``export`` and any other drawing command ask it,
+so a figure in a report is the figure on the screen for the same state.
+
+It also holds the words the interface uses (tab titles, widget labels, the
+labels of the table columns), one name per thing, so the dashboard, the
+tables and the report say the same.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass, field
+
+# ---------------------------------------------------------------------------------------------
+# names: one word per thing, shared by the dashboard, the tables and the report
+
+#: side panels, in tab order: value in a link -> tab title (the CSV and the report use the same words)
+PANELS = {"blocks": "Blocks", "migration": "Migration", "drift": "Drift", "histogram": "Histogram"}
+#: tab values of links written before the tabs took the names of their tables
+PANEL_ALIASES = {"moves": "migration", "totals": "drift"}
+
+#: the two particle views: name -> what their titles call them
+VIEWS = {"space": "Space", "phase": "Phase space"}
+
+#: labels of the dashboard's widgets and buttons (they say what the control does)
+LABELS = {
+    "run": "Run",
+    "species": "Species",
+    "space_x": "Space: horizontal axis",
+    "space_y": "Space: vertical axis",
+    "phase_x": "Phase space: horizontal axis",
+    "phase_y": "Phase space: vertical axis",
+    "color_column": "Column averaged",
+    "cmap": "Colour map",
+    "reset_zoom": "Reset zoom",
+    "clear_selection": "Clear selection",
+    "copy_link": "Copy link",
+    "compare_to": "Compare with",
+    "rtol": "Tolerance (relative)",
+    "hist_column": "Column",
+}
+
+#: section headings of the controls
+SECTIONS = {"axes": "Axes", "colour": "Colour", "blocks": "Blocks on the space view",
+            "selection": "Selection"}
+
+#: colouring (value in a link -> label on its button)
+COLOR_BY_LABELS = {"count": "count", "weight": "weight", "mean": "mean"}
+#: colour scales (value in a link -> label on its button)
+SCALING_LABELS = {"eq_hist": "eq. hist", "log": "log", "linear": "linear"}
+#: how the block layout is drawn over the space view (value in a link -> label on its button)
+BLOCK_MODE_LABELS = {"off": "off", "outline": "outline", "tinted": "shade by count",
+                     "labelled": "count labels"}
+
+#: words shown for the columns of migration_summary.csv (the label follows the column's name)
+SUMMARY_LABELS = {
+    "matched": "matched",
+    "migrated": "migrated",
+    "created": "created",
+    "lost": "lost",
+    "max_displacement_cells": "largest displacement (level-0 cells)",
+    "over_one_cell": "over one cell per step",
+}
+#: what a migrated particle is, for captions and help text
+MIGRATED_MEANS = "matched particles that are in another block than before"
+
+# ---------------------------------------------------------------------------------------------
+# colour
+
+#: colour maps offered; names both bokeh and matplotlib resolve through holoviews
+CMAPS = ("viridis", "magma", "cividis", "inferno", "fire", "kbc", "bmy", "gray")
+#: the colour map of every density view, census map and deposit unless one is chosen
+DEFAULT_CMAP = "viridis"
+COLOR_BY = ("count", "weight", "mean")
+SCALINGS = ("eq_hist", "log", "linear")
+DEFAULT_SCALING = "eq_hist"
+
+# ---------------------------------------------------------------------------------------------
+# sizes and grids
+
+#: pixels of a particle view on the screen
+SCREEN_BOX = (560, 440)
+#: share of an exported figure the density image itself covers (the rest: axes, title, colour bar)
+IMAGE_SHARE = (0.78, 0.80)
+#: particles per bin below which a view's grid is made coarser
+PER_BIN = 6.0
+#: fewest bins along the shorter side of a coarsened grid
+MIN_BINS = 64
+
+#: share of the span added on each side of a data range that is not a position
+#: (a cold beam sits exactly on its min/max and would vanish into the frame)
+DATA_MARGIN = 0.04
+#: a range from a link or a zoom may be at most this many opening spans wide, and must overlap
+#: the opening range widened by as many spans on each side
+MAX_SPANS = 1000.0
+#: and at least this share of the opening span (finer is below what float32 data resolves)
+MIN_SHARE = 1e-9
+
+
+def figure_box(width: int, height: int) -> tuple[int, int]:
+    """Pixels of the density image inside an exported figure of ``width`` x ``height``."""
+    return (max(int(width * IMAGE_SHARE[0]), 16), max(int(height * IMAGE_SHARE[1]), 16))
+
+
+def figure_size(box: tuple[int, int]) -> tuple[int, int]:
+    """The exported figure size whose density image covers ``box`` pixels (inverse of figure_box)."""
+    w = math.ceil(box[0] / IMAGE_SHARE[0])
+    h = math.ceil(box[1] / IMAGE_SHARE[1])
+    while figure_box(w, h)[0] < box[0]:
+        w += 1
+    while figure_box(w, h)[1] < box[1]:
+        h += 1
+    return w, h
+
+
+def grid_size(box, particles: int | None, x_range, y_range, equal: bool) -> tuple[int, int]:
+    """Bins of a view drawn into ``box`` pixels: one per pixel, coarser for few particles.
+
+    With fewer than about six particles per bin a full-resolution image is
+    speckle; the grid is then made coarser (never below 64 bins along the
+    shorter side) so the density reads. With ``equal`` (two position axes)
+    the grid keeps the shape of the ranges, so bins are square.
+    """
+    w, h = int(box[0]), int(box[1])
+    if equal:
+        sx, sy = x_range[1] - x_range[0], y_range[1] - y_range[0]
+        if sx > 0 and sy > 0:
+            if sy / sx > h / w:
+                w = max(int(round(h * sx / sy)), 16)
+            else:
+                h = max(int(round(w * sy / sx)), 16)
+    if particles is not None and particles > 0:
+        shrink = math.sqrt(particles / (PER_BIN * w * h))
+        if shrink < 1.0:
+            shrink = max(shrink, min(MIN_BINS / min(w, h), 1.0))
+            w, h = max(int(round(w * shrink)), 1), max(int(round(h * shrink)), 1)
+    return w, h
+
+
+# ---------------------------------------------------------------------------------------------
+# axes and ranges
+
+def default_axes(frame, cols):
+    """Space view: the first two position axes. Phase space: x against its momentum component."""
+    pos = frame.position_names if frame is not None else []
+    mom = frame.momentum_names() if frame is not None else []
+    cols = list(cols) or list(pos)
+    space = (pos + [c for c in cols if c not in pos])[:2]
+    if len(space) < 2:
+        space = (space + cols + cols)[:2]
+    first = pos[0] if pos else cols[0]
+    partner = mom[0] if mom else next((c for c in cols if c != first), first)
+    return tuple(space), (first, partner)
+
+
+def has_view(frame, which: str) -> str | None:
+    """None when ``frame`` has what the ``which`` view needs, else what it lacks (for a note)."""
+    if which == "space":
+        return None if len(frame.position_names) >= 2 else "two position axes"
+    if frame.position_names and frame.momentum_names():
+        return None
+    return "a position and a momentum (or velocity) column"
+
+
+def equal_aspect(frames, xcol: str, ycol: str) -> bool:
+    """Both axes are positions: the picture keeps the shape of space."""
+    return all(xcol in f.position_names and ycol in f.position_names for f in frames)
+
+
+def opening_range(frames, col: str, layout=None) -> tuple[float, float]:
+    """The range a view of ``col`` opens on, shared by every frame in ``frames``.
+
+    A position axis of the layout opens on the domain; any other column on
+    the union of the frames' finite data ranges, widened by DATA_MARGIN.
+    """
+    from .render import data_range, padded_range
+    frames = [f for f in frames if f is not None and col in f]
+    f0 = frames[0] if frames else None
+    if f0 is not None and layout is not None and col in f0.position_names:
+        a = f0.position_names.index(col)
+        if a < layout.ndim:
+            lo, hi = float(layout.domain_lower[a]), float(layout.domain_upper[a])
+            if math.isfinite(lo) and math.isfinite(hi) and hi > lo:
+                return (lo, hi)
+    lo, hi = math.inf, -math.inf
+    for f in frames:
+        if f.length:
+            a, b = data_range(f, col)
+            lo, hi = min(lo, a), max(hi, b)
+    if not hi >= lo:
+        return (0.0, 1.0)
+    return padded_range(lo, hi, margin=DATA_MARGIN)
+
+
+def range_problem(value, opening=None) -> str | None:
+    """Why ``value`` cannot be a view range (None when it can).
+
+    A range must be two finite numbers, the second above the first, not
+    narrower than the data can resolve and, given the ``opening`` range,
+    within MAX_SPANS of it.
+    """
+    try:
+        lo, hi = (float(v) for v in value)
+    except (TypeError, ValueError):
+        return "a range is two numbers"
+    if not (math.isfinite(lo) and math.isfinite(hi)):
+        return "a range needs finite numbers"
+    if not hi > lo:
+        return "a range needs its upper end above its lower end"
+    span = hi - lo
+    if not math.isfinite(span):
+        return "the range is too wide to draw"
+    if span <= 64 * 2.220446049250313e-16 * max(abs(lo), abs(hi)):
+        return "the range is too narrow to draw"
+    if opening is not None:
+        olo, ohi = float(opening[0]), float(opening[1])
+        ospan = ohi - olo
+        if span > MAX_SPANS * ospan:
+            return f"the range is more than {MAX_SPANS:g} times as wide as the data's"
+        if span < MIN_SHARE * ospan:
+            return "the range is narrower than the data can resolve"
+        if hi < olo - MAX_SPANS * ospan or lo > ohi + MAX_SPANS * ospan:
+            return "the range is far away from the data"
+    return None
+
+
+def usable_range(value, opening):
+    """``value`` when it is a range a view can draw around this data, else None."""
+    if value is None:
+        return None
+    return tuple(float(v) for v in value) if range_problem(value, opening) is None else None
+
+
+# ---------------------------------------------------------------------------------------------
+# labels and names
+
+def run_name(ctx) -> str:
+    """A short name for a run: its folder's name (run menu, links, titles, report)."""
+    src = ctx.run.source or "run"
+    if isinstance(src, (list, tuple)):
+        src = src[0] if src else "run"
+    src = str(src).split(",")[0].strip().rstrip("/\\")
+    name = os.path.basename(os.path.normpath(src)) if src else ""
+    return name.replace("*", "").replace("?", "") or "run"
+
+
+def snapshot_label(i: int, step=None, time=None, time_unit: str = "") -> str:
+    """A snapshot as every view names it: position, step and time."""
+    bits = [f"#{int(i)}"]
+    if step is not None:
+        bits.append(f"step {step}")
+    if time is not None:
+        bits.append(f"t = {time:.4g}{(' ' + time_unit) if time_unit else ''}")
+    return "  ·  ".join(bits)
+
+
+def snapshot_label_of(snap, i: int) -> str:
+    return snapshot_label(i, snap.step, snap.time, getattr(snap, "time_unit", "") or "")
+
+
+def view_title(which: str, run: str, species: str, snapshot: str) -> str:
+    """The title of a particle view, on the screen and in the export."""
+    return f"{VIEWS[which]} · {run} · {species} · {snapshot}"
+
+
+def value_label(frame, reduction: str, value) -> str:
+    from .render import axis_label
+    return "particles" if reduction == "count" else f"{reduction} of {axis_label(frame, value)}"
+
+
+# ---------------------------------------------------------------------------------------------
+# the view of a state
+
+@dataclass(frozen=True)
+class ParticleView:
+    """Everything a particle view of a state draws, decided once for every output."""
+
+    which: str                     # space | phase
+    xcol: str
+    ycol: str
+    x_range: tuple[float, float]
+    y_range: tuple[float, float]
+    opening: tuple[tuple[float, float], tuple[float, float]]   # the ranges it opens on
+    reduction: str                 # count | sum | mean
+    value: str | None
+    slab: tuple | None             # (column, lo, hi) or None
+    cmap: str
+    scaling: str
+    grid: tuple[int, int]
+    equal: bool
+    title: str
+    xlabel: str
+    ylabel: str
+    clabel: str
+    notes: tuple[str, ...] = field(default=())
+
+    def aggregate(self, frame, mask=None):
+        """The aggregate behind the picture (datashader through render.aggregate_points)."""
+        from . import render
+        return render.aggregate_points(frame, self.xcol, self.ycol, width=self.grid[0],
+                                       height=self.grid[1], x_range=self.x_range,
+                                       y_range=self.y_range, reduction=self.reduction,
+                                       value=self.value, mask=mask, slab=self.slab)
+
+    def image(self, agg):
+        """The picture of an aggregate, with this view's colour map, scale and labels."""
+        from . import render
+        img = render.density_image(agg, cmap=self.cmap, scaling=self.scaling, title=self.title,
+                                   xlabel=self.xlabel, ylabel=self.ylabel, clabel=self.clabel)
+        return img.opts(aspect="equal" if self.equal else "auto", backend="matplotlib")
+
+
+def state_axes(state, which: str) -> tuple[str, str]:
+    return (state.space_x, state.space_y) if which == "space" else (state.phase_x, state.phase_y)
+
+
+def state_ranges(state, which: str):
+    return (state.space_xr, state.space_yr) if which == "space" else (state.phase_xr, state.phase_yr)
+
+
+def particle_view(state, which: str, *, frame=None, snapshot: int | None = None, frames=None,
+                  box=SCREEN_BOX, x_range=None, y_range=None, slab_range=None) -> ParticleView:
+    """The view ``which`` of ``state``: what the dashboard draws and the export writes.
+
+    ``frames`` are the frames whose ranges the view must share (the export's
+    snapshots side by side; by default the frame in view). ``x_range`` /
+    ``y_range`` are a zoom (the screen's range stream); without them the
+    state's ranges are used, and a range that cannot be drawn around this
+    data falls back to the opening range with a note.
+    """
+    i = state.snapshot if snapshot is None else int(snapshot)
+    if frame is None:
+        frame = state.frame(i)
+    frames = list(frames) if frames else [frame]
+    xcol, ycol = state_axes(state, which)
+    try:
+        layout = state.served.layout(i)
+    except Exception:          # a layout that cannot be made: ranges from the data
+        layout = None
+    opening = (opening_range(frames, xcol, layout), opening_range(frames, ycol, layout))
+    notes = []
+    sx, sy = state_ranges(state, which)
+    wanted = (x_range if x_range is not None else sx, y_range if y_range is not None else sy)
+    chosen = []
+    for axis, want, open_ in zip((xcol, ycol), wanted, opening):
+        if want is None:
+            chosen.append(open_)
+            continue
+        problem = range_problem(want, open_)
+        if problem:
+            notes.append(f"range of {axis} left at the data's: {problem}")
+            chosen.append(open_)
+        else:
+            chosen.append(tuple(float(v) for v in want))
+    slab = None
+    slab_range = state.slab_range if slab_range is None else slab_range
+    if state.slab_axis and slab_range:
+        slab = (state.slab_axis, float(slab_range[0]), float(slab_range[1]))
+    if state.color_by == "count":
+        reduction, value = "count", None
+    elif state.color_by == "weight":
+        reduction, value = "sum", frame.column_for("weight")
+        if value is None:
+            reduction = "count"    # no weight column: every weight is 1
+    else:
+        reduction, value = "mean", state.color_column
+    equal = equal_aspect(frames, xcol, ycol)
+    particles = max(f.length for f in frames)
+    grid = grid_size(box, particles, chosen[0], chosen[1], equal)
+    from .render import axis_label
+    snap = state.served.snapshot(i)
+    title = view_title(which, state.run, state.species, snapshot_label_of(snap, i))
+    return ParticleView(which, xcol, ycol, chosen[0], chosen[1], opening, reduction, value, slab,
+                        state.cmap, state.scaling, grid, equal, title, axis_label(frame, xcol),
+                        axis_label(frame, ycol), value_label(frame, reduction, value),
+                        tuple(notes))

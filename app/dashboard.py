@@ -240,7 +240,7 @@ class Dashboard(param.Parameterized):
         img = view.image(agg)
         img = img.opts(backend="bokeh", width=VIEW_W, height=VIEW_H,
                        tools=["hover", "box_select"], active_tools=["wheel_zoom"],
-                       bgcolor=PAPER, toolbar="above")
+                       bgcolor=PAPER, toolbar="above", fontsize={"title": "10.5pt"})
         # selection layer: the same particles, wherever the box was drawn
         sel_img, box = self._selection_layer(frame, which, view, select_box, select_view)
         blocks = self._blocks_layer(frame, which, view.xcol, view.ycol, snapshot)

@@ -122,17 +122,37 @@ def _session_page(runs: ServedRuns):
                              alert_type="danger")
 
 
+def _take_query() -> dict[str, str]:
+    """The query of this session's request, taken off the request before anything parses it.
+
+    Panel's location object converts every digit string of the address into
+    an int, and an int of more than 4,300 digits is an error that would fail
+    the page with HTTP 500. So the query is read here as strings (over-long
+    values capped, refused later with a note) and the request keeps only its
+    path; the page writes its own, validated query into the address.
+    """
+    import panel as pn
+    doc = pn.state.curdoc
+    ctx = getattr(doc, "session_context", None) if doc is not None else None
+    request = getattr(getattr(ctx, "request", None), "_request", None)
+    uri = getattr(request, "uri", None)
+    if not isinstance(uri, str):
+        loc = pn.state.location
+        return link_query(loc.search if loc is not None else "")
+    path, _, search = uri.partition("?")
+    try:
+        request.uri = path
+    except AttributeError:           # a request that cannot be changed: nothing parsed it yet
+        pass
+    return link_query(search)
+
+
 def _build_session_page(runs: ServedRuns):
     import panel as pn
 
     from .dashboard import build_page
+    query = _take_query()
     loc = pn.state.location
-    search = loc.search if loc is not None else ""
-    query = link_query(search)
-    if loc is not None:
-        # nothing else may parse the address as it came (panel's own query parsing turns long
-        # digit strings into ints); the page's own query replaces it once the state holds it
-        loc.search = ""
     base = ""
     if loc is not None:
         port = f":{loc.port}" if loc.port else ""

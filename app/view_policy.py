@@ -258,16 +258,16 @@ def snapshot_label(i: int, step=None, time=None, time_unit: str = "") -> str:
         bits.append(f"step {step}")
     if time is not None:
         bits.append(f"t = {time:.4g}{(' ' + time_unit) if time_unit else ''}")
-    return "  ·  ".join(bits)
+    return " · ".join(bits)
 
 
 def snapshot_label_of(snap, i: int) -> str:
     return snapshot_label(i, snap.step, snap.time, getattr(snap, "time_unit", "") or "")
 
 
-def view_title(which: str, run: str, species: str, snapshot: str) -> str:
-    """The title of a particle view, on the screen and in the export."""
-    return f"{VIEWS[which]} · {run} · {species} · {snapshot}"
+def view_title(which: str, species: str, snapshot: str) -> str:
+    """The title of a particle view, on the screen and in the export (the run is named above it)."""
+    return f"{VIEWS[which]} · {species} · {snapshot}"
 
 
 def value_label(frame, reduction: str, value) -> str:
@@ -376,7 +376,7 @@ def particle_view(state, which: str, *, frame=None, snapshot: int | None = None,
     grid = grid_size(box, particles, chosen[0], chosen[1], equal)
     from .render import axis_label
     snap = state.served.snapshot(i)
-    title = view_title(which, state.run, state.species, snapshot_label_of(snap, i))
+    title = view_title(which, state.species, snapshot_label_of(snap, i))
     return ParticleView(which, xcol, ycol, chosen[0], chosen[1], opening, reduction, value, slab,
                         state.cmap, state.scaling, grid, equal, title, axis_label(frame, xcol),
                         axis_label(frame, ycol), value_label(frame, reduction, value),

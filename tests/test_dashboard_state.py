@@ -209,7 +209,7 @@ def test_sessions_share_one_copy_and_one_result(runs):
 
 def test_snapshot_label_names_step_and_time(runs):
     served = runs["beams"]
-    assert served.describe(2) == "#2  ·  step 20  ·  t = 0.2"
+    assert served.describe(2) == "#2 · step 20 · t = 0.2"
     # the same words title the views on the screen and in the export
     s = ViewState(runs)
     assert served.describe(2) in view_policy.particle_view(s, "space", snapshot=2).title

@@ -22,11 +22,12 @@ import pandas as pd
 
 from ..core.errors import InputError, OptionError
 from .options import RUN_OPTIONS, context_from_options
+from .view_policy import DEFAULT_CMAP, DEFAULT_SCALING
 
 __all__ = ["open_run", "AuditedRun", "CheckOutcome"]
 
 #: ``view(which)``: the whole dashboard, one particle view, or one side panel
-VIEWS = ("dashboard", "space", "phase", "blocks", "moves", "totals", "histogram")
+VIEWS = ("dashboard", "space", "phase", "blocks", "migration", "drift", "histogram")
 
 
 def open_run(path, **options) -> "AuditedRun":
@@ -114,8 +115,8 @@ class AuditedRun:
     @property
     def name(self) -> str:
         """The run's name (its folder's name)."""
-        from .export import _run_name
-        return _run_name(self.ctx)
+        from .view_policy import run_name
+        return run_name(self.ctx)
 
     @property
     def species(self) -> list[str]:
@@ -285,7 +286,7 @@ class AuditedRun:
         """The dashboard, or one of its views, as a Panel object for a notebook.
 
         ``which`` is ``dashboard``, ``space``, ``phase`` or a side panel
-        (``blocks``, ``moves``, ``totals``, ``histogram``). ``state`` sets the
+        (``blocks``, ``migration``, ``drift``, ``histogram``; the tabs' names). ``state`` sets the
         view as a shared link does, by the state's names or the link's keys:
         ``snapshot=3`` (or ``snap=3``), ``species="all"``, ``space_x="x"``,
         ``phase_y="ux"``, ``scaling="log"``, ``cmap="viridis"``,
@@ -295,6 +296,8 @@ class AuditedRun:
         import panel as pn
         from .dashboard import Dashboard, VIEW_STYLE
         from .state import SIDE_PANELS, URL_KEYS, ServedRuns, ViewState
+        from .view_policy import PANEL_ALIASES
+        which = PANEL_ALIASES.get(which, which)
         if which not in VIEWS:
             raise OptionError(f"view() takes one of {', '.join(VIEWS)}, got '{which}'")
         _load_notebook_extension()
@@ -330,8 +333,8 @@ class AuditedRun:
             view = dash.space_view if which == "space" else dash.phase_view
             return pn.Column(pn.panel(view), dash._status[which], styles=VIEW_STYLE)
         panel = {"blocks": dash.side.blocks_panel,
-                 "moves": lambda: pn.Column(pn.panel(dash.side.moves_panel), dash.side._moves),
-                 "totals": lambda: pn.Column(pn.panel(dash.side.totals_panel), dash.side._totals),
+                 "migration": lambda: pn.Column(pn.panel(dash.side.moves_panel), dash.side._moves),
+                 "drift": lambda: pn.Column(pn.panel(dash.side.totals_panel), dash.side._totals),
                  "histogram": dash.side.histogram_panel}[which]
         return pn.Column(pn.panel(panel) if which in ("blocks", "histogram") else panel(),
                          sizing_mode="stretch_width")
@@ -341,7 +344,8 @@ def _export_args(out_dir, options: dict):
     """The export's options as the namespace its parser would make (same defaults, same checks)."""
     from types import SimpleNamespace
     defaults = dict(snapshots="first,last", rtol=None, width=900, height=700, dpi=100,
-                    cmap="viridis", scale="eq_hist", space=None, phase=None, range=[], quiet=True)
+                    cmap=DEFAULT_CMAP, scale=DEFAULT_SCALING, space=None, phase=None, range=[], quiet=True,
+                    view=None)
     unknown = [k for k in options if k not in defaults]
     if unknown:
         raise OptionError(f"no export option called {', '.join(repr(k) for k in unknown)}; "

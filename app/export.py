@@ -527,7 +527,8 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                 continue
             title = f"{name} · block to block · snapshot {a} → {b}"
             add_figure(FigureRecord("transfer", heat_path, title, b, "all",
-                                    "matched particles that changed block (staying ones left out)"),
+                                    f"migrated particles ({policy.MIGRATED_MEANS}), block to "
+                                    "block; the ones that stayed are left out"),
                        F.transfer_heatmap(table, title, cmap=opts.cmap))
             bar.step(f"transfer {a}-{b}")
             title = f"{name} · displacement · snapshot {a} → {b}"

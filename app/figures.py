@@ -280,7 +280,7 @@ def transfer_heatmap(migration_df: pd.DataFrame, title: str = "", *, cmap=DEFAUL
         m = np.where(acc > 0, acc, np.nan)
     fd = hv.Dimension("from_block", label="from block")
     td = hv.Dimension("to_block", label="to block")
-    cd = hv.Dimension("count", label="particles moved")
+    cd = hv.Dimension("count", label="particles migrated" if not include_stay else "particles")
     contiguous = n > 0 and np.array_equal(ids, np.arange(ids[0], ids[0] + n))
     if contiguous:
         lo, hi = ids[0] - 0.5, ids[-1] + 0.5
@@ -300,7 +300,7 @@ def transfer_heatmap(migration_df: pd.DataFrame, title: str = "", *, cmap=DEFAUL
     if clim[1] <= clim[0]:
         clim = (clim[0], clim[0] * 10 if logz else clim[0] + 1)
     moved = int(np.nansum(m)) if finite.size else 0
-    label = f"{_short(moved)} moved" if not include_stay else f"{_short(moved)} particles"
+    label = f"{_short(moved)} migrated" if not include_stay else f"{_short(moved)} particles"
     full_title = f"{title}  ({label})" if title else label
     return _style(img, common={"cmap": cmap, "colorbar": True, "logz": logz, "clim": clim,
                                "title": full_title},
@@ -332,7 +332,7 @@ def displacement_histogram(displacements_cells, steps=None, title: str = "", *, 
                   bokeh={"line_width": 2.5, "line_dash": "dashed"},
                   mpl={"linewidth": 2.5, "linestyle": "--"})
     what = "one cell per step" if steps else "one cell"
-    label = f"{_short(over)} of {_short(d.size)} beyond {what}"
+    label = f"{_short(over)} of {_short(d.size)} over {what}"
     full_title = f"{title}  ({label})" if title else label
     ymax = max(float(counts.max()) if counts.size else 1.0, 1.0)
     return _style(hist * line, common={"title": full_title, "ylim": (0.5, ymax * 2.0),

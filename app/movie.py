@@ -1,8 +1,9 @@
 """``swarmaudit movie RUN --view space|phase --out FILE``: a run's evolution as one movie file.
 
-A frame is the export's figure of that snapshot: the same aggregation
-(``render.aggregate_points`` through ``export.density_view``), the same axis
-ranges, grid, colour map, labels and title, drawn by ``png.render_figure``.
+A frame is the export's figure of that snapshot: the view policy's view
+(``view_policy.make_view``: axis ranges, grid, colour map, labels and title,
+as the export and the dashboard decide them), aggregated and drawn by
+``png.render_figure``.
 Two things differ from a set of exported PNGs, on purpose:
 
 - every snapshot is aggregated first, and one colour scale is made from all
@@ -92,7 +93,7 @@ class MovieFrames:
     """
 
     def __init__(self, ctx, which: str, positions: list[int], opts, species: str | None = None):
-        from .export import _is_position, _run_name, default_phase, default_space
+        from . import view_policy as policy
         if which not in ("space", "phase"):
             raise OptionError(f"--view takes space or phase, got '{which}'")
         self.ctx, self.which, self.opts = ctx, which, opts
@@ -119,12 +120,13 @@ class MovieFrames:
             raise InputError(ctx.run.source, f"has no particles of {self.label} in the snapshots asked for")
         first = self.frames[0]
         pair = opts.space if which == "space" else opts.phase
-        pair = pair or (default_space(first) if which == "space" else default_phase(first))
+        lacking = policy.has_view(first, which)
+        if pair is None and lacking is None:
+            space, phase = policy.default_axes(first, first.columns)
+            pair = space if which == "space" else phase
         if pair is None:
-            what = ("two position axes" if which == "space"
-                    else "a position and a momentum (or velocity) column")
             raise InputError(first.source or ctx.run.source,
-                             f"species {self.label} has no {which} view: it has no {what}",
+                             f"species {self.label} has no {which} view: it has no {lacking}",
                              f"columns are: {', '.join(first.columns)}; name them with --{which} A,B")
         for c in pair:
             if c not in first:
@@ -132,8 +134,9 @@ class MovieFrames:
                                  f"species '{self.label}' has no column '{c}' (asked for --{which})",
                                  f"columns are: {', '.join(first.columns)}")
         self.xcol, self.ycol = pair
-        self.equal = all(_is_position(f, self.xcol) and _is_position(f, self.ycol) for f in self.frames)
-        self.run_name = _run_name(ctx)
+        self.equal = policy.equal_aspect(self.frames, self.xcol, self.ycol)
+        self.run_name = policy.run_name(ctx)
+        self.view = None                # the policy's view, made once the frames' ranges are known
         self.aggregates: list = []
         self.norm = None
         self.scale = (0.0, 1.0)
@@ -149,16 +152,17 @@ class MovieFrames:
         return concat_frames(parts, species=self.label, source=snap.path)
 
     def title(self, k: int) -> str:
-        from .export import _when
+        from . import view_policy as policy
         i = self.positions[k]
-        return f"{self.run_name} · {self.label} · {_when(self.ctx.run[i], i)}"
+        return policy.view_title(self.which, self.label,
+                                 policy.snapshot_label_of(self.ctx.run[i], i))
 
     # one pass over the run -------------------------------------------------------------------
     def aggregate(self, bar=None) -> None:
         """Bin every frame on the shared ranges and grid, then make the one colour scale."""
         from ..core.frame import transient_columns
         from . import render
-        from .export import density_view, view_grid, view_ranges
+        from . import view_policy as policy
         cols = (self.xcol, self.ycol)
         layout = self.ctx.layout(self.positions[0])
         # each frame's data range is cached on it, so the union below reads nothing again
@@ -167,16 +171,19 @@ class MovieFrames:
                 for c in cols:
                     if c in f and f.length:
                         render.data_range(f, c)
-        self.ranges = view_ranges(self.ctx, self.frames, cols, layout, self.opts.ranges)
-        self.grid = view_grid(self.opts, self.ranges[self.xcol], self.ranges[self.ycol], self.equal,
-                              max(f.length for f in self.frames))
+        ranges = self.opts.ranges
+        self.view = policy.make_view(self.which, self.frames[0], self.xcol, self.ycol,
+                                     frames=self.frames, layout=layout,
+                                     x_range=ranges.get(self.xcol), y_range=ranges.get(self.ycol),
+                                     cmap=self.opts.cmap, scaling=self.opts.scale,
+                                     box=policy.figure_box(self.opts.width, self.opts.height))
+        self.ranges = {self.xcol: self.view.x_range, self.ycol: self.view.y_range}
+        self.grid = self.view.grid
+        self.notes.extend(n for n in self.view.notes if n not in self.notes)
         self.aggregates = []
         for k, f in enumerate(self.frames):
             with transient_columns([f]):
-                agg, _ = density_view(f, self.xcol, self.ycol, grid=self.grid,
-                                      x_range=self.ranges[self.xcol], y_range=self.ranges[self.ycol],
-                                      cmap=self.opts.cmap, scaling=self.opts.scale, title="",
-                                      equal=self.equal)
+                agg = self.view.aggregate(f)
             self.aggregates.append(agg)
             if bar is not None:
                 bar.step(f"binned snapshot {self.positions[k]}")
@@ -184,12 +191,12 @@ class MovieFrames:
 
     def image(self, k: int):
         """The holoviews element of frame ``k``: the export's density image of that snapshot."""
+        from dataclasses import replace
         from . import render
         f, agg = self.frames[k], self.aggregates[k]
-        img = render.density_image(agg, cmap=self.opts.cmap, scaling=self.opts.scale,
-                                   title=self.title(k), xlabel=render.axis_label(f, self.xcol),
-                                   ylabel=render.axis_label(f, self.ycol))
-        return img.opts(aspect="equal" if self.equal else "auto", backend="matplotlib")
+        view = replace(self.view, title=self.title(k), xlabel=render.axis_label(f, self.xcol),
+                       ylabel=render.axis_label(f, self.ycol))
+        return view.image(agg)
 
     def _figure(self, k: int):
         from .png import render_figure

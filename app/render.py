@@ -22,7 +22,6 @@ import holoviews as hv
 from ..engine import dask_backend
 from ..diagnostics._colstats import finite_stats
 from ..core.errors import OptionError
-from .view_policy import DEFAULT_CMAP
 
 REDUCTIONS = ("count", "sum", "mean")
 SCALINGS = ("linear", "log", "eq_hist")
@@ -230,7 +229,7 @@ def histogram_counts(agg: xr.DataArray) -> np.ndarray:
 
 
 # ---------------------------------------------------------------------------
-def density_image(agg: xr.DataArray, *, cmap=DEFAULT_CMAP, scaling: str = "eq_hist", title: str = "",
+def density_image(agg: xr.DataArray, *, cmap: str, scaling: str = "eq_hist", title: str = "",
                   xlabel: str = "", ylabel: str = "", clabel: str = "", width: int | None = None,
                   height: int | None = None):
     """A holoviews Image of an aggregate, with a colour bar, for bokeh and matplotlib alike.

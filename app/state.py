@@ -572,7 +572,8 @@ class ViewState(param.Parameterized):
         for k, v in query.items():
             if k not in inverse:
                 refused.append(k)
-                self._note_refused(k, None, "this link key is unknown")
+                if not any("key this page does not know" in n for n in self.link_notes):
+                    self.link_notes.append("A link key this page does not know was left out.")
             elif isinstance(v, str) and len(v) > MAX_QUERY_VALUE:
                 refused.append(k)
                 self._note_refused(k, None, f"the value is longer than {MAX_QUERY_VALUE} characters")
@@ -615,10 +616,9 @@ class ViewState(param.Parameterized):
         return range_problem(value, opening_range([frame], col, layout))
 
     def _note_refused(self, key: str, value, why: str) -> None:
-        shown = "" if value is None else repr(value if not isinstance(value, str) else value[:40])
-        shown = shown if len(shown) <= 44 else shown[:40] + "…"
-        self.link_notes.append(f"The link's '{key}'{(' ' + shown) if shown else ''} was left out "
-                               f"({why}); the view shows its default there.")
+        # the value itself is never shown back: a page must not echo what a link carries
+        self.link_notes.append(f"The link's '{key}' value was left out ({why}); the view shows "
+                               f"its default there.")
 
 
 def link_query(search: str) -> dict[str, str]:
@@ -637,6 +637,8 @@ def link_query(search: str) -> dict[str, str]:
 
 def _reason(exc: Exception) -> str:
     text = str(exc).split(", got ")[0]
+    if text.startswith("not a choice") or "does not accept" in text:
+        return "not one of the choices this server offers"
     return text.split(": ", 1)[1] if text.startswith(tuple(URL_KEYS)) and ": " in text else text
 
 

@@ -338,27 +338,12 @@ def particle_view(state, which: str, *, frame=None, snapshot: int | None = None,
     i = state.snapshot if snapshot is None else int(snapshot)
     if frame is None:
         frame = state.frame(i)
-    frames = list(frames) if frames else [frame]
     xcol, ycol = state_axes(state, which)
     try:
         layout = state.served.layout(i)
     except Exception:          # a layout that cannot be made: ranges from the data
         layout = None
-    opening = (opening_range(frames, xcol, layout), opening_range(frames, ycol, layout))
-    notes = []
     sx, sy = state_ranges(state, which)
-    wanted = (x_range if x_range is not None else sx, y_range if y_range is not None else sy)
-    chosen = []
-    for axis, want, open_ in zip((xcol, ycol), wanted, opening):
-        if want is None:
-            chosen.append(open_)
-            continue
-        problem = range_problem(want, open_)
-        if problem:
-            notes.append(f"range of {axis} left at the data's: {problem}")
-            chosen.append(open_)
-        else:
-            chosen.append(tuple(float(v) for v in want))
     slab = None
     slab_range = state.slab_range if slab_range is None else slab_range
     if state.slab_axis and slab_range:
@@ -371,13 +356,38 @@ def particle_view(state, which: str, *, frame=None, snapshot: int | None = None,
             reduction = "count"    # no weight column: every weight is 1
     else:
         reduction, value = "mean", state.color_column
+    title = view_title(which, state.species, snapshot_label_of(state.served.snapshot(i), i))
+    return make_view(which, frame, xcol, ycol, frames=frames, layout=layout,
+                     x_range=x_range if x_range is not None else sx,
+                     y_range=y_range if y_range is not None else sy,
+                     reduction=reduction, value=value, slab=slab, cmap=state.cmap,
+                     scaling=state.scaling, box=box, title=title)
+
+
+def make_view(which: str, frame, xcol: str, ycol: str, *, frames=None, layout=None, x_range=None,
+              y_range=None, reduction="count", value=None, slab=None, cmap=DEFAULT_CMAP,
+              scaling=DEFAULT_SCALING, box=SCREEN_BOX, title="") -> ParticleView:
+    """The policy's view of columns ``xcol``, ``ycol`` of ``frame`` (``particle_view`` without a state).
+
+    For a drawing command that has no dashboard state (the movie): opening
+    ranges shared over ``frames``, the grid for ``box`` pixels, labels from
+    the columns' units; a wanted range that cannot be drawn around this data
+    is replaced by the opening range, with a note.
+    """
+    frames = list(frames) if frames else [frame]
+    opening = (opening_range(frames, xcol, layout), opening_range(frames, ycol, layout))
+    notes = []
+    chosen = []
+    for axis, want, open_ in zip((xcol, ycol), (x_range, y_range), opening):
+        problem = range_problem(want, open_) if want is not None else None
+        if problem:
+            notes.append(f"range of {axis} left at the data's: {problem}")
+        chosen.append(open_ if want is None or problem else tuple(float(v) for v in want))
     equal = equal_aspect(frames, xcol, ycol)
     particles = max(f.length for f in frames)
     grid = grid_size(box, particles, chosen[0], chosen[1], equal)
     from .render import axis_label
-    snap = state.served.snapshot(i)
-    title = view_title(which, state.species, snapshot_label_of(snap, i))
     return ParticleView(which, xcol, ycol, chosen[0], chosen[1], opening, reduction, value, slab,
-                        state.cmap, state.scaling, grid, equal, title, axis_label(frame, xcol),
+                        cmap, scaling, grid, equal, title, axis_label(frame, xcol),
                         axis_label(frame, ycol), value_label(frame, reduction, value),
                         tuple(notes))

@@ -167,7 +167,8 @@ def test_view_takes_the_link_state_names(sample):
     pn = need("panel")
     v = run.view("space", snapshot=1, scaling="log", cmap="viridis")
     assert isinstance(v, pn.viewable.Viewable)
-    assert isinstance(run.view("totals", rtol=1e-2), pn.viewable.Viewable)
+    assert isinstance(run.view("drift", rtol=1e-2), pn.viewable.Viewable)
+    assert isinstance(run.view("totals", rtol=1e-2), pn.viewable.Viewable)   # the old tab name
     with pytest.raises(sa.OptionError, match="scaling='bogus' is not one of"):
         run.view("space", scale="bogus")
     with pytest.raises(sa.OptionError, match="no state called 'zoom'"):

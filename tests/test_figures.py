@@ -140,7 +140,7 @@ def test_transfer_heatmap_equals_crosstab_of_the_moves():
             assert (np.isnan(got) and ref[i, j] == 0) or got == ref[i, j]
     model, fig = _both(obj)
     assert len(fig.axes) == 2
-    assert f"{int(ref.sum())} moved" in _bokeh_title(model)
+    assert f"{int(ref.sum())} migrated" in _bokeh_title(model)
 
 
 def test_transfer_heatmap_with_sparse_block_ids_falls_back_to_categories():
@@ -162,7 +162,7 @@ def test_displacement_histogram_counts_and_the_one_cell_per_step_line():
     assert _elements(obj, hv.VLine)[0].data == 3.0
     _, fig = _both(obj)
     beyond = int(np.count_nonzero(d > 3.0))
-    assert any(f"{beyond} of 5000 beyond one cell per step" in t for t in _mpl_texts(fig))
+    assert any(f"{beyond} of 5000 over one cell per step" in t for t in _mpl_texts(fig))
 
 
 def _drift_table():

@@ -115,7 +115,7 @@ def test_bad_options():
     with pytest.raises(OptionError):
         render.aggregate_points(f, "x", "y", reduction="sum")
     with pytest.raises(OptionError):
-        render.density_image(render.aggregate_points(f, "x", "y"), scaling="cube")
+        render.density_image(render.aggregate_points(f, "x", "y"), cmap="viridis", scaling="cube")
 
 
 def test_single_value_column_still_bins():
@@ -129,7 +129,7 @@ def test_density_image_labels_and_backends():
     import holoviews as hv
     f, _ = make_frame()
     agg = render.aggregate_points(f, "x", "vx", width=40, height=30)
-    img = render.density_image(agg, title="phase", scaling="log")
+    img = render.density_image(agg, cmap="viridis", title="phase", scaling="log")
     assert img.kdims[0].label == "x [m]" and img.kdims[1].label == "vx [m/s]"
     assert hv.renderer("bokeh").get_plot(img).state is not None
     fig = hv.renderer("matplotlib").get_plot(img)

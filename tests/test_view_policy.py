@@ -115,6 +115,7 @@ def test_an_edited_link_value_is_dropped_with_a_note_and_the_views_draw(runs, ke
     assert s.space_xr is None and s.space_yr is None and s.phase_xr is None and s.phase_yr is None
     assert s.select_box is None and s.slab_range is None
     assert any(f"'{key}'" in n and why in n for n in s.link_notes), s.link_notes
+    assert all(value[:12] not in n for n in s.link_notes)          # never echoed back
     assert dash.link_note.visible and why in dash.link_note.object
     for which in ("space", "phase"):
         dash.render_view(which)

@@ -122,7 +122,7 @@ def write_comparison(folder: str, comp, result, ref, cand, args) -> list[str]:
     os.makedirs(figdir, exist_ok=True)
     figures = comparison_figures(comp, ref, cand, figdir, width=args.width, height=args.height, dpi=args.dpi)
     written.extend(f.path for f in figures)
-    from .export import _run_name
+    from .view_policy import run_name as _run_name
     facts = [("reference", str(ref.run.source)), ("candidate", str(cand.run.source)),
              ("paired snapshots", f"{len(comp.pairing.pairs)} by {comp.pairing.by}"),
              ("mode", comp.mode)]

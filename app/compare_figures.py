@@ -43,7 +43,8 @@ def difference_limits(diff: np.ndarray) -> tuple[float, float]:
 
 
 def _range_union(frames, cols):
-    from .render import DATA_MARGIN, data_range, padded_range
+    from .render import data_range, padded_range
+    from .view_policy import DATA_MARGIN
     lo, hi = math.inf, -math.inf
     for f, c in zip(frames, cols):
         if f.length:
@@ -84,10 +85,16 @@ def _density_figure(path, ref_counts, cand_counts, agg, x_range, y_range, title,
 
 def _views(fa, fb, layout):
     """(kind, ref x, ref y, cand x, cand y, x range, y range) of the space and phase views."""
-    from .export import default_phase, default_space
+    from . import view_policy as policy
+
+    def pick(frame, kind):
+        if policy.has_view(frame, kind) is not None:
+            return None
+        space, phase = policy.default_axes(frame, frame.columns)
+        return space if kind == "space" else phase
     out = []
-    for kind, pick in (("space", default_space), ("phase", default_phase)):
-        pa, pb = pick(fa), pick(fb)
+    for kind in ("space", "phase"):
+        pa, pb = pick(fa, kind), pick(fb, kind)
         if pa is None or pb is None:
             continue
         ranges = []

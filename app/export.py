@@ -397,7 +397,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     try:
         _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
                        migration_figs, drift_fig, deposit_figs, table_paths, report_path,
-                       keep_aggregates, stream)
+                       keep_aggregates, stream, link_figs)
     except BaseException:
         plan.abort()
         raise
@@ -412,7 +412,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
 
 def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
                    migration_figs, drift_fig, deposit_figs, table_paths, report_path,
-                   keep_aggregates, stream) -> None:
+                   keep_aggregates, stream, link_figs=()) -> None:
     """Draw and write everything into the plan's staging folder."""
     from . import figures as F
     from .png import save_png

@@ -63,7 +63,11 @@ def open_run(path, **options) -> "AuditedRun":
         one sentence (what the command line prints before exiting with 2).
     """
     ctx = context_from_options(None, run=path, **options)
-    return AuditedRun(ctx)
+    # files named by options are inputs too: the export must never write over them
+    files = {"layout": options.get("layout"),
+             "roles_file": options.get("roles_file") or options.get("map") or
+             (options.get("roles") if isinstance(options.get("roles"), (str, os.PathLike)) else None)}
+    return AuditedRun(ctx, {k: os.fspath(v) for k, v in files.items() if v is not None})
 
 
 @dataclass
@@ -106,8 +110,9 @@ class AuditedRun:
     and kept (and in the on-disk cache unless ``no_cache=True``).
     """
 
-    def __init__(self, ctx):
+    def __init__(self, ctx, input_options: dict | None = None):
         self.ctx = ctx
+        self._inputs = dict(input_options or {})
         self._migration = None
         self._served = None
 
@@ -261,7 +266,7 @@ class AuditedRun:
         args = _export_args(out_dir, options)
         args.movie = movie
         opts = ExportOptions.from_args(args)
-        return export_run(self.ctx, opts, SimpleNamespace(**vars(args)))
+        return export_run(self.ctx, opts, SimpleNamespace(**vars(args), **self._inputs))
 
     def movie(self, out, view: str = "space", *, species: str | None = None, fps: float = 8,
               snapshots: str = "all", **options):
@@ -274,12 +279,13 @@ class AuditedRun:
         ``space="x,y"``/``phase="x,ux"``, ``range=[...]``, ``quiet``).
         Returns the movie's description (path, frames, scale).
         """
+        from types import SimpleNamespace
         from .export import ExportOptions
         from .movie import write_movie
         args = _export_args(os.path.dirname(os.fspath(out)) or ".", options)
         opts = ExportOptions.from_args(args)
         return write_movie(self.ctx, os.fspath(out), view=view, species=species, fps=fps,
-                           snapshots=snapshots, opts=opts)
+                           snapshots=snapshots, opts=opts, args=SimpleNamespace(**self._inputs))
 
     # views --------------------------------------------------------------------------
     def view(self, which: str = "dashboard", **state):

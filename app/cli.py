@@ -86,6 +86,9 @@ def build_parser() -> argparse.ArgumentParser:
     e.add_argument("--range", action="append", default=[], metavar="COL=LO,HI",
                    help="axis range of a column in the views (repeatable)")
     e.add_argument("--quiet", action="store_true", help="no progress bar")
+    e.add_argument("--movie", nargs="?", const="mp4", choices=("mp4", "gif", "webp"), metavar="FORMAT",
+                   help="also a movie of each view over every snapshot (mp4 unless gif or webp is "
+                        "named), embedded in report.html")
 
     c = sub.add_parser("check", help="gate: exit 1 when a conserved total drifts past --rtol")
     add_run_options(c)

@@ -28,6 +28,7 @@ from ..core.outputs import FIGURE_DIR, REPORT_NAME, TABLE_NAMES
 from . import view_policy as policy
 from .png import use_headless_matplotlib
 
+MOVIE_DIR = "movies"
 
 
 
@@ -48,6 +49,7 @@ class ExportOptions:
     quiet: bool = False
     fontscale: float = 1.15
     view: str | None = None         # a dashboard link (or its query): draw that state too
+    movie: str | None = None        # mp4 | gif | webp: a movie of each view over every snapshot
 
     @classmethod
     def from_args(cls, args) -> "ExportOptions":
@@ -65,7 +67,18 @@ class ExportOptions:
                    width=width, height=height, dpi=dpi, cmap=cmap, scale=scale,
                    space=parse_pair(args.space, "--space"), phase=parse_pair(args.phase, "--phase"),
                    ranges=parse_ranges(getattr(args, "range", None) or []),
-                   quiet=bool(getattr(args, "quiet", False)), view=getattr(args, "view", None))
+                   quiet=bool(getattr(args, "quiet", False)), view=getattr(args, "view", None),
+                   movie=_movie_format(args))
+
+
+def _movie_format(args):
+    fmt = getattr(args, "movie", None)
+    if fmt is None:
+        return None
+    fmt = str(fmt).lower().lstrip(".")
+    if fmt not in ("mp4", "gif", "webp"):
+        raise OptionError(f"--movie takes mp4, gif or webp, got '{getattr(args, 'movie')}'")
+    return fmt
 
 
 def check_cmap(name: str) -> None:
@@ -156,6 +169,7 @@ class FigureRecord:
 class ExportResult:
     out: str
     figures: list[FigureRecord] = field(default_factory=list)
+    movies: list = field(default_factory=list)          # movie.MovieResult, with --movie
     tables: dict[str, str] = field(default_factory=dict)
     report: str | None = None
     notes: list[str] = field(default_factory=list)
@@ -323,6 +337,7 @@ class _Plan:
         os.makedirs(os.path.join(self.out, FIGURE_DIR), exist_ok=True)
         for staged, final in self._final.items():
             if os.path.exists(staged):
+                os.makedirs(os.path.dirname(final), exist_ok=True)
                 os.replace(staged, final)
         shutil.rmtree(self.stage, ignore_errors=True)
 
@@ -389,6 +404,12 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     drift_fig = plan.fig("drift.png") if n > 1 else None
     deposit_figs = [(i, plan.fig(f"deposit_{i:04d}.png")) for i in chosen]
     table_paths = {t: plan.file(t) for t in TABLE_NAMES}
+    movies = []         # (kind, species, path): each view of each species over every snapshot
+    if opts.movie:
+        for kind, _, sp, *_ in views:
+            if (kind, sp) not in [(k, m) for k, m, _ in movies]:
+                movies.append((kind, sp, plan.file(os.path.join(MOVIE_DIR,
+                                                                f"{kind}_{_safe(sp)}.{opts.movie}"))))
     report_path = plan.file(REPORT_NAME)
     ctx.layout(chosen[0])   # finds a layout file beside the run, which is an input too
     guard_outputs(plan.paths, input_files(ctx, args))
@@ -397,11 +418,13 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     try:
         _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
                        migration_figs, drift_fig, deposit_figs, table_paths, report_path,
-                       keep_aggregates, stream, link_figs)
+                       keep_aggregates, stream, link_figs, movies, args)
     except BaseException:
         plan.abort()
         raise
     plan.commit()
+    for mv in res.movies:
+        mv.path = plan.final(mv.path)
     for rec in res.figures:
         rec.path = plan.final(rec.path)
     res.tables = {k: plan.final(v) for k, v in res.tables.items()}
@@ -412,7 +435,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
 
 def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
                    migration_figs, drift_fig, deposit_figs, table_paths, report_path,
-                   keep_aggregates, stream, link_figs=()) -> None:
+                   keep_aggregates, stream, link_figs=(), movies=(), args=None) -> None:
     """Draw and write everything into the plan's staging folder."""
     from . import figures as F
     from .png import save_png
@@ -497,6 +520,14 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                                         state.species, keep_aggregates, prefix="the link's "),
                            view.image(agg))
                 bar.step(f"link {kind} view")
+
+        # movies: every snapshot, one colour scale each ----------------------------------------------
+        if movies:
+            from .movie import write_movie
+        for kind, sp, path in movies:
+            mv = write_movie(ctx, path, view=kind, species=sp, opts=opts, args=args, bar=bar)
+            res.movies.append(mv)
+            notes.extend(m for m in mv.notes if m not in notes)
 
         # census ----------------------------------------------------------------------------------
         for i, map_path, bar_path in census_figs:
@@ -739,6 +770,16 @@ def _sections(res, census_df, migration_df, summary_df, drift_df, FigureItem, Se
                                    caption="largest drift judged against the scale of each total, "
                                            "in per cent of it"))
     secs.append(Section("Drift", items("drift"), tables, anchor="drift"))
+    if res.movies:
+        from .report import MovieItem
+        secs.insert(1 if v else 0, Section(
+            "Movies", anchor="movies",
+            movies=[MovieItem(m.path, f"{m.view} view · {m.species}",
+                              f"{m.frames} snapshots, {m.fps:g} frames a second; one {m.scaling} "
+                              f"colour scale over every frame ({m.scale[0]:g} … {m.scale[1]:g} "
+                              "particles per bin), so a colour means the same count throughout")
+                    for m in res.movies],
+            text=["Each view over every snapshot of the run, drawn like the figures above."]))
     d = items("deposit")
     if d:
         secs.append(Section("Deposition", d, anchor="deposition"))

@@ -329,8 +329,11 @@ def encode(frames, path: str, fmt: str, fps: float) -> None:
 # the command ---------------------------------------------------------------------------------
 def write_movie(ctx, out: str, *, view: str = "space", species: str | None = None,
                 fps: float = DEFAULT_FPS, snapshots: str = "all", opts=None, stream=None,
-                keep: bool = False, args=None):
-    """Render and write one movie; returns a MovieResult (``keep``: with the MovieFrames as ``.frames_of``)."""
+                keep: bool = False, args=None, bar=None):
+    """Render and write one movie; returns a MovieResult (``keep``: with the MovieFrames as ``.frames_of``).
+
+    ``bar`` is a progress bar to step (the export's); without one the movie draws its own.
+    """
     from .export import ExportOptions, guard_outputs, input_files, select_snapshots
     from .png import use_headless_matplotlib
     from .progress import Progress
@@ -348,12 +351,16 @@ def write_movie(ctx, out: str, *, view: str = "space", species: str | None = Non
     movie = MovieFrames(ctx, view, positions, opts, species)
     n = len(movie.frames)
     quiet = bool(getattr(opts, "quiet", False))
-    bar = Progress(2 * n + 1, "movie", stream=stream, enabled=False if quiet else None)
-    with bar:
+    own = bar is None
+    if own:
+        bar = Progress(2 * n + 1, "movie", stream=stream, enabled=False if quiet else None)
+    else:
+        bar.add(2 * n + 1)
+    with (bar if own else _nothing()):
         movie.aggregate(bar)
         os.makedirs(os.path.dirname(out) or ".", exist_ok=True)
         encode(movie.pixels(bar), out, fmt, fps)
-        bar.step("written")
+        bar.step(f"movie {os.path.basename(out)}")
     w, h = opts.width, opts.height
     if fmt == "mp4":
         w, h = w + w % 2, h + h % 2
@@ -363,6 +370,11 @@ def write_movie(ctx, out: str, *, view: str = "space", species: str | None = Non
     if keep:
         res.frames_of = movie
     return res
+
+
+def _nothing():
+    from contextlib import nullcontext
+    return nullcontext()
 
 
 def add_movie_options(p) -> None:

@@ -50,12 +50,22 @@ class TableItem:
 
 
 @dataclass
+class MovieItem:
+    """One movie file to embed (MP4 as a video, GIF/WebP as an image), with the words under it."""
+
+    path: str
+    title: str
+    caption: str = ""
+
+
+@dataclass
 class Section:
     title: str
     figures: list[FigureItem] = field(default_factory=list)
     tables: list[TableItem] = field(default_factory=list)
     text: list[str] = field(default_factory=list)      # plain sentences (escaped)
     anchor: str = ""
+    movies: list[MovieItem] = field(default_factory=list)
 
 
 @dataclass
@@ -94,7 +104,7 @@ h3 { font-size:15px; margin:18px 0 6px; color:var(--muted); font-weight:600; }
 .grid { display:grid; grid-template-columns: repeat(auto-fill, minmax(520px, 1fr)); gap:16px; }
 figure { margin:0; background:var(--card); border:1px solid var(--line); border-radius:6px;
          padding:8px; }
-figure img { width:100%; height:auto; display:block; }
+figure img, figure video { width:100%; height:auto; display:block; }
 figure.wide { grid-column: 1 / -1; max-width: 1000px; justify-self: center; width: 100%; }
 figcaption { font-size:13px; color:var(--muted); padding:6px 4px 2px; }
 figcaption b { color:var(--ink); font-weight:600; }
@@ -121,9 +131,29 @@ def _e(text) -> str:
 
 
 def png_data_uri(path: str) -> str:
+    return data_uri(path, "image/png")
+
+
+def data_uri(path: str, mime: str) -> str:
+    """The file as a ``data:`` address, so the page carries it inside."""
     with open(path, "rb") as fh:
         data = fh.read()
-    return "data:image/png;base64," + base64.b64encode(data).decode("ascii")
+    return f"data:{mime};base64," + base64.b64encode(data).decode("ascii")
+
+
+_MOVIE_MIME = {".mp4": "video/mp4", ".gif": "image/gif", ".webp": "image/webp"}
+
+
+def _movie_html(m: MovieItem) -> str:
+    name = os.path.basename(m.path)
+    mime = _MOVIE_MIME.get(os.path.splitext(name)[1].lower(), "application/octet-stream")
+    cap = f"<b>{_e(m.title)}</b>" + (f" — {_e(m.caption)}" if m.caption else "")
+    if mime.startswith("video/"):
+        body = (f"<video controls loop muted playsinline preload='metadata' data-file='{_e(name)}' "
+                f"src='{data_uri(m.path, mime)}'></video>")
+    else:
+        body = f"<img src='{data_uri(m.path, mime)}' alt='{_e(m.title)}' data-file='{_e(name)}'>"
+    return f"<figure class='movie'>{body}<figcaption>{cap}</figcaption></figure>"
 
 
 def _format_cell(v) -> str:
@@ -195,6 +225,8 @@ def _section_html(sec: Section) -> str:
             parts.append(f"<figure{cls}><img src='{png_data_uri(f.path)}' alt='{_e(f.title)}' "
                          f"data-file='{_e(name)}'><figcaption>{cap}</figcaption></figure>")
         parts.append("</div>")
+    if sec.movies:
+        parts.append("<div class='grid'>" + "".join(_movie_html(m) for m in sec.movies) + "</div>")
     for t in sec.tables:
         parts.append(f"<h3>{_e(t.title)}</h3>")
         if t.caption:

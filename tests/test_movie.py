@@ -183,3 +183,27 @@ def test_shared_norm_ends_and_empty_frames():
     assert scale == (1.0, 9.0) and norm(5.0) == pytest.approx(0.5)
     norm, scale = shared_norm([np.zeros((2, 2))], "log")
     assert scale == (0.0, 1.0)
+
+
+def test_export_adds_movies_to_the_report(sample, tmp_path):
+    import re
+    out = tmp_path / "export"
+    code = main(["export", sample["run"], *LAYOUT_ARGS, "--species", "ions", "--out", str(out),
+                 *SIZE, "--quiet", "--movie", "gif"])
+    assert code == 0
+    movies = sorted(os.listdir(out / "movies"))
+    assert movies == ["phase_ions.gif", "space_ions.gif"]
+    for name in movies:
+        assert len(_decode_pillow(str(out / "movies" / name))) == SNAPS
+    page = (out / "report.html").read_text()
+    assert "id='movies'" in page
+    embedded = re.findall(r"<img src='data:image/gif;base64,[A-Za-z0-9+/=]+' alt='[^']*' "
+                          r"data-file='([^']+)'", page)
+    assert sorted(embedded) == movies
+    # still one file: nothing the page loads lives outside it
+    assert not re.search(r"(src|href)=['\"](https?:|//|file:)", page)
+    mp4 = tmp_path / "export_mp4"
+    code = main(["export", sample["run"], *LAYOUT_ARGS, "--species", "ions", "--out", str(mp4),
+                 *SIZE, "--quiet", "--snapshots", "last", "--movie"])
+    assert code == 0 and sorted(os.listdir(mp4 / "movies")) == ["phase_ions.mp4", "space_ions.mp4"]
+    assert (mp4 / "report.html").read_text().count("<video controls") == 2

@@ -24,7 +24,7 @@ from ..core.errors import InputError, OptionError
 from .options import RUN_OPTIONS, context_from_options
 from .view_policy import DEFAULT_CMAP, DEFAULT_SCALING
 
-__all__ = ["open_run", "AuditedRun", "CheckOutcome"]
+__all__ = ["open_run", "AuditedRun", "CheckOutcome", "CompareOutcome"]
 
 #: ``view(which)``: the whole dashboard, one particle view, or one side panel
 VIEWS = ("dashboard", "space", "phase", "blocks", "migration", "drift", "histogram")
@@ -100,6 +100,37 @@ class CheckOutcome:
         return (f"<div style='border-left:6px solid {colour};padding:4px 10px'>"
                 f"<b>check {word}</b> (rtol {self.rtol:g}): {head}</div>"
                 + self.table.to_html(index=False, na_rep="–"))
+
+
+@dataclass
+class CompareOutcome:
+    """What ``compare`` found: ``passed`` (the gate), the ``compare_*`` tables and the summary.
+
+    ``tables`` maps each ``compare_*.csv`` name to its DataFrame (also as
+    ``particles``, ``distributions``, ``census``, ``totals``, ``worst``);
+    ``failures`` lists what left a tolerance; ``lines`` is what
+    ``swarmaudit compare`` prints.
+    """
+
+    passed: bool
+    comparison: object
+    failures: pd.DataFrame
+    lines: list[str] = field(default_factory=list)
+
+    @property
+    def tables(self) -> dict:
+        return self.comparison.tables()
+
+    def __getattr__(self, name):
+        if name in ("particles", "distributions", "census", "totals", "worst", "pairing", "notes"):
+            return getattr(self.comparison, name)
+        raise AttributeError(name)
+
+    def __bool__(self) -> bool:
+        return self.passed
+
+    def __repr__(self) -> str:
+        return "\n".join(self.lines) if self.lines else f"CompareOutcome(passed={self.passed})"
 
 
 class AuditedRun:
@@ -251,6 +282,24 @@ class AuditedRun:
         failures = pd.DataFrame(res.failures)
         table = res.table if res.table is not None else pd.DataFrame()
         return CheckOutcome(bool(res.ok), float(rtol), failures, table, list(res.lines))
+
+    def compare(self, candidate, *, pair: str = "step", time_tol=None, mode: str = "auto",
+                position_cells=None, ks_p=None, rtol=None, **options) -> CompareOutcome:
+        """``swarmaudit compare REF CAND`` with this run as the reference.
+
+        ``candidate`` is another :class:`AuditedRun`, or a path opened with
+        ``options`` (the run options of :func:`open_run`). ``pair`` is
+        ``step`` or ``time``; ``mode`` ``auto``, ``particles``,
+        ``distributions`` or ``both``; ``position_cells``, ``ks_p`` and
+        ``rtol`` are the gate's tolerances, as on the command line.
+        """
+        from ..audit import compare as C
+        other = candidate if isinstance(candidate, AuditedRun) else open_run(candidate, **options)
+        comp = C.compare_runs(self.ctx, other.ctx, pair=pair, time_tol=time_tol, mode=mode)
+        result = C.gate(comp, position_cells, ks_p, rtol)
+        lines = [f"reference: {self.ctx.run.source}", f"candidate: {other.ctx.run.source}",
+                 *C.summary_lines(comp), *result.lines]
+        return CompareOutcome(bool(result.ok), comp, pd.DataFrame(result.failures), lines)
 
     # files --------------------------------------------------------------------------
     def export(self, out_dir, *, movie: str | None = None, **options):

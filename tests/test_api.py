@@ -175,3 +175,22 @@ def test_view_takes_the_link_state_names(sample):
         run.view(zoom=2)
     with pytest.raises(sa.OptionError, match="view\\(\\) takes one of"):
         run.view("sideways")
+
+
+def test_compare_is_the_compare_command(sample, tmp_path, capsys):
+    cand, _ = write_npz_run(str(tmp_path / "cand"), n=N, snapshots=SNAPS, steps_between=STEPS, dt=DT)
+    same = sample["run"].compare(sample["run"])
+    assert same.passed and set(same.particles["identical"]) == {True}
+    # the reference's first species has its charge scaled by 1.02 in the last snapshot
+    differ = sample["run"].compare(cand, rtol=1e-3, **KEYWORDS, no_cache=True)
+    assert not differ.passed
+    assert len(differ.failures) > 0 and "FAIL" in repr(differ)
+    out = tmp_path / "cmp"
+    code = main(["compare", sample["folder"], cand, *LAYOUT_ARGS, "--rtol", "1e-3", "--out", str(out),
+                 "--quiet", "--no-cache"])
+    assert code == 1
+    assert capsys.readouterr().out.strip().splitlines()[-1] in differ.lines
+    for name, df in differ.tables.items():
+        disk = pd.read_csv(out / name)
+        assert list(disk.columns) == list(df.columns), name
+        assert len(disk) == len(df), name

@@ -315,7 +315,9 @@ class AuditedRun:
         args = _export_args(out_dir, options)
         args.movie = movie
         opts = ExportOptions.from_args(args)
-        return export_run(self.ctx, opts, SimpleNamespace(**vars(args), **self._inputs))
+        from .movie import write_movie
+        return export_run(self.ctx, opts, SimpleNamespace(**vars(args), **self._inputs),
+                          movie_writer=write_movie)
 
     def movie(self, out, view: str = "space", *, species: str | None = None, fps: float = 8,
               snapshots: str = "all", **options):

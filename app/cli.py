@@ -192,7 +192,8 @@ def _dispatch(args) -> int:
         return run_inspect(ctx, as_json=args.json, health=args.health)
     if args.command == "export":
         from .export import run_export
-        return run_export(ctx, args)
+        from .movie import write_movie
+        return run_export(ctx, args, movie_writer=write_movie)
     if args.command == "check":
         from .check import run_check
         return run_check(ctx, args)

@@ -351,7 +351,7 @@ class _Plan:
 
 
 def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = False,
-               stream=None) -> ExportResult:
+               stream=None, movie_writer=None) -> ExportResult:
     """Write figures, tables and report.html into ``opts.out``; return what was written."""
     use_headless_matplotlib()
     t0 = time.perf_counter()
@@ -405,6 +405,9 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     deposit_figs = [(i, plan.fig(f"deposit_{i:04d}.png")) for i in chosen]
     table_paths = {t: plan.file(t) for t in TABLE_NAMES}
     movies = []         # (kind, species, path): each view of each species over every snapshot
+    if opts.movie and movie_writer is None:
+        # the movie module draws with this one; it is handed in (movie.write_movie), not imported
+        raise OptionError("--movie: this export was started without a movie writer")
     if opts.movie:
         for kind, _, sp, *_ in views:
             if (kind, sp) not in [(k, m) for k, m, _ in movies]:
@@ -418,7 +421,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
     try:
         _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
                        migration_figs, drift_fig, deposit_figs, table_paths, report_path,
-                       keep_aggregates, stream, link_figs, movies, args)
+                       keep_aggregates, stream, link_figs, movies, args, movie_writer)
     except BaseException:
         plan.abort()
         raise
@@ -435,7 +438,8 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
 
 def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
                    migration_figs, drift_fig, deposit_figs, table_paths, report_path,
-                   keep_aggregates, stream, link_figs=(), movies=(), args=None) -> None:
+                   keep_aggregates, stream, link_figs=(), movies=(), args=None,
+                   movie_writer=None) -> None:
     """Draw and write everything into the plan's staging folder."""
     from . import figures as F
     from .png import save_png
@@ -522,10 +526,8 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                 bar.step(f"link {kind} view")
 
         # movies: every snapshot, one colour scale each ----------------------------------------------
-        if movies:
-            from .movie import write_movie
         for kind, sp, path in movies:
-            mv = write_movie(ctx, path, view=kind, species=sp, opts=opts, args=args, bar=bar)
+            mv = movie_writer(ctx, path, view=kind, species=sp, opts=opts, args=args, bar=bar)
             res.movies.append(mv)
             notes.extend(m for m in mv.notes if m not in notes)
 
@@ -786,10 +788,13 @@ def _sections(res, census_df, migration_df, summary_df, drift_df, FigureItem, Se
     return secs
 
 
-def run_export(ctx, args) -> int:
-    """The CLI entry: export, print what was written, gate like ``check`` when --rtol is given."""
+def run_export(ctx, args, movie_writer=None) -> int:
+    """The CLI entry: export, print what was written, gate like ``check`` when --rtol is given.
+
+    ``movie_writer`` is ``movie.write_movie`` (passed in: the movie module builds on this one).
+    """
     opts = ExportOptions.from_args(args)
-    res = export_run(ctx, opts, args)
+    res = export_run(ctx, opts, args, movie_writer=movie_writer)
     nfig = len(res.figures)
     print(f"swarmaudit export: wrote {nfig} figure{'s' if nfig != 1 else ''}, "
           f"{len(res.tables)} tables and {REPORT_NAME} to {res.out} in {res.seconds:.1f} s")

@@ -33,6 +33,7 @@ from ..core.frame import transient_columns
 from ..core.roles import MOMENTUM_ROLES, POSITION_ROLES, PROPER_VELOCITY_ROLES, VELOCITY_ROLES
 from ..diagnostics import compare as _cmp
 from ..diagnostics.migration import DuplicateKeyError
+from ..engine.reduce import reduce
 from . import tables as _tables
 
 ALL = _tables.ALL
@@ -210,39 +211,43 @@ def _weights(frame):
     return None if np.ndim(w) == 0 else w
 
 
-def _particle_row(ctx_note, fa, fb, layout, where: str):
+def _particle_row(ctx, note, fa, fb, layout, where: str):
     """PairStats of one species, or None with a note when ids cannot pair the particles."""
     ka, kb = fa.key_columns(), fb.key_columns()
     if not ka or not kb:
-        ctx_note(f"{where}: species '{fa.species}' has no id column in "
+        note(f"{where}: species '{fa.species}' has no id column in "
                  f"{'the reference' if not ka else 'the candidate'}; compared as distributions "
                  "(name one with --role id=NAME or --id COLS)")
         return None
     if len(ka) != len(kb):
-        ctx_note(f"{where}: species '{fa.species}' is keyed by {len(ka)} column(s) in the reference and "
+        note(f"{where}: species '{fa.species}' is keyed by {len(ka)} column(s) in the reference and "
                  f"{len(kb)} in the candidate; compared as distributions")
         return None
     pos = _shared_roles(fa, fb, POSITION_ROLES)
     if fa.momentum_kind() != fb.momentum_kind():
-        ctx_note(f"{where}: species '{fa.species}' stores {fa.momentum_kind() or 'no'} momentum columns in "
+        note(f"{where}: species '{fa.species}' stores {fa.momentum_kind() or 'no'} momentum columns in "
                  f"the reference and {fb.momentum_kind() or 'none'} in the candidate; momenta not compared")
         mom = []
     else:
         mom = _shared_roles(fa, fb, _momentum_roles(fa))
     wa, wb = fa.column_for("weight"), fb.column_for("weight")
+    use_pos = len(pos) == layout.ndim
+    acc = _cmp.ParticleComparison(layout if use_pos else None, (ka, kb),
+                                  ([a for a, _ in pos], [b for _, b in pos]) if use_pos else ((), ()),
+                                  ([a for a, _ in mom], [b for _, b in mom]),
+                                  ((wa,), (wb,)) if wa and wb else ((), ()))
     with transient_columns([fa, fb]):
-        extra_a = [fa[wa]] if wa and wb else [fa.per_particle("weight", 1.0)]
-        extra_b = [fb[wb]] if wa and wb else [fb.per_particle("weight", 1.0)]
-        use_pos = len(pos) == layout.ndim
         try:
-            return _cmp.compare_particles(fa.key(), fb.key(),
-                                          [fa[a] for a, _ in pos] if use_pos else [],
-                                          [fb[b] for _, b in pos] if use_pos else [],
-                                          [fa[a] for a, _ in mom], [fb[b] for _, b in mom],
-                                          layout if use_pos else None, extra_a, extra_b)
+            stats = reduce(acc, [fa, fb], ctx)
         except DuplicateKeyError as exc:
-            ctx_note(f"{where}: species '{fa.species}': {exc}; compared as distributions")
+            note(f"{where}: species '{fa.species}': {exc}; compared as distributions")
             return None
+    if not (wa and wb):
+        # a weight that is a species constant (or missing) on a side: equal only when both are
+        sa, sb = fa.per_particle("weight", 1.0), fb.per_particle("weight", 1.0)
+        if not (np.ndim(sa) == 0 and np.ndim(sb) == 0 and float(sa) == float(sb)):
+            stats.identical = False
+    return stats
 
 
 def _distribution_rows(fa, fb, stamp, species):
@@ -295,7 +300,7 @@ def compare_runs(ref: AuditContext, cand: AuditContext, *, pair: str = "step", t
                 continue
             stats = None
             if mode in ("auto", "particles", "both"):
-                stats = _particle_row(note, fa, fb, layout, where)
+                stats = _particle_row(ref, note, fa, fb, layout, where)
             if stats is not None:
                 part_rows.append({**stamp, "species": s, "ref_count": len(fa), "cand_count": len(fb),
                                   "matched": stats.pairs, "only_ref": stats.only_ref,

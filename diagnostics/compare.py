@@ -26,6 +26,7 @@ import numpy as np
 
 from ..core.layout import BlockLayout
 from . import _kernels
+from .accumulate import Accumulator
 from .migration import match_keys, matched_displacement
 
 #: particles named as differing most, per species and snapshot
@@ -383,3 +384,66 @@ def compare_particles(keys_ref, keys_cand, pos_ref, pos_cand, mom_ref, mom_cand,
     if out.only_ref or out.only_cand:
         out.identical = False
     return out
+
+
+# the accumulator -------------------------------------------------------------------------------
+class ParticleComparison(Accumulator):
+    """:func:`compare_particles` of two frames (0: the reference, 1: the candidate), fed in pieces.
+
+    ``keys``, ``positions``, ``momenta`` and ``extras`` are column names,
+    one tuple per frame (the two runs may name a role differently). Matching
+    needs every key of both frames together, so the state keeps the rows it
+    is given (the engine therefore never hands it a reused buffer:
+    ``reads_once`` is False) and ``finish`` matches them in one call of the
+    matcher migration uses.
+    """
+
+    reads_once = False
+
+    def __init__(self, layout: BlockLayout | None, keys, positions, momenta, extras=((), ()),
+                 worst: int = WORST):
+        self.layout = layout
+        self.keys = tuple(tuple(k) for k in keys)
+        self.positions = tuple(tuple(p) for p in positions)
+        self.momenta = tuple(tuple(m) for m in momenta)
+        self.extras = tuple(tuple(e) for e in extras)
+        self.worst = int(worst)
+        if len(self.keys[0]) != len(self.keys[1]) or not self.keys[0]:
+            raise ValueError("both frames need the same number of key columns")
+
+    @property
+    def frame_columns(self):
+        return tuple(tuple(dict.fromkeys(self.keys[k] + self.positions[k] + self.momenta[k] + self.extras[k]))
+                     for k in (0, 1))
+
+    def start(self):
+        return {0: [], 1: []}
+
+    def add(self, state, piece):
+        cols = self.frame_columns[piece.frame]
+        state[piece.frame].append((piece.start, {c: piece[c] for c in cols}))
+        return state
+
+    def merge(self, a, b):
+        return {k: a[k] + b[k] for k in (0, 1)}
+
+    def _joined(self, chunks, k):
+        chunks = sorted(chunks, key=lambda t: t[0])
+        cols = self.frame_columns[k]
+        if len(chunks) == 1:
+            return chunks[0][1]
+        if not chunks:
+            return {c: np.zeros(0) for c in cols}
+        return {c: np.concatenate([ch[c] for _, ch in chunks]) for c in cols}
+
+    def finish(self, state) -> PairStats:
+        a, b = self._joined(state[0], 0), self._joined(state[1], 1)
+
+        def key(cols, k):
+            names = self.keys[k]
+            return cols[names[0]] if len(names) == 1 else tuple(cols[n] for n in names)
+
+        return compare_particles(key(a, 0), key(b, 1), [a[c] for c in self.positions[0]],
+                                 [b[c] for c in self.positions[1]], [a[c] for c in self.momenta[0]],
+                                 [b[c] for c in self.momenta[1]], self.layout,
+                                 [a[c] for c in self.extras[0]], [b[c] for c in self.extras[1]], self.worst)

@@ -1,21 +1,31 @@
-"""Per-snapshot reductions (totals, census, ranges) kept between runs of the tool.
+"""Per-snapshot reductions (totals, census, migration) of a context, in memory and on disk.
 
 Reopening a run of a hundred snapshots should not read a hundred snapshots
-again. A reduction is stored under a key made of
+again. Every per-snapshot reduction goes through one :class:`SnapshotCache`
+per :class:`~swarmaudit.core.context.AuditContext` (:func:`context_cache`):
+in memory for the life of the context, backed by the on-disk
+:class:`ReductionCache`. Both judge an entry by one rule, :func:`entry_key`:
+an entry is current while
 
-* the snapshot's files: path, size and modification time of every part
-  (:meth:`core.run.SnapshotRef.signature`), so a rewritten file is recomputed;
-* what was computed and with which options (layout fingerprint, species,
-  relativistic, ...), as the caller names them;
-* the cache format and a fingerprint of the code that computes (the readers,
-  core and diagnostics sources), so a changed formula never serves old values.
+* the snapshot's files have the same path, size and modification time
+  (``mtime_ns``) as when it was computed (:meth:`core.run.SnapshotRef.signature`),
+  so a rewritten file is recomputed;
+* it was computed for the same thing with the same options (layout
+  fingerprint, species, roles, relativistic, ...);
+* by the same code: the cache format and a fingerprint of the sources that
+  compute (core, readers, diagnostics, engine, audit), so a changed formula
+  never serves old values.
+
+An entry that cannot be read back (cut short, empty, bad checksum, a manifest
+that is not JSON) is removed and computed again, with one note.
 
 Where: ``$SWARMAUDIT_CACHE`` if set (``off`` disables it), else
 ``$XDG_CACHE_HOME/swarmaudit`` or ``~/.cache/swarmaudit``: never beside the
 data, which may be read-only or shared. Each entry is one ``.npz`` file
 (arrays plus a JSON manifest; loaded with ``allow_pickle=False``), written to
 a temporary file and moved into place with ``os.replace``, so two processes
-filling the cache at once never leave a torn entry.
+filling the cache at once never leave a torn entry (both succeed; the later
+rename wins).
 """
 
 from __future__ import annotations
@@ -105,6 +115,28 @@ def _plain(value):
     if isinstance(value, os.PathLike):
         return os.fspath(value)
     raise TypeError(f"cannot use a {type(value).__name__} in a cache key")
+
+
+def entry_key(signature, what: str, params=None) -> dict:
+    """What an entry is stored under, and so when it is stale: the one rule of both caches.
+
+    ``signature`` is ``(path, size, mtime_ns)`` of each file of the snapshot;
+    ``params`` the options the value depends on. The cache format and the code
+    fingerprint are added here.
+    """
+    return {"format": FORMAT, "code": code_fingerprint(), "what": str(what),
+            "files": [[str(p), int(size), int(t)] for p, size, t in signature],
+            "params": _plain(params or {})}
+
+
+def entry_digest(material: dict) -> str:
+    text = json.dumps(material, sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _has_files(signature) -> bool:
+    """Whether a snapshot has files to key a stored entry on (not in memory only, not gone)."""
+    return bool(signature) and all(size >= 0 for _, size, _ in signature)
 
 
 # values <-> (manifest, arrays) -------------------------------------------------------
@@ -209,6 +241,7 @@ class ReductionCache:
         self.hits = 0
         self.misses = 0
         self.writes = 0
+        self.damaged = 0
         self.errors: list[str] = []
         self._lock = threading.Lock()
 
@@ -217,32 +250,48 @@ class ReductionCache:
         return self.root is not None
 
     def key_material(self, signature, what: str, params=None) -> dict:
-        return {"format": FORMAT, "code": code_fingerprint(), "what": str(what),
-                "files": [[str(p), int(s), int(t)] for p, s, t in signature],
-                "params": _plain(params or {})}
+        return entry_key(signature, what, params)
 
     def path_for(self, material: dict) -> Path:
-        text = json.dumps(material, sort_keys=True, separators=(",", ":"))
-        digest = hashlib.sha256(text.encode()).hexdigest()
+        digest = entry_digest(material)
         return self.root / f"v{FORMAT}" / digest[:2] / f"{digest}.npz"
 
-    def load(self, material: dict):
-        """The stored value, or a miss marker; a damaged entry counts as a miss."""
+    def load(self, material: dict, on_damage=None):
+        """The stored value, or a miss marker.
+
+        An entry that cannot be read back is removed (so the value is computed
+        and stored again) and counted in ``damaged``; ``on_damage(path)`` is
+        then called. Any failure counts: a file cut short or empty, a bad zip
+        checksum, a manifest that is not JSON or names an unknown type.
+        """
         if not self.enabled:
             return _MISS
         path = self.path_for(material)
         try:
             with np.load(path, allow_pickle=False) as z:
                 manifest = json.loads(bytes(z["__manifest__"]).decode())
+                if not isinstance(manifest, dict) or "value" not in manifest:
+                    raise ValueError("the manifest holds no value")
                 if manifest.get("key") != json.loads(json.dumps(material, sort_keys=True)):
                     return _MISS   # a hash collision or a stale format: not ours
                 arrays = {k: z[k] for k in z.files if k != "__manifest__"}
             return _decode(manifest["value"], arrays)
         except FileNotFoundError:
             return _MISS
-        except (OSError, ValueError, KeyError, TypeError, json.JSONDecodeError) as exc:
-            self.errors.append(f"{path}: {exc}")
+        except Exception as exc:   # noqa: BLE001 - whatever a damaged file makes numpy, zipfile or json raise
+            self._damaged(path, exc)
+            if on_damage is not None:
+                on_damage(path)
             return _MISS
+
+    def _damaged(self, path: Path, exc: BaseException) -> None:
+        with self._lock:
+            self.damaged += 1
+            self.errors.append(f"{path}: {type(exc).__name__}: {exc}")
+        try:
+            path.unlink()
+        except OSError:   # gone already (another process removed or replaced it) or read-only
+            pass
 
     def store(self, material: dict, value) -> bool:
         """Write one entry atomically; False when the value cannot be cached or written."""
@@ -279,12 +328,12 @@ class ReductionCache:
             self.writes += 1
         return True
 
-    def get_or_compute(self, signature, what: str, params, compute):
+    def get_or_compute(self, signature, what: str, params, compute, on_damage=None):
         """The cached value for (files, what, params), else ``compute()`` stored for next time."""
-        if not self.enabled or not signature or any(size < 0 for _, size, _ in signature):
+        if not self.enabled or not _has_files(signature):
             return compute()   # no file behind it (in memory, or gone): nothing to key on
         material = self.key_material(signature, what, params)
-        got = self.load(material)
+        got = self.load(material, on_damage)
         if got is not _MISS:
             with self._lock:
                 self.hits += 1
@@ -339,26 +388,103 @@ def context_params(ctx) -> dict:
             "relativistic": bool(getattr(ctx, "relativistic", False)), "c": getattr(ctx, "c", None)}
 
 
-def cached_reduction(ctx, i: int, what: str, params, compute):
-    """``compute()`` for snapshot ``i`` of ``ctx.run``, through the cache.
+class SnapshotCache:
+    """The per-snapshot reductions of one context: in memory, backed by the disk cache.
 
-    ``params`` names what the value depends on beyond the context (a layout
-    fingerprint...); files, species, roles, physics options and code are
-    added here. Notes the computation added to ``ctx.notes`` are stored with
-    the value and given back on a hit, so a cached run says what a fresh one says.
+    ``get(i, what, params, compute)`` gives the value for snapshot ``i``: from
+    memory when its :func:`entry_key` is the one stored there, else from disk,
+    else ``compute()`` (stored in both). The key is made of the snapshot's file
+    signature, ``what``, ``params`` plus the context's own options
+    (:func:`context_params`) and the code, so memory and disk go stale at the
+    same moment. Notes the computation added to ``ctx.notes`` are stored with
+    the value on disk and given back on a hit, so a cached run says what a
+    fresh one says. Memory holds one version per snapshot file and question:
+    a newer version replaces an older one.
     """
-    cache = cache_for(ctx)
-    if not cache.enabled:
-        return compute()
-    ref = ctx.run.refs[i]
-    notes = ctx.notes
-    before = len(notes)
 
-    def run():
-        value = compute()
-        return {"value": value, "notes": [str(n) for n in notes[before:]]}
-    got = cache.get_or_compute(ref.signature(), what, {**context_params(ctx), **dict(params or {})}, run)
-    for n in got["notes"]:
-        if n not in notes:
-            notes.append(n)
-    return got["value"]
+    def __init__(self, ctx):
+        self._ctx = ctx
+        self._memory: dict[tuple, tuple[str, object]] = {}   # (files, what, params) -> (digest, value)
+        self._lock = threading.Lock()
+
+    def _key(self, i: int, what: str, params):
+        ctx = self._ctx
+        ref = ctx.run.refs[i]
+        signature = ref.signature()
+        material = entry_key(signature, what, {**context_params(ctx), **dict(params or {})})
+        slot = (tuple(str(p) for p, _, _ in signature), str(what),
+                json.dumps(material["params"], sort_keys=True))
+        return signature, material, slot, entry_digest(material)
+
+    def get(self, i: int, what: str, params, compute, *, persist: bool = True):
+        """The value of ``what`` for snapshot ``i``; ``persist=False`` keeps it in memory only."""
+        signature, material, slot, digest = self._key(i, what, params)
+        with self._lock:
+            held = self._memory.get(slot)
+        if held is not None and held[0] == digest:
+            return held[1]
+        disk = cache_for(self._ctx)
+        stored = persist and disk.enabled and _has_files(signature)
+        notes = self._ctx.notes
+        damaged = []
+        got = disk.load(material, damaged.append) if stored else _MISS
+        if isinstance(got, dict) and set(got) == {"value", "notes"}:
+            with disk._lock:
+                disk.hits += 1
+            for n in got["notes"]:
+                if n not in notes:
+                    notes.append(n)
+            value = got["value"]
+        else:
+            if stored:
+                with disk._lock:
+                    disk.misses += 1
+            before = len(notes)
+            value = compute()
+            if stored:
+                disk.store(material, {"value": value, "notes": [str(n) for n in notes[before:]]})
+        if damaged:
+            note = (f"a damaged entry of the reduction cache ({disk.root}) was removed and "
+                    "computed again")
+            if note not in notes:
+                notes.append(note)
+        with self._lock:
+            self._memory[slot] = (digest, value)
+        return value
+
+    def put(self, i: int, what: str, params, value) -> None:
+        """Keep a value computed together with another snapshot's (no notes of its own)."""
+        signature, material, slot, digest = self._key(i, what, params)
+        with self._lock:
+            self._memory[slot] = (digest, value)
+        disk = cache_for(self._ctx)
+        if disk.enabled and _has_files(signature):
+            disk.store(material, {"value": value, "notes": []})
+
+    def has(self, i: int, what: str, params) -> bool:
+        """Whether the value is current in memory or stored on disk (nothing is computed)."""
+        signature, material, slot, digest = self._key(i, what, params)
+        with self._lock:
+            held = self._memory.get(slot)
+        if held is not None and held[0] == digest:
+            return True
+        disk = cache_for(self._ctx)
+        return disk.enabled and _has_files(signature) and disk.path_for(material).is_file()
+
+    def clear(self) -> None:
+        with self._lock:
+            self._memory.clear()
+
+
+def context_cache(ctx) -> SnapshotCache:
+    """The context's one reduction cache (made on first use)."""
+    cache = ctx.reductions
+    if cache is None:
+        cache = ctx.reductions = SnapshotCache(ctx)
+    return cache
+
+
+def cached_reduction(ctx, i: int, what: str, params, compute, *, persist: bool = True):
+    """``compute()`` for snapshot ``i`` of ``ctx.run``, through the context's cache
+    (:meth:`SnapshotCache.get`)."""
+    return context_cache(ctx).get(i, what, params, compute, persist=persist)

@@ -1,10 +1,9 @@
 """Run-level tables: census, imbalance, migration, drift, and the ``check`` gate.
 
 Each function takes an :class:`AuditContext` and reads only the columns it
-needs. Per-snapshot reductions all go through :func:`_reduce`, the one place
-where a persistent cache keyed by ``SnapshotRef.signature()`` can be added;
-for now results are kept for the life of the context (and recomputed when a
-snapshot's files change).
+needs. Per-snapshot reductions all go through the context's one cache
+(:func:`audit.cache.context_cache`: memory backed by disk, stale when a
+snapshot's files, the options or the code change).
 """
 
 from __future__ import annotations
@@ -21,7 +20,7 @@ from ..diagnostics import drift as _drift
 from ..diagnostics.halo import halo_counts
 from ..diagnostics.migration import DuplicateKeyError, MigrationResult, migrate
 from ..diagnostics.rebalance import rebalance_whatif
-from .cache import cached_reduction, layout_fingerprint
+from .cache import cached_reduction, context_cache, layout_fingerprint
 from ..core.context import AuditContext
 from ..engine.dask_backend import migration_if_partitioned
 from ..engine.pieces import read_in_pieces
@@ -128,32 +127,12 @@ def _where(ctx: AuditContext, i: int) -> str:
 
 
 # the one door for per-snapshot reductions ----------------------------------------------
-def _cache(ctx: AuditContext) -> dict:
-    cache = ctx.__dict__.get("_reductions")
-    if cache is None:
-        cache = ctx.__dict__["_reductions"] = {}
-    return cache
-
-
 def _reduce(ctx: AuditContext, i: int, kind: str):
-    """A per-snapshot reduction (``census`` or ``totals``), computed once per file version.
-
-    Kept for the life of the context and, through :func:`core.cache.cached_reduction`,
-    on disk keyed by the snapshot's files, the options and the code.
-    """
+    """A per-snapshot reduction (``census`` or ``totals``), computed once per file version
+    (the context's cache: memory, backed by disk)."""
     layout = ctx.layout(i) if kind == "census" else None
-    key = (kind, i, ctx.run.refs[i].signature(), tuple(ctx.species_names()),
-           id(layout), bool(ctx.relativistic), ctx.c)
-    cache = _cache(ctx)
-    if key not in cache:
-        latest = ctx.__dict__.setdefault("_latest", {})     # (kind, snapshot) -> its key in cache
-        stale = latest.pop((kind, i), None)                 # an older version of the same file
-        if stale is not None:
-            cache.pop(stale, None)
-        params = {"layout": layout_fingerprint(layout)} if layout is not None else {}
-        cache[key] = cached_reduction(ctx, i, kind, params, lambda: _COMPUTE[kind](ctx, i, layout))
-        latest[(kind, i)] = key
-    return cache[key]
+    params = {"layout": layout_fingerprint(layout)} if layout is not None else {}
+    return cached_reduction(ctx, i, kind, params, lambda: _COMPUTE[kind](ctx, i, layout))
 
 
 def _compute_census(ctx: AuditContext, i: int, layout) -> dict:
@@ -182,14 +161,10 @@ TOTALS_AHEAD = 8
 
 
 def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
-    ahead = ctx.__dict__.setdefault("_totals_ahead", {})
-    sig = ctx.run.refs[i].signature()
-    got = ahead.pop((i, sig), None)
-    if got is not None:
-        return got
+    cache = context_cache(ctx)
     # together only what is read in pieces: a batch must not hold several snapshots' columns
     later = [j for j in range(i + 1, min(i + TOTALS_AHEAD, len(ctx.run)))
-             if not _known_totals(ctx, j) and _in_pieces(ctx, j)] if _in_pieces(ctx, i) else []
+             if not cache.has(j, "totals", {}) and _in_pieces(ctx, j)] if _in_pieces(ctx, i) else []
     if later:
         try:
             done = _totals_of(ctx, [i] + later)
@@ -197,7 +172,7 @@ def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
             done = None
         if done is not None:
             for j in later:
-                ahead[(j, ctx.run.refs[j].signature())] = done[j]
+                cache.put(j, "totals", {}, done[j])
             return done[i]
     return _totals_of(ctx, [i])[i]
 
@@ -213,15 +188,6 @@ def _in_pieces(ctx: AuditContext, j: int) -> bool:
         return True
     except Exception:   # SwarmAuditError or otherwise: it is computed (and reported) on its own
         return False
-
-
-def _known_totals(ctx: AuditContext, j: int) -> bool:
-    """Whether snapshot ``j``'s totals are in this context already (computed or computed ahead)."""
-    sig = ctx.run.refs[j].signature()
-    if (j, sig) in ctx.__dict__.get("_totals_ahead", {}):
-        return True
-    key = ctx.__dict__.get("_latest", {}).get(("totals", j))
-    return key is not None and key[2] == sig
 
 
 def _totals_of(ctx: AuditContext, indices) -> dict:
@@ -394,18 +360,12 @@ def _migration_pair(ctx: AuditContext, a: int, b: int) -> dict:
     la, lb = ctx.layout(a), ctx.layout(b)
     sig_b = ctx.run.refs[b].signature()
     steps = [ctx.run[a].step, ctx.run[b].step]     # taken from the names or an option when not stored
-    key = ("migration", a, b, ctx.run.refs[a].signature(), sig_b,
-           tuple(ctx.species_names()), id(la), id(lb), tuple(steps))
-    cache = _cache(ctx)
-    if key not in cache:
-        params = {"with": [list(t) for t in sig_b], "layout_a": layout_fingerprint(la),
-                  "layout_b": layout_fingerprint(lb), "periodic": [list(la.periodic), list(lb.periodic)],
-                  "steps": steps}
-        if any(size < 0 for _, size, _ in sig_b):
-            params = None   # the second snapshot has no file to key on
-        compute = lambda: _compute_migration(ctx, a, b, la, lb)   # noqa: E731
-        cache[key] = compute() if params is None else cached_reduction(ctx, a, f"migration-{b}", params, compute)
-    return cache[key]
+    params = {"with": [list(t) for t in sig_b], "layout_a": layout_fingerprint(la),
+              "layout_b": layout_fingerprint(lb), "periodic": [list(la.periodic), list(lb.periodic)],
+              "steps": steps}
+    # kept on disk only when the second snapshot has files to key on too
+    return cached_reduction(ctx, a, "migration", params, lambda: _compute_migration(ctx, a, b, la, lb),
+                            persist=all(size >= 0 for _, size, _ in sig_b))
 
 
 def _compute_migration(ctx: AuditContext, a: int, b: int, la, lb) -> dict:

@@ -32,6 +32,9 @@ class AuditContext:
     c: float | None = None                  # speed of light in the run's units (None: SI)
     steps_per_snapshot: int | str | None = None   # --steps-per-snapshot: K, "index" or "names"
     notes: list[str] = field(default_factory=list)
+    #: the context's one cache of per-snapshot reductions (``audit.cache.SnapshotCache``, made by
+    #: the audit layer on first use; memory backed by the disk cache, one rule for staleness)
+    reductions: object | None = field(default=None, repr=False, compare=False)
     _sidecar: BlockLayout | None | bool = field(default=False, repr=False)
     _fallback: BlockLayout | None = field(default=None, repr=False)
 

@@ -201,3 +201,149 @@ def test_two_processes_writing_the_same_entry_never_tear_it(tmp_path):
     got = c.load(m)
     assert got["i"] == 39 and np.all(got["a"] == 39)
     assert not [p for p in root.rglob(".tmp-*")]          # no temporary file left behind
+
+
+# one cache per context, one staleness rule ----------------------------------------------
+def _numpy_totals(folder):
+    """Σ w, Σ w q, Σ w m vx per snapshot, straight from the files with h5py and numpy."""
+    out = []
+    for p in sorted(folder.glob("snap_*.h5")):
+        with h5py.File(p, "r") as fh:
+            g = fh["electrons"]
+            w = g["weight"][()]
+            out.append((float(np.sum(w)), float(np.sum(w * g.attrs["charge"])),
+                        float(np.sum(w * g.attrs["mass"] * g["vx"][()]))))
+    return out
+
+
+def _drift_and_census(folder, use_cache=True):
+    from swarmaudit.audit import tables
+    from swarmaudit.readers.discover import open_run
+    ctx = AuditContext(open_run(str(folder)), use_cache=use_cache,
+                       fixed_layout=regular_layout([0, 1, 0, 1], [8, 8], [4, 4]))
+    return tables.drift_table(ctx), tables.census_table(ctx), ctx
+
+
+def test_cached_tables_are_what_a_fresh_computation_and_numpy_give(tmp_path, cache_dir):
+    folder = _write_run(tmp_path / "run")
+    fresh_drift, fresh_census, _ = _drift_and_census(folder, use_cache=False)
+    assert not cache_dir.exists()
+    _drift_and_census(folder)                                   # fills the disk cache
+    hits = cache_for().hits
+    drift, census, ctx = _drift_and_census(folder)              # a new context: served from disk
+    assert cache_for().hits - hits == 2 * 3                     # totals and census of 3 snapshots
+    pd.testing.assert_frame_equal(drift, fresh_drift)
+    pd.testing.assert_frame_equal(census, fresh_census)
+    # the numbers themselves, against numpy over the raw columns
+    e = drift[drift["species"] == "electrons"].set_index(["snapshot", "quantity"])["value"]
+    for i, (w, q, px) in enumerate(_numpy_totals(folder)):
+        assert e[(i, "weight")] == pytest.approx(w, rel=1e-12)
+        assert e[(i, "charge")] == pytest.approx(q, rel=1e-12)
+        assert e[(i, "momentum_x")] == pytest.approx(px, rel=1e-12)
+    # the census against numpy.histogramdd of the positions on the 4 x 4 blocks
+    with h5py.File(folder / "snap_0002.h5", "r") as fh:
+        want, _ = np.histogramdd(np.c_[fh["electrons/x"][()], fh["electrons/y"][()]],
+                                    bins=[4, 4], range=[[0, 1], [0, 1]])
+    got = census[(census["snapshot"] == 2) & (census["species"] == "electrons")]
+    got = got[got["block"] >= 0].sort_values("block")["count"].to_numpy()
+    np.testing.assert_array_equal(got, want.T.ravel())          # block ids: x fastest
+
+
+def test_the_context_owns_one_cache_and_a_touched_file_goes_stale_in_memory_too(tmp_path, cache_dir):
+    from swarmaudit.audit import tables
+    from swarmaudit.audit.cache import context_cache
+    from swarmaudit.readers.discover import open_run
+    folder = _write_run(tmp_path / "run", snapshots=2)
+    ctx = AuditContext(open_run(str(folder)))
+    assert ctx.reductions is None
+    first = tables._reduce(ctx, 1, "totals")
+    cache = context_cache(ctx)
+    assert ctx.reductions is cache and context_cache(ctx) is cache
+    assert tables._reduce(ctx, 1, "totals") is first            # memory: the same object
+    path = folder / "snap_0001.h5"
+    with h5py.File(path, "a") as fh:
+        fh["electrons/weight"][...] = 5.0
+    st = os.stat(path)
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))
+    ctx.run.forget(1)
+    again = tables._reduce(ctx, 1, "totals")
+    assert again["electrons"][0]["weight"] == pytest.approx(5.0 * 2000)
+    assert len(cache._memory) == 1                              # the newer version replaced the older
+
+
+# damaged entries --------------------------------------------------------------------------
+def _truncate(p):
+    p.write_bytes(p.read_bytes()[: p.stat().st_size // 2])
+
+
+def _zero_length(p):
+    p.write_bytes(b"")
+
+
+def _flip_bytes(p):
+    # uncompressed zip members carry a CRC-32: bytes flipped inside one fail its check
+    data = bytearray(p.read_bytes())
+    for k in range(len(data) // 3, len(data) // 3 + 8):
+        data[k] ^= 0xFF
+    p.write_bytes(bytes(data))
+
+
+def _bad_json(p):
+    np.savez(p, __manifest__=np.frombuffer(b'{"key": [1, 2', dtype=np.uint8))
+
+
+@pytest.mark.parametrize("damage", [_truncate, _zero_length, _flip_bytes, _bad_json],
+                         ids=["truncated", "zero-length", "bad-crc", "bad-json"])
+def test_a_damaged_entry_is_removed_and_computed_again(tmp_path, cache_dir, capsys, damage):
+    from swarmaudit.app.cli import main
+    folder = _write_run(tmp_path / "run")
+    assert main(["check", str(folder), "--rtol", "1e-9", "--quantities", "weight,charge"]) == 0
+    first = capsys.readouterr()
+    entries = sorted(cache_dir.rglob("*.npz"))
+    assert entries
+    for p in entries:
+        damage(p)
+    assert main(["check", str(folder), "--rtol", "1e-9", "--quantities", "weight,charge"]) == 0
+    second = capsys.readouterr()
+    assert second.out == first.out
+    notes = [ln for ln in second.err.splitlines() if "damaged entry of the reduction cache" in ln]
+    assert len(notes) == 1, second.err
+    # every entry was written again and reads back whole: the next run says nothing more
+    c = ReductionCache(cache_dir)
+    damaged = c.damaged
+    assert main(["check", str(folder), "--rtol", "1e-9", "--quantities", "weight,charge"]) == 0
+    third = capsys.readouterr()
+    assert third.out == first.out and "damaged" not in third.err
+    assert c.damaged == damaged
+    for p in cache_dir.rglob("*.npz"):
+        with np.load(p, allow_pickle=False) as z:
+            assert "__manifest__" in z.files
+
+
+def test_damage_of_every_kind_is_a_miss_never_an_exception(tmp_path):
+    c = ReductionCache(tmp_path)
+    m = c.key_material([("f", 1, 1)], "x")
+    for damage in (_truncate, _zero_length, _flip_bytes, _bad_json):
+        assert c.store(m, {"v": np.arange(1000.0)})
+        damage(c.path_for(m))
+        seen = []
+        assert c.load(m, seen.append) is cache_mod._MISS
+        assert seen == [c.path_for(m)] and not c.path_for(m).exists()
+    assert c.damaged == 4
+
+
+def test_two_commands_filling_the_same_entries_at_once_both_succeed(tmp_path):
+    # two real processes compute the same snapshots into one fresh cache folder at the same time
+    folder = _write_run(tmp_path / "run", snapshots=4, n=20_000)
+    env = dict(os.environ, SWARMAUDIT_CACHE=str(tmp_path / "shared"))
+    cmd = [sys.executable, "-m", "swarmaudit", "check", str(folder), "--rtol", "1e-9",
+           "--quantities", "weight,charge"]
+    procs = [subprocess.Popen(cmd, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+             for _ in range(2)]
+    outs = [p.communicate(timeout=300) for p in procs]
+    assert [p.returncode for p in procs] == [0, 0], outs
+    assert outs[0][0] == outs[1][0]
+    assert not any("damaged" in err for _, err in outs)
+    assert not list((tmp_path / "shared").rglob(".tmp-*"))
+    again = subprocess.run(cmd, env=env, capture_output=True, text=True, timeout=300)
+    assert again.returncode == 0 and again.stdout == outs[0][0] and "damaged" not in again.stderr

@@ -291,7 +291,7 @@ def test_plugin_columns_stream_in_pieces_like_numpy_reads_them(tmp_path):
     frame = _PairsReader().open(str(path)).species["particles"]
     col = frame.loader("x")
     assert col.can_read_rows and col.dtype == np.float64 and col.length == 1000
-    pieces = frame_pieces(frame, ["x", "y"], target_bytes=16 * 100)
+    pieces = frame_pieces(frame, ["x", "y"], rows=100)
     assert len(pieces) > 5
     for name, k in (("x", 0), ("y", 1)):
         got = np.concatenate([read_column(p, name) for p in pieces])
@@ -306,7 +306,7 @@ def test_plugin_columns_stream_in_pieces_like_numpy_reads_them(tmp_path):
     assert wrapped.file_extent() is None
     with wrapped.hold():       # holding a column that has no file handle to keep is a no-op
         np.testing.assert_array_equal(wrapped.rows(3, 9), want[3:9, 0])
-    assert len(frame_pieces(plain, ["x", "y"], target_bytes=16 * 100)) == 1
+    assert len(frame_pieces(plain, ["x", "y"], rows=100)) == 1
     np.testing.assert_array_equal(plain["y"], want[:, 1])
 
 

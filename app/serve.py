@@ -254,6 +254,7 @@ def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
     for ctx_name in runs.names:
         for note in runs[ctx_name].ctx.notes:
             print(f"swarmaudit: {ctx_name}: {note}", file=sys.stderr, flush=True)
+    quiet_closed_pages()
     print("swarmaudit: press Ctrl-C to stop", flush=True)
     # the server library puts its own SIGINT handler in ours' place: Ctrl-C stops the loop and
     # marks the interrupt, so the command ends like every other one (exit 130)
@@ -282,6 +283,52 @@ def _open_browser(url: str) -> None:
         webbrowser.open(url)
     except Exception:   # no browser on this machine: the printed address is enough
         pass
+
+
+#: where the server library and the event loop report a write to a page that has gone
+CLOSED_PAGE_LOGGERS = ("asyncio", "tornado.application", "tornado.general", "tornado.websocket",
+                       "bokeh.server.views.ws", "bokeh.server.protocol_handler", "bokeh.server.session",
+                       "bokeh.server.tornado", "panel.io.document", "panel")
+
+
+def _about_a_closed_page(record: logging.LogRecord) -> bool:
+    from tornado.iostream import StreamClosedError
+    from tornado.websocket import WebSocketClosedError
+    exc = record.exc_info[1] if record.exc_info else None
+    while exc is not None:
+        if isinstance(exc, (WebSocketClosedError, StreamClosedError)):
+            return True
+        exc = exc.__cause__ or exc.__context__
+    text = record.getMessage()
+    return any(w in text for w in ("WebSocketClosedError", "StreamClosedError",
+                                   "connection was closed", "Stream is closed"))
+
+
+class _ClosedPageFilter(logging.Filter):
+    """A page closed while the server was still sending to it is normal: no traceback, no line."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return not _about_a_closed_page(record)
+
+
+_CLOSED_PAGE_FILTER = _ClosedPageFilter()
+
+
+def quiet_closed_pages() -> None:
+    """Keep the serving terminal free of the tracebacks a closed browser tab leaves behind.
+
+    Closing a tab mid-update makes the pending writes to its websocket fail; the
+    libraries log each one (the event loop with a traceback of WebSocketClosedError).
+    The filter sits on those loggers and on the root handlers (records that only
+    propagate there); every other record passes.
+    """
+    for name in CLOSED_PAGE_LOGGERS:
+        logger = logging.getLogger(name)
+        if _CLOSED_PAGE_FILTER not in logger.filters:
+            logger.addFilter(_CLOSED_PAGE_FILTER)
+    for handler in logging.getLogger().handlers:
+        if _CLOSED_PAGE_FILTER not in handler.filters:
+            handler.addFilter(_CLOSED_PAGE_FILTER)
 
 
 def run_serve(contexts, args) -> int:

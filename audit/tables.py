@@ -18,11 +18,10 @@ import pandas as pd
 from ..diagnostics import census as _census
 from ..diagnostics import drift as _drift
 from ..diagnostics.halo import halo_counts
-from ..diagnostics.migration import DuplicateKeyError, MigrationResult, migrate
+from ..diagnostics.migration import DuplicateKeyError, Migration, MigrationResult
 from ..diagnostics.rebalance import rebalance_whatif
 from .cache import cached_reduction, context_cache, layout_fingerprint
 from ..core.context import AuditContext
-from ..engine.dask_backend import migration_if_partitioned
 from ..engine.pieces import read_in_pieces
 from ..engine.reduce import reduce, reduce_many
 from ..core.errors import OptionError
@@ -109,15 +108,16 @@ def _held_open(*frames):
         yield
 
 
-def _block_ids(ctx: AuditContext, frame, layout, where: str) -> np.ndarray:
+def _check_axes(ctx: AuditContext, frame, layout, where: str) -> None:
+    """Positions that fit the layout, or a block column, or a note that all go to block -1;
+    an error for position axes that do not fit the layout."""
     if frame.ndim == layout.ndim and frame.ndim > 0:
-        return assign_blocks(frame.positions(), layout)
-    if frame.ndim == 0 and frame.role("block") is not None:
-        return np.asarray(frame.role("block")).astype(np.int64)
+        return
     if frame.ndim == 0:
-        _note(ctx, f"{where}: species '{frame.species}' has no position columns; its particles are "
-                   "counted in block -1")
-        return np.full(len(frame), -1, dtype=np.int64)
+        if frame.column_for("block") is None:
+            _note(ctx, f"{where}: species '{frame.species}' has no position columns; its particles are "
+                       "counted in block -1")
+        return
     raise OptionError(f"{where}: species '{frame.species}' has {frame.ndim} position axes but the block "
                       f"layout has {layout.ndim} (check --domain/--layout or the column roles)")
 
@@ -140,10 +140,11 @@ def _compute_census(ctx: AuditContext, i: int, layout) -> dict:
     out = {}
     for s in _present_species(ctx, i):
         frame = snap.species[s]
+        _check_axes(ctx, frame, layout, _where(ctx, i))
         acc = _census.Census.of_frame(frame, layout)
-        if acc is None:    # says why (a note, or an error for axes that do not fit the layout)
-            bids = _block_ids(ctx, frame, layout, _where(ctx, i))
-            got = _census.census_of_arrays(bids, layout, frame.per_particle("weight", 1.0))
+        if acc is None:    # no positions and no block column: every particle in block -1
+            got = _census.census_of_arrays(np.full(len(frame), -1, np.int64), layout,
+                                           frame.per_particle("weight", 1.0))
         else:
             with _held_open(frame):
                 got = reduce(acc, frame, ctx)
@@ -397,9 +398,10 @@ def _compute_migration(ctx: AuditContext, a: int, b: int, la, lb) -> dict:
             _note(ctx, f"species '{s}': the id columns differ between {pair}; migration skipped")
             continue
         try:
-            res = migration_if_partitioned(ctx, fa, fb, la, lb, steps)
-            if res is None:
-                res = _migrate_in_memory(ctx, fa, fb, a, b, la, lb, steps)
+            for f, lay, k in ((fa, la, a), (fb, lb, b)):
+                _check_axes(ctx, f, lay, _where(ctx, k))
+            with _held_open(fa, fb):
+                res = reduce(Migration.of_frames(fa, fb, la, lb, steps), [fa, fb], ctx)
         except DuplicateKeyError as exc:
             _note(ctx, f"species '{s}', {pair}: {exc}; migration skipped for it")
             continue
@@ -407,16 +409,6 @@ def _compute_migration(ctx: AuditContext, a: int, b: int, la, lb) -> dict:
             _note(ctx, f"species '{s}', {pair}: {text}")
         results[s] = res
     return results
-
-
-def _migrate_in_memory(ctx, fa, fb, a, b, la, lb, steps) -> MigrationResult:
-    with _transient([fa, fb]):
-        both = fa.ndim == la.ndim and fb.ndim == lb.ndim
-        block_a = _block_ids(ctx, fa, la, _where(ctx, a))
-        block_b = _block_ids(ctx, fb, lb, _where(ctx, b))
-        return migrate(fa.key(), fb.key(), block_a, block_b,
-                       fa.positions() if both else None, fb.positions() if both else None,
-                       la, steps, fa.role("rank"), fb.role("rank"), layout_b=lb)
 
 
 def _combine(results: dict[str, MigrationResult]) -> dict:

@@ -27,8 +27,9 @@ arrays (:func:`one_piece`).
 
 Rules an accumulator keeps:
 
-* ``add`` must not keep a reference to a piece's arrays after it returns
-  (a piece may be a reused buffer); copy what the state keeps.
+* An accumulator that sets ``reads_once = True`` keeps no reference to a
+  piece's arrays after ``add`` returns, and the engine may then hand it rows
+  in reused buffers; any other accumulator gets arrays it may keep.
 * ``merge(a, b)`` treats ``a`` as the earlier rows. Integer counts must not
   depend on how rows were cut; float sums are compensated where it matters
   (see ``drift.Totals``) so that a different cut changes them only by rounding.
@@ -115,8 +116,8 @@ class Accumulator:
     """
 
     columns: tuple = ()
-    #: True when ``add`` reads its columns once and keeps none of them: the engine may then
-    #: hand it rows in reused buffers
+    #: True when ``add`` keeps none of a piece's arrays: the engine may then hand it rows in
+    #: reused buffers
     reads_once: bool = False
 
     @property

@@ -15,8 +15,9 @@ import numpy as np
 import pandas as pd
 
 from ..core.errors import SwarmAuditError
-from ..core.layout import BlockLayout
+from ..core.layout import BlockLayout, assign_blocks
 from . import _kernels
+from .accumulate import Accumulator
 
 
 class DuplicateKeyError(SwarmAuditError):
@@ -459,3 +460,109 @@ def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: Bl
                            lost=nlost, max_displacement_cells=max_disp, over_one_cell=over,
                            steps=nsteps, transfer=transfer, traffic=traffic,
                            nonfinite_displacement=nonfinite, notes=notes)
+
+
+# the accumulator ----------------------------------------------------------------------
+class Migration(Accumulator):
+    """Migration between two frames (input 0: the earlier snapshot, input 1: the later one).
+
+    Each piece contributes its particles' keys, blocks (assigned with the
+    side's layout from its ``positions``, or read from a ``block`` column, or
+    ``-1`` with neither), positions and rank column; ``finish`` joins each
+    side in row order and runs :func:`migrate` once (the one matcher: dense
+    ids by an id-indexed array, others by sorting; compiled for large inputs).
+    So a migration is the same whether its frames came whole or in pieces.
+
+    ``side_a``/``side_b`` are dicts with ``key`` (column names), ``positions``
+    (column names, or empty), ``block`` (a block-id column or None), ``rank``
+    (a rank column or None) and ``layout``. Displacements are measured when
+    both sides have positions, in level-0 cells of the first side's layout.
+    """
+
+    def __init__(self, side_a: dict, side_b: dict, steps=None):
+        self.sides = (dict(side_a), dict(side_b))
+        if len(self.sides[0]["key"]) != len(self.sides[1]["key"]):
+            raise ValueError("both snapshots need the same number of key columns")
+        self.with_pos = all(bool(s["positions"]) for s in self.sides)
+        self.steps = steps
+
+    @staticmethod
+    def side_of(frame, layout: BlockLayout) -> dict:
+        """What a frame contributes: its key, positions (when they fit the layout), block and rank columns."""
+        fits = frame.ndim == layout.ndim > 0
+        return {"key": tuple(frame.key_columns() or ()),
+                "positions": tuple(frame.position_names) if fits else (),
+                "block": frame.column_for("block") if not fits and frame.ndim == 0 else None,
+                "rank": frame.column_for("rank"), "layout": layout}
+
+    @classmethod
+    def of_frames(cls, frame_a, frame_b, layout_a: BlockLayout, layout_b: BlockLayout | None = None,
+                  steps=None):
+        return cls(cls.side_of(frame_a, layout_a), cls.side_of(frame_b, layout_b or layout_a), steps)
+
+    @property
+    def frame_columns(self):
+        out = []
+        for s in self.sides:
+            cols = list(s["key"]) + list(s["positions"]) + [c for c in (s["block"], s["rank"]) if c]
+            out.append(tuple(dict.fromkeys(cols)))
+        return tuple(out)
+
+    def start(self):
+        return ([], [])
+
+    def add(self, state, piece):
+        side = self.sides[piece.frame]
+        n = len(piece)
+        if side["positions"]:
+            pos = [piece[c] for c in side["positions"]]
+            block = assign_blocks(pos, side["layout"])
+        elif side["block"] is not None:
+            pos = None
+            block = np.asarray(piece[side["block"]]).astype(np.int64)
+        else:
+            pos = None
+            block = np.full(n, -1, dtype=np.int64)
+        rank = None
+        if side["rank"] is not None:
+            value = piece.constant(side["rank"])
+            rank = (np.full(n, value, dtype=np.int64) if value is not None
+                    else np.asarray(piece[side["rank"]]))
+        # the arrays are kept as they are: not reads_once, so no piece comes in a reused buffer
+        record = {"key": [piece[c] for c in side["key"]], "block": block,
+                  "pos": pos if (pos is not None and self.with_pos) else None, "rank": rank}
+        state[piece.frame].append(record)
+        return state
+
+    def merge(self, a, b):
+        return (a[0] + b[0], a[1] + b[1])
+
+    def finish(self, state) -> "MigrationResult":
+        joined = [_join_records(records, side) for records, side in zip(state, self.sides)]
+        (ka, ba, pa, ra), (kb, bb, pb, rb) = joined
+        la, lb = self.sides[0]["layout"], self.sides[1]["layout"]
+        return migrate(ka, kb, ba, bb, pa if self.with_pos else None, pb if self.with_pos else None,
+                       la, self.steps, ra, rb, layout_b=lb)
+
+
+def _cat(arrays, dtype=None):
+    if len(arrays) == 1:
+        return arrays[0] if dtype is None else arrays[0].astype(dtype, copy=False)
+    if not arrays:
+        return np.zeros(0, dtype=dtype or np.float64)
+    return np.concatenate(arrays) if dtype is None else np.concatenate(arrays).astype(dtype, copy=False)
+
+
+def _join_records(records, side):
+    """(key, block ids, positions, ranks) of one side from its pieces' records, in row order."""
+    nkey = len(side["key"])
+    keys = [_cat([r["key"][k] for r in records]) for k in range(nkey)]
+    key = keys[0] if nkey == 1 else tuple(keys)
+    block = _cat([r["block"] for r in records], np.int64)
+    pos = None
+    if records and records[0]["pos"] is not None:
+        pos = [_cat([r["pos"][a] for r in records]) for a in range(len(side["positions"]))]
+    elif not records and side["positions"]:
+        pos = [np.zeros(0) for _ in side["positions"]]
+    rank = _cat([r["rank"] for r in records]) if records and records[0]["rank"] is not None else None
+    return key, block, pos, rank

@@ -214,12 +214,19 @@ def _pair(n=4000, seed=5):
     return a, b
 
 
-def test_migration_equals_in_memory_migrate(engine):
+def _migration(fa, fb, layout, where="dask", steps=None):
+    from swarmaudit.diagnostics.migration import Migration
+    from swarmaudit.engine.reduce import reduce
+    return reduce(Migration.of_frames(fa, fb, layout, steps=steps), [fa, fb], where=where)
+
+
+@pytest.mark.parametrize("where", ["serial", "threads", "dask"])
+def test_migration_equals_in_memory_migrate(where):
     from swarmaudit.diagnostics.migration import migrate
     a, b = _pair()
     layout = regular_layout([0, 1, 0, 1], [16, 16], [4, 4], periodic=("x",), ranks=4)
     fa, fb = _split(a, [1000, 3000]), _split(b, [500, 2000, 3500])
-    got = dk.migrate_dask(fa, fb, layout, steps=2, engine=engine)
+    got = _migration(fa, fb, layout, where, steps=2)
     ref = migrate(a["id"], b["id"], assign_blocks([a["x"], a["y"]], layout),
                   assign_blocks([b["x"], b["y"]], layout), [a["x"], a["y"]], [b["x"], b["y"]],
                   layout, steps=2)
@@ -247,7 +254,7 @@ def test_migration_with_rank_columns_and_float32(engine):
         d["x"], d["y"] = d["x"].astype(np.float32), d["y"].astype(np.float32)
         d["rank"] = (d["x"] * 3).astype(np.int32)
     layout = _refined()
-    got = dk.migrate_dask(_split(a, [1000]), _split(b, [1500]), layout, engine=engine)
+    got = _migration(_split(a, [1000]), _split(b, [1500]), layout)
     ref = migrate(a["id"], b["id"], assign_blocks([a["x"], a["y"]], layout),
                   assign_blocks([b["x"], b["y"]], layout), [a["x"], a["y"]], [b["x"], b["y"]],
                   layout, rank_a=a["rank"], rank_b=b["rank"])
@@ -263,8 +270,7 @@ def test_migration_refuses_repeated_ids(side, engine):
     d["id"][1500] = d["id"][10]          # across pieces
     d["id"][11] = d["id"][12]            # within one piece
     with pytest.raises(DuplicateKeyError) as err:
-        dk.migrate_dask(_split(a, [1000]), _split(b, [1000]), regular_layout([0, 1, 0, 1], [4, 4], [2, 2]),
-                        engine=engine)
+        _migration(_split(a, [1000]), _split(b, [1000]), regular_layout([0, 1, 0, 1], [4, 4], [2, 2]))
     assert err.value.side == side and err.value.count == 2
 
 
@@ -274,7 +280,7 @@ def test_sparse_ids_fall_back_to_the_in_memory_match(engine):
     a["id"] = a["id"] * 10**9
     b["id"] = b["id"] * 10**9
     layout = regular_layout([0, 1, 0, 1], [4, 4], [2, 2])
-    got = dk.migrate_dask(_split(a, [400]), _split(b, [400]), layout, engine=engine)
+    got = _migration(_split(a, [400]), _split(b, [400]), layout)
     ref = migrate(a["id"], b["id"], assign_blocks([a["x"], a["y"]], layout),
                   assign_blocks([b["x"], b["y"]], layout), [a["x"], a["y"]], [b["x"], b["y"]], layout)
     assert got.summary() == pytest.approx(ref.summary())

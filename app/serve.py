@@ -22,6 +22,7 @@ from ..core.context import AuditContext
 from ..core.errors import OptionError
 from ..core.run import Run
 from . import login
+from .confine import outside_note
 from .state import SCAN_SECONDS, SERVED, URL_KEYS, ServedRuns, link_query
 from .view_policy import run_name
 
@@ -36,19 +37,6 @@ UNUSED_SESSION_MS = 120_000
 FOLLOW_SECONDS = SCAN_SECONDS
 
 _ASSETS = os.path.join(os.path.dirname(__file__), "assets")
-
-
-def _inside(path: str, real_roots: list[str]) -> bool:
-    rp = os.path.realpath(path)
-    return any(rp == r or rp.startswith(r.rstrip(os.sep) + os.sep) for r in real_roots)
-
-
-def outside_note(ref, roots: list[str]) -> str | None:
-    """A note when a snapshot's files resolve outside the run folders, else None."""
-    real_roots = [os.path.realpath(r) for r in roots if os.path.isdir(r)]
-    if not real_roots or all(_inside(p, real_roots) for p in ref.paths):
-        return None
-    return f"{ref.label}: left out, it points outside the run folder"
 
 
 def confine(ctx: AuditContext, roots: list[str]) -> list[str]:

@@ -110,7 +110,7 @@ class ServedRun:
             from ..readers.discover import rescan_run
             allow = None
             if self.roots:
-                from .serve import outside_note
+                from .confine import outside_note
                 allow = lambda ref: outside_note(ref, self.roots)   # noqa: E731
             with self._lock:
                 before = self.pending

@@ -211,10 +211,7 @@ def test_dashboard_in_chromium(server):
 def test_edited_link_values_never_break_the_page(server):
     """Probes found on loopback: each value is dropped with a note, the page draws its defaults."""
     import urllib.request
-    if os.environ.get("CI"):
-        import playwright.sync_api as sync_api
-    else:
-        sync_api = pytest.importorskip("playwright.sync_api")
+    sync_api = need("playwright.sync_api")
     # a value of more than 4,300 digits once met Python's int-parsing limit: HTTP 500
     for q in ("?snap=" + "9" * 5000, "?zz=" + "1" * 5000, "?sxr=%5B" + "1" * 5000 + "%2C2%5D"):
         with urllib.request.urlopen(server + q, timeout=120) as r:

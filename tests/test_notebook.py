@@ -8,11 +8,12 @@ import os
 import numpy as np
 import pytest
 
+from _need import need
 from _export_samples import snapshot_columns, write_npz_run
 import swarmaudit
 
-nbformat = pytest.importorskip("nbformat")
-nbclient = pytest.importorskip("nbclient")
+nbformat = need("nbformat")
+nbclient = need("nbclient")
 
 STEPS, DT, N = 10, 0.01, 900
 #: what Panel and HoloViews put in a notebook's output: the page's scripts, then each object

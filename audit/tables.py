@@ -144,7 +144,8 @@ def _compute_census(ctx: AuditContext, i: int, layout) -> dict:
         acc = _census.Census.of_frame(frame, layout)
         if acc is None:    # no positions and no block column: every particle in block -1
             got = _census.census_of_arrays(np.full(len(frame), -1, np.int64), layout,
-                                           frame.per_particle("weight", 1.0))
+                                           frame.per_particle("weight", 1.0),
+                                           particle_rank=frame.role("rank"))
         else:
             with _held_open(frame):
                 got = reduce(acc, frame, ctx)

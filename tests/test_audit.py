@@ -52,6 +52,15 @@ def test_reductions_are_computed_once_and_columns_not_kept():
     assert not frame._cache                          # the columns read were not kept in memory
 
 
+def test_rank_table_counts_by_rank_column_for_a_species_without_positions():
+    ranks = np.array([0, 1, 1, 4, 1])
+    snaps = [{"step": 0, "species": {"tracers": ({"id": np.arange(5), "rank": ranks}, {})}}]
+    rt = audit.rank_table(context(snaps, LAYOUT), 0)
+    got = rt[(rt["species"] == "tracers") & (rt["count"] > 0)].set_index("rank")["count"]
+    # outside source: pandas value_counts of the rank column
+    assert got.to_dict() == pd.Series(ranks).value_counts().to_dict()
+
+
 def test_rank_table_counts_by_rank_column_when_present():
     snaps = drifting_plasma(n=300, snapshots=1)
     cols = snaps[0]["species"]["electrons"][0]

@@ -14,9 +14,10 @@ import copy
 import os
 import sys
 
+from .. import __version__
 from ..core.errors import OptionError
+from ..core.outputs import FIGURE_DIR, REPORT_NAME
 
-COMPARE_REPORT = "report.html"
 
 
 def add_compare_parser(sub, physics_options, positive_float) -> argparse.ArgumentParser:
@@ -118,7 +119,7 @@ def write_comparison(folder: str, comp, result, ref, cand, args) -> list[str]:
         df.to_csv(f"{path}.part", index=False)
         os.replace(f"{path}.part", path)
         written.append(path)
-    figdir = os.path.join(folder, "figures")
+    figdir = os.path.join(folder, FIGURE_DIR)
     os.makedirs(figdir, exist_ok=True)
     figures = comparison_figures(comp, ref, cand, figdir, width=args.width, height=args.height, dpi=args.dpi)
     written.extend(f.path for f in figures)
@@ -133,15 +134,7 @@ def write_comparison(folder: str, comp, result, ref, cand, args) -> list[str]:
                                                                "tolerances."))
     text = render_report(f"{_run_name(cand)} against {_run_name(ref)}", facts,
                          comparison_sections(comp, figures, summary_lines(comp)), verdict=verdict,
-                         notes=comp.notes, version=_version())
-    path = write_report(os.path.join(folder, COMPARE_REPORT), text)
+                         notes=comp.notes, version=__version__)
+    path = write_report(os.path.join(folder, REPORT_NAME), text)
     written.append(path)
     return written
-
-
-def _version() -> str:
-    try:
-        from importlib.metadata import version
-        return version("swarmaudit")
-    except Exception:   # not installed as a distribution (a source checkout)
-        return ""

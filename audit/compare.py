@@ -30,6 +30,7 @@ import pandas as pd
 from ..core.context import AuditContext
 from ..core.errors import OptionError
 from ..core.frame import transient_columns
+from ..core.outputs import COMPARE_TABLE_NAMES
 from ..core.roles import MOMENTUM_ROLES, POSITION_ROLES, PROPER_VELOCITY_ROLES, VELOCITY_ROLES
 from ..diagnostics import compare as _cmp
 from ..diagnostics.migration import DuplicateKeyError
@@ -53,8 +54,7 @@ TOTALS_COLUMNS = PAIR_COLUMNS + ["species", "quantity", "ref_value", "cand_value
                                  "relative_difference", "ref_drift", "cand_drift"]
 WORST_COLUMNS = PAIR_COLUMNS + ["species", "order", "id", "position_cells", "relative_momentum"]
 
-TABLE_NAMES = ("compare_particles.csv", "compare_distributions.csv", "compare_census.csv",
-               "compare_totals.csv", "compare_worst.csv")
+TABLE_NAMES = COMPARE_TABLE_NAMES
 
 #: in ``auto`` mode, below this matched share of the union of both runs' particles the ids are
 #: taken to differ, and the species is compared as distributions as well

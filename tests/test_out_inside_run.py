@@ -67,3 +67,16 @@ def test_a_folder_of_our_tables_is_not_a_snapshot(tmp_path, capsys):
     # check judges against the real first snapshot: the run conserves everything
     assert main(["check", run, "--rtol", "1e-9", *LAYOUT]) == 0
     assert "over 3 snapshot(s)" in capsys.readouterr().out
+
+
+def test_a_folder_of_our_comparison_tables_is_not_a_snapshot(tmp_path, capsys):
+    run = write_npz_run(tmp_path / "run", drifting_plasma(n=60, snapshots=3, loss_at=None))
+    other = write_npz_run(tmp_path / "other", drifting_plasma(n=60, snapshots=3, loss_at=None))
+    out = tmp_path / "cmp"
+    assert main(["compare", run, other, "--out", str(out), *LAYOUT, *SMALL]) == 0
+    shutil.copytree(out, os.path.join(run, "cmp"), ignore=shutil.ignore_patterns("figures"))
+    capsys.readouterr()
+    assert main(["inspect", run, "--json", *LAYOUT]) == 0
+    info = json.loads(capsys.readouterr().out)
+    assert [s["label"] for s in info["snapshots"]] == ["snap_0000.npz", "snap_0001.npz", "snap_0002.npz"]
+    assert any("cmp: left out, it holds swarmaudit's own tables" in n for n in info["notes"])

@@ -324,8 +324,8 @@ def compare_runs(ref: AuditContext, cand: AuditContext, *, pair: str = "step", t
         note(f"reference snapshot {m['ref_snapshot']} / candidate snapshot {m['cand_snapshot']}: species "
              f"'{m['species']}' is only in the {m['in']}")
     census = census_comparison(ref, cand, pairing)
-    totals = totals_comparison(ref, cand, pairing)
     ref_drift, cand_drift = _tables.drift_details(ref), _tables.drift_details(cand)
+    totals = totals_comparison(ref, cand, pairing, ref_drift, cand_drift)
     for ctx in (ref, cand):
         for n in ctx.notes:
             note(n)
@@ -370,10 +370,13 @@ def census_comparison(ref: AuditContext, cand: AuditContext, pairing: Pairing) -
     return df
 
 
-def totals_comparison(ref: AuditContext, cand: AuditContext, pairing: Pairing) -> pd.DataFrame:
-    """Every total of both runs at each pair, their difference relative to the reference's scale."""
-    da = _tables.drift_details(ref)
-    db = _tables.drift_details(cand)
+def totals_comparison(ref: AuditContext, cand: AuditContext, pairing: Pairing,
+                      da: pd.DataFrame, db: pd.DataFrame) -> pd.DataFrame:
+    """Every total of both runs at each pair, their difference relative to the reference's scale.
+
+    ``da``, ``db``: the runs' :func:`audit.tables.drift_details` tables (made once by the caller,
+    which shows them too).
+    """
     key = ["species", "quantity"]
     rows = []
     ga = {k: g for k, g in da.groupby("snapshot")}

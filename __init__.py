@@ -17,13 +17,13 @@ _LAZY = {
     "open_run": ("app.api", "open_run"),
     "AuditedRun": ("app.api", "AuditedRun"),
     "CheckOutcome": ("app.api", "CheckOutcome"),
+    "CompareOutcome": ("app.api", "CompareOutcome"),
     "InputError": ("core.errors", "InputError"),
     "OptionError": ("core.errors", "OptionError"),
     "SwarmAuditError": ("core.errors", "SwarmAuditError"),
 }
 
-__all__ = ["open_run", "AuditedRun", "CheckOutcome", "InputError", "OptionError",
-           "SwarmAuditError", "__version__"]
+__all__ = [*_LAZY, "__version__"]
 
 
 def __getattr__(name):

@@ -328,11 +328,15 @@ class ReductionCache:
             self.writes += 1
         return True
 
-    def get_or_compute(self, signature, what: str, params, compute, on_damage=None):
-        """The cached value for (files, what, params), else ``compute()`` stored for next time."""
+    def get_or_compute(self, signature, what: str, params, compute, on_damage=None, *, material=None):
+        """The cached value for (files, what, params), else ``compute()`` stored for next time.
+
+        ``material``: the entry's key when the caller has made it already (:func:`entry_key`).
+        """
         if not self.enabled or not _has_files(signature):
             return compute()   # no file behind it (in memory, or gone): nothing to key on
-        material = self.key_material(signature, what, params)
+        if material is None:
+            material = self.key_material(signature, what, params)
         got = self.load(material, on_damage)
         if got is not _MISS:
             with self._lock:
@@ -424,25 +428,21 @@ class SnapshotCache:
         if held is not None and held[0] == digest:
             return held[1]
         disk = cache_for(self._ctx)
-        stored = persist and disk.enabled and _has_files(signature)
         notes = self._ctx.notes
         damaged = []
-        got = disk.load(material, damaged.append) if stored else _MISS
-        if isinstance(got, dict) and set(got) == {"value", "notes"}:
-            with disk._lock:
-                disk.hits += 1
-            for n in got["notes"]:
+        if persist:
+            before = len(notes)
+
+            def fresh():   # the value with the notes its computation added, stored together
+                return {"value": compute(), "notes": [str(n) for n in notes[before:]]}
+
+            got = disk.get_or_compute(signature, what, None, fresh, damaged.append, material=material)
+            for n in got["notes"]:   # a hit says what the computation said
                 if n not in notes:
                     notes.append(n)
             value = got["value"]
         else:
-            if stored:
-                with disk._lock:
-                    disk.misses += 1
-            before = len(notes)
             value = compute()
-            if stored:
-                disk.store(material, {"value": value, "notes": [str(n) for n in notes[before:]]})
         if damaged:
             note = (f"a damaged entry of the reduction cache ({disk.root}) was removed and "
                     "computed again")

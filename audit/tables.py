@@ -24,7 +24,7 @@ from .cache import cached_reduction, context_cache, layout_fingerprint
 from ..core.context import AuditContext
 from ..engine.pieces import read_in_pieces
 from ..engine.reduce import reduce, reduce_many
-from ..core.errors import OptionError
+from ..core.errors import InputError, OptionError
 from ..core.frame import is_clock_scalar, transient_columns
 from ..core.layout import assign_blocks
 
@@ -593,9 +593,9 @@ def validate_snapshots(ctx: AuditContext, allow_empty: bool = False) -> None:
 
     Every snapshot must hold particles unless ``allow_empty`` (``check --allow-empty``), and
     the position and id columns, which the totals do not read, must read cleanly (numbers in
-    every row, rows as long as the header): one extra read of those columns per snapshot.
+    every row, rows as long as the header): one extra read of those columns per snapshot file
+    version, remembered in the reduction cache like any other per-snapshot answer.
     """
-    from ..core.errors import InputError
     names = ctx.species_names()
     for i in range(len(ctx.run)):
         snap = ctx.run[i]
@@ -603,9 +603,14 @@ def validate_snapshots(ctx: AuditContext, allow_empty: bool = False) -> None:
         if not allow_empty and sum(f.length for f in frames) == 0:
             raise InputError(snap.path, "holds no particles",
                              "if the run may be empty at some snapshots, pass --allow-empty")
-        for f in frames:
-            for c in dict.fromkeys(list(f.position_names) + list(f.key_columns() or ())):
-                f.read_uncached(c)
+        cached_reduction(ctx, i, "readable", {}, lambda frames=frames: _read_cleanly(frames))
+
+
+def _read_cleanly(frames) -> bool:
+    for f in frames:
+        for c in dict.fromkeys(list(f.position_names) + list(f.key_columns() or ())):
+            f.read_uncached(c)
+    return True
 
 
 @dataclass

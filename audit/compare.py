@@ -116,9 +116,7 @@ def pair_snapshots(ref: AuditContext, cand: AuditContext, by: str = "step",
             big = float(np.max(np.abs(tr))) if tr.size else 0.0
             tol = 1e-6 * big if big > 0 else 1e-12
         else:
-            tol = float(time_tol)
-            if not (tol >= 0 and math.isfinite(tol)):
-                raise OptionError(f"--time-tol takes a number of at least 0, got '{time_tol}'")
+            tol = _check_tolerance(time_tol, "--time-tol", low_ok=True)
         # all candidate pairs within the tolerance, closest first, each snapshot used once
         near = [(abs(tr[i] - tc[j]), i, j) for i in range(nr) for j in
                 np.flatnonzero(np.abs(tc - tr[i]) <= tol).tolist()]
@@ -423,8 +421,8 @@ def _check_tolerance(value, option: str, low_ok: bool = False, upper=None):
     except (TypeError, ValueError):
         raise OptionError(f"{option} takes a number, got '{value}'") from None
     if not math.isfinite(v) or v < 0 or (v == 0 and not low_ok) or (upper is not None and v > upper):
-        raise OptionError(f"{option} takes a {'number in [0, 1]' if upper else 'positive number'}, "
-                          f"got '{value}'")
+        kind = "number in [0, 1]" if upper else "number of at least 0" if low_ok else "positive number"
+        raise OptionError(f"{option} takes a {kind}, got '{value}'")
     return v
 
 

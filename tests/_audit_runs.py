@@ -81,3 +81,17 @@ def write_npz_run(folder, snapshots) -> str:
             arrays[k] = np.array(v)
         np.savez(os.path.join(folder, f"snap_{i:04d}.npz"), **arrays)
     return os.fspath(folder)
+
+
+def folder_state(folder) -> dict:
+    """relative path -> sha256 of every file under ``folder``, and ``"dir"`` for every sub-folder:
+    equal before and after when nothing was written, changed or left behind."""
+    import hashlib
+    out = {}
+    for root, dirs, files in os.walk(folder):
+        for f in files:
+            p = os.path.join(root, f)
+            with open(p, "rb") as fh:
+                out[os.path.relpath(p, folder)] = hashlib.sha256(fh.read()).hexdigest()
+        out.update({os.path.relpath(os.path.join(root, d), folder): "dir" for d in dirs})
+    return out

@@ -2,10 +2,9 @@
 block -1 with a note, in every command; an export that fails leaves no half-written output.
 
 Outside references: numpy.isfinite / numpy.min over the finite values (the box and the counts
-the census must give), hashlib (an older export left untouched).
+the census must give), sha256 digests (an older export left untouched).
 """
 
-import hashlib
 import json
 import os
 
@@ -13,6 +12,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from _audit_runs import folder_state
 from swarmaudit.app.cli import build_parser, main
 from swarmaudit.app.export import ExportOptions, export_run
 from swarmaudit.app.options import context_from_options
@@ -114,16 +114,6 @@ def test_no_finite_position_at_all_is_bad_input(tmp_path, capsys):
     assert "Traceback" not in err
 
 
-def _digest(folder):
-    out = {}
-    for root, _, files in os.walk(folder):
-        for f in files:
-            p = os.path.join(root, f)
-            with open(p, "rb") as fh:
-                out[os.path.relpath(p, folder)] = hashlib.sha256(fh.read()).hexdigest()
-    return out
-
-
 @pytest.mark.parametrize("existing", [False, True])
 def test_failed_export_leaves_no_half_written_output(tmp_path, monkeypatch, existing):
     from swarmaudit.app import figures
@@ -133,7 +123,7 @@ def test_failed_export_leaves_no_half_written_output(tmp_path, monkeypatch, exis
                                       "--cells", "8,8", "--blocks", "2,2", *SMALL])
     if existing:      # an earlier complete export stays as it was
         export_run(context_from_options(args), ExportOptions.from_args(args), args)
-        before = _digest(out)
+        before = folder_state(out)
         assert "census.csv" in before
 
     def broken(*a, **k):
@@ -143,11 +133,11 @@ def test_failed_export_leaves_no_half_written_output(tmp_path, monkeypatch, exis
     with pytest.raises(RuntimeError):
         export_run(context_from_options(args), ExportOptions.from_args(args), args)
     if existing:
-        assert _digest(out) == before
+        assert folder_state(out) == before
         assert not [p for p in os.listdir(out) if p.startswith(".")]
     else:
         assert not out.exists()
     # through the command line: exit 3 for the internal error, and still nothing half-written
     assert main(["export", run, "--out", str(out), "--domain", "2,5,-1,1", "--cells", "8,8",
                  "--blocks", "2,2", *SMALL]) == 3
-    assert (_digest(out) == before) if existing else not out.exists()
+    assert (folder_state(out) == before) if existing else not out.exists()

@@ -1,17 +1,16 @@
 """An --out inside a run folder is refused, and a folder of swarmaudit's own tables is never a snapshot.
 
-Outside reference: the run's snapshots as written here (their count and steps), and hashlib
+Outside reference: the run's snapshots as written here (their count and steps), and sha256 digests
 for the unchanged run folder.
 """
 
-import hashlib
 import json
 import os
 import shutil
 
 import pytest
 
-from _audit_runs import drifting_plasma, write_npz_run
+from _audit_runs import drifting_plasma, folder_state, write_npz_run
 from swarmaudit.app.cli import main
 
 SMALL = ["--width", "240", "--height", "200", "--dpi", "40", "--quiet"]
@@ -23,26 +22,15 @@ def private_cache(tmp_path, monkeypatch):
     monkeypatch.setenv("SWARMAUDIT_CACHE", str(tmp_path / "cache"))
 
 
-def _tree(folder):
-    out = {}
-    for root, dirs, files in os.walk(folder):
-        for f in files:
-            p = os.path.join(root, f)
-            with open(p, "rb") as fh:
-                out[os.path.relpath(p, folder)] = hashlib.sha256(fh.read()).hexdigest()
-        out.update({os.path.relpath(os.path.join(root, d), folder): "dir" for d in dirs})
-    return out
-
-
 @pytest.mark.parametrize("where", ["audit", os.path.join("deeper", "audit")])
 def test_out_inside_the_run_folder_is_refused(tmp_path, capsys, where):
     run = write_npz_run(tmp_path / "run", drifting_plasma(n=60, snapshots=3, loss_at=None))
-    before = _tree(run)
+    before = folder_state(run)
     code = main(["export", run, "--out", os.path.join(run, where), *LAYOUT, *SMALL])
     err = capsys.readouterr().err
     assert code == 2
     assert "is inside the run folder" in err and "Traceback" not in err
-    assert _tree(run) == before, "nothing written into the run folder"
+    assert folder_state(run) == before, "nothing written into the run folder"
 
 
 def test_out_inside_the_folder_of_named_files_is_refused(tmp_path, capsys):

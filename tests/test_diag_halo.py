@@ -53,6 +53,14 @@ def _brute_force(pts, blocks, layout, width_cells):
     return np.bincount(rows[halo], minlength=layout.nblocks)
 
 
+def _halo_as_brute_force(pts, lay, width):
+    """halo_counts of ``pts`` in ``lay``, asserted equal to the brute-force count; returns the table."""
+    b = assign_blocks(pts, lay)
+    got = halo_counts(pts, b, lay, width_cells=width)
+    np.testing.assert_array_equal(got["halo"].to_numpy(), _brute_force(pts, b, lay, width))
+    return got
+
+
 def _nested_layout(periodic, d=2):
     """4×4 (×4) coarse blocks over [0, 1)^d, 16 cells a side; level-1 blocks, one across two
     coarse blocks, and a level-2 block inside a level-1 one; two ranks."""
@@ -78,9 +86,7 @@ def test_nested_layout_matches_brute_force(periodic, width):
     lay.validate()
     rng = np.random.default_rng(len(periodic) + int(10 * width))
     pts = rng.random((3000, 2))
-    b = assign_blocks(pts, lay)
-    got = halo_counts(pts, b, lay, width_cells=width)
-    np.testing.assert_array_equal(got["halo"].to_numpy(), _brute_force(pts, b, lay, width))
+    got = _halo_as_brute_force(pts, lay, width)
     assert 0 < got["halo"].sum() and (width > 2 or got["halo"].sum() < len(pts))
 
 
@@ -89,9 +95,7 @@ def test_nested_3d_layout_matches_brute_force(periodic):
     lay = _nested_layout(periodic, d=3)
     rng = np.random.default_rng(9)
     pts = rng.random((800, 3))
-    b = assign_blocks(pts, lay)
-    got = halo_counts(pts, b, lay, width_cells=1)
-    np.testing.assert_array_equal(got["halo"].to_numpy(), _brute_force(pts, b, lay, 1))
+    got = _halo_as_brute_force(pts, lay, 1)
 
 
 def test_a_coarse_particle_near_a_refined_block_inside_its_block():
@@ -128,9 +132,7 @@ def test_uneven_tiling_with_partly_shared_faces():
     lay = BlockLayout(lower, upper, 0, [0, 1, 1, 2, 2], [0, 0], [1, 1], [16, 16], (True, False))
     rng = np.random.default_rng(2)
     pts = rng.random((4000, 2))
-    b = assign_blocks(pts, lay)
-    got = halo_counts(pts, b, lay, width_cells=1.5)
-    np.testing.assert_array_equal(got["halo"].to_numpy(), _brute_force(pts, b, lay, 1.5))
+    got = _halo_as_brute_force(pts, lay, 1.5)
 
 
 def test_single_block_on_a_periodic_axis_is_its_own_neighbour():

@@ -109,17 +109,6 @@ def figure_box(width: int, height: int) -> tuple[int, int]:
     return (max(int(width * IMAGE_SHARE[0]), 16), max(int(height * IMAGE_SHARE[1]), 16))
 
 
-def figure_size(box: tuple[int, int]) -> tuple[int, int]:
-    """The exported figure size whose density image covers ``box`` pixels (inverse of figure_box)."""
-    w = math.ceil(box[0] / IMAGE_SHARE[0])
-    h = math.ceil(box[1] / IMAGE_SHARE[1])
-    while figure_box(w, h)[0] < box[0]:
-        w += 1
-    while figure_box(w, h)[1] < box[1]:
-        h += 1
-    return w, h
-
-
 def grid_size(box, particles: int | None, x_range, y_range, equal: bool) -> tuple[int, int]:
     """Bins of a view drawn into ``box`` pixels: one per pixel, coarser for few particles.
 
@@ -229,13 +218,6 @@ def range_problem(value, opening=None) -> str | None:
         if hi < olo - MAX_SPANS * ospan or lo > ohi + MAX_SPANS * ospan:
             return "the range is far away from the data"
     return None
-
-
-def usable_range(value, opening):
-    """``value`` when it is a range a view can draw around this data, else None."""
-    if value is None:
-        return None
-    return tuple(float(v) for v in value) if range_problem(value, opening) is None else None
 
 
 # ---------------------------------------------------------------------------------------------

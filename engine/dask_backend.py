@@ -27,7 +27,7 @@ import os
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -37,7 +37,7 @@ from ..core.errors import OptionError
 from ..diagnostics._colstats import finite_stats
 from ..core.frame import Frame
 from ..core.layout import BlockLayout, assign_blocks
-from .pieces import (Piece, column_bytes, column_dtype, frame_pieces,
+from .pieces import (Piece, piece_pool, column_bytes, column_dtype, frame_pieces,
                      frame_template, piece_frame, read_column)
 
 ENGINES = ("auto", "memory", "dask")
@@ -92,7 +92,6 @@ class DaskEngine:
     workers: int
     client: object | None = None
     address: str | None = None
-    _pool: ThreadPoolExecutor | None = field(default=None, repr=False)
 
     @property
     def scheduler(self):
@@ -157,14 +156,10 @@ class DaskEngine:
                 yield fut.result()
 
     def _threads(self) -> ThreadPoolExecutor:
-        if self._pool is None:
-            self._pool = ThreadPoolExecutor(self.workers, thread_name_prefix="swarmaudit-piece")
-        return self._pool
+        return piece_pool()   # the one piece pool of this process (engine.pieces)
 
     def close(self) -> None:
-        if self._pool is not None:
-            self._pool.shutdown(wait=False)
-            self._pool = None
+        """Nothing of its own to let go: the piece pool is shared by every engine of the process."""
 
 
 def _checked(fn, item, *args):

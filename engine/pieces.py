@@ -15,8 +15,10 @@ the whole column once per piece).
 from __future__ import annotations
 
 import math
+import os
 import threading
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Callable, Mapping
 
@@ -244,3 +246,26 @@ def frame_template(frame: Frame) -> Frame:
     return Frame(frame.species, frame.length, {c: _not_read for c in frame.columns},
                  units=frame.units, attrs=frame.attrs, source=frame.source,
                  role_map=frame.role_map, cache=False)
+
+
+# the one piece pool --------------------------------------------------------------------
+_pool_lock = threading.Lock()
+_pools: dict = {}
+
+
+def piece_workers() -> int:
+    """Threads of the piece pool: one per core, up to four."""
+    try:
+        return max(1, min(4, len(os.sched_getaffinity(0))))
+    except (AttributeError, OSError):
+        return max(1, min(4, os.cpu_count() or 1))
+
+
+def piece_pool() -> ThreadPoolExecutor:
+    """The threads that run tasks in this process (compiled passes release the GIL)."""
+    with _pool_lock:
+        pid = os.getpid()
+        pool = _pools.get(pid)
+        if pool is None:           # a forked worker does not inherit its parent's threads
+            pool = _pools[pid] = ThreadPoolExecutor(piece_workers(), thread_name_prefix="swarmaudit-piece")
+        return pool

@@ -20,7 +20,7 @@ engine or the number of workers, so the serial, threaded and dask runs of
 one accumulator on the same frames give the same result, bit for bit.
 
 Where (``where=``, else from the context): ``"serial"`` (this thread),
-``"threads"`` (the one piece pool of this process, :func:`piece_pool`), or
+``"threads"`` (the one piece pool of this process, :func:`engine.pieces.piece_pool`), or
 ``"dask"``: dask's own threaded scheduler, or a ``dask.distributed``
 scheduler when the context names one (``--scheduler``; its workers must see
 the same files at the same paths). The context's ``engine`` chooses as
@@ -31,15 +31,12 @@ fit in memory or a scheduler is given.
 
 from __future__ import annotations
 
-import os
-import threading
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 from ..core import interrupt
 from ..core.frame import Frame
 from ..diagnostics import accumulate
-from .pieces import Piece, frame_pieces, read_column
+from .pieces import Piece, frame_pieces, piece_pool, piece_workers, read_column
 
 #: pieces of one part run as one task at most: a task's state is folded piece by piece, so a few
 #: tasks per frame keep every worker busy without a state per piece to send back
@@ -197,26 +194,3 @@ def _on_cluster(eng, work) -> list:
         if nxt is not None:
             pending.append(client.submit(run_task, *nxt, pure=False))
     return out
-
-
-# the one piece pool --------------------------------------------------------------------
-_pool_lock = threading.Lock()
-_pools: dict = {}
-
-
-def piece_workers() -> int:
-    """Threads of the piece pool: one per core, up to four."""
-    try:
-        return max(1, min(4, len(os.sched_getaffinity(0))))
-    except (AttributeError, OSError):
-        return max(1, min(4, os.cpu_count() or 1))
-
-
-def piece_pool() -> ThreadPoolExecutor:
-    """The threads that run tasks in this process (compiled passes release the GIL)."""
-    with _pool_lock:
-        pid = os.getpid()
-        pool = _pools.get(pid)
-        if pool is None:           # a forked worker does not inherit its parent's threads
-            pool = _pools[pid] = ThreadPoolExecutor(piece_workers(), thread_name_prefix="swarmaudit-piece")
-        return pool

@@ -31,7 +31,7 @@ from ..core.context import AuditContext
 from ..core.errors import OptionError
 from ..core.frame import transient_columns
 from ..core.outputs import COMPARE_TABLE_NAMES
-from ..core.roles import MOMENTUM_ROLES, POSITION_ROLES, PROPER_VELOCITY_ROLES, VELOCITY_ROLES
+from ..core.roles import POSITION_ROLES
 from ..diagnostics import compare as _cmp
 from ..diagnostics.migration import DuplicateKeyError
 from ..engine.reduce import reduce
@@ -189,11 +189,6 @@ def _finish(rows, columns) -> pd.DataFrame:
     return df
 
 
-def _momentum_roles(frame) -> tuple[str, ...]:
-    kind = frame.momentum_kind()
-    return {"u": PROPER_VELOCITY_ROLES, "p": MOMENTUM_ROLES, "v": VELOCITY_ROLES}.get(kind, ())
-
-
 def _shared_roles(fa, fb, roles) -> list[tuple[str, str]]:
     """(reference column, candidate column) of each role both frames have."""
     out = []
@@ -227,7 +222,7 @@ def _particle_row(ctx, note, fa, fb, layout, where: str):
                  f"the reference and {fb.momentum_kind() or 'none'} in the candidate; momenta not compared")
         mom = []
     else:
-        mom = _shared_roles(fa, fb, _momentum_roles(fa))
+        mom = _shared_roles(fa, fb, fa.momentum_roles())
     wa, wb = fa.column_for("weight"), fb.column_for("weight")
     use_pos = len(pos) == layout.ndim
     acc = _cmp.ParticleComparison(layout if use_pos else None, (ka, kb),
@@ -252,7 +247,7 @@ def _distribution_rows(fa, fb, stamp, species):
     rows = []
     cols = _shared_roles(fa, fb, POSITION_ROLES)
     if fa.momentum_kind() == fb.momentum_kind():
-        cols += _shared_roles(fa, fb, _momentum_roles(fa))
+        cols += _shared_roles(fa, fb, fa.momentum_roles())
     with transient_columns([fa, fb]):
         wa, wb = _weights(fa), _weights(fb)
         for a, b in cols:

@@ -153,10 +153,13 @@ class Frame:
                 return kind
         return None
 
+    def momentum_roles(self) -> tuple[str, ...]:
+        """The roles of :meth:`momentum_kind` (``vx vy vz``, ``ux uy uz`` or ``px py pz``), or ()."""
+        return {"u": PROPER_VELOCITY_ROLES, "p": MOMENTUM_ROLES,
+                "v": VELOCITY_ROLES}.get(self.momentum_kind(), ())
+
     def momentum_names(self) -> list[str]:
-        kind = self.momentum_kind()
-        roles = {"u": PROPER_VELOCITY_ROLES, "p": MOMENTUM_ROLES, "v": VELOCITY_ROLES}.get(kind, ())
-        return [self.roles[r] for r in roles if r in self.roles]
+        return [self.roles[r] for r in self.momentum_roles() if r in self.roles]
 
     def key_columns(self) -> tuple[str, ...] | None:
         return self.role_map.key_columns(self.columns, self.roles)

@@ -159,11 +159,8 @@ class Totals(Accumulator):
         """The totals of ``frame``: weight, charge and mass from columns, else species attributes;
         compiled for large frames (``_kernels.TOTALS_MIN_SIZE`` rows), numpy for small ones."""
         kind = frame.momentum_kind()
-        axes = []
-        if kind:
-            roles = {"v": ("vx", "vy", "vz"), "u": ("ux", "uy", "uz"), "p": ("px", "py", "pz")}[kind]
-            axes = [(axis, frame.column_for(r)) for axis, r in zip("xyz", roles)
-                    if frame.column_for(r) is not None]
+        axes = [(axis, frame.column_for(r)) for axis, r in zip("xyz", frame.momentum_roles())
+                if frame.column_for(r) is not None]
         if compiled is None:
             compiled = len(frame) >= _kernels.TOTALS_MIN_SIZE
         return cls(_source(frame, "weight", 1.0), _source(frame, "charge", None),

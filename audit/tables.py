@@ -131,8 +131,13 @@ def _reduce(ctx: AuditContext, i: int, kind: str):
     """A per-snapshot reduction (``census`` or ``totals``), computed once per file version
     (the context's cache: memory, backed by disk)."""
     layout = ctx.layout(i) if kind == "census" else None
-    params = {"layout": layout_fingerprint(layout)} if layout is not None else {}
-    return cached_reduction(ctx, i, kind, params, lambda: _COMPUTE[kind](ctx, i, layout))
+    return cached_reduction(ctx, i, kind, _params(layout), lambda: _COMPUTE[kind](ctx, i, layout))
+
+
+def _params(layout) -> dict:
+    """What a per-snapshot reduction depends on besides the files and the context: the layout
+    (census); totals depend on nothing more. Every lookup of an entry uses this."""
+    return {"layout": layout_fingerprint(layout)} if layout is not None else {}
 
 
 def _compute_census(ctx: AuditContext, i: int, layout) -> dict:
@@ -166,7 +171,7 @@ def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
     cache = context_cache(ctx)
     # together only what is read in pieces: a batch must not hold several snapshots' columns
     later = [j for j in range(i + 1, min(i + TOTALS_AHEAD, len(ctx.run)))
-             if not cache.has(j, "totals", {}) and _in_pieces(ctx, j)] if _in_pieces(ctx, i) else []
+             if not cache.has(j, "totals", _params(None)) and _in_pieces(ctx, j)] if _in_pieces(ctx, i) else []
     if later:
         try:
             done = _totals_of(ctx, [i] + later)
@@ -174,7 +179,7 @@ def _compute_totals(ctx: AuditContext, i: int, layout) -> dict:
             done = None
         if done is not None:
             for j in later:
-                cache.put(j, "totals", {}, done[j])
+                cache.put(j, "totals", _params(None), done[j])
             return done[i]
     return _totals_of(ctx, [i])[i]
 

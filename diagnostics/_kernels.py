@@ -167,12 +167,164 @@ def _dense_summary(ka, kb, rec, block_a, block_b, blo, diag, d, xa, ya, za, xb, 
     return widest
 
 
+# Comparing two runs' particles with dense keys: the candidate's row, coordinates and momentum
+# are scattered into one record per key (write-only), so the pass over the reference finds all
+# it needs about a particle's partner in one cache line (separate gathers of the coordinates and
+# of the momenta would each miss the cache on every pair). Record field 0: 0 never seen, 1 + row
+# of b for a key of b not (yet) matched, -1 matched, -2 seen only in a. Per pair the displacement
+# (as _pairs gives it, bit for bit) and |du| (from |du|^2 as _momentum gives it); the finite
+# ones' largest values and compensated (Kahan) sums of squares on the way.
+def _kahan(s, c, v):
+    # compensated sum without a branch (a data-dependent branch would stall the loop's reads);
+    # the terms are squares, all of one sign, where Kahan's form is as good as Neumaier's
+    y = v - c
+    t = s + y
+    return t, (t - s) - y
+
+
+def _dense_pairs(ka, kb, rec, d, dm, xa, ya, za, xb, yb, zb, ua0, ua1, ua2, ub0, ub1, ub2, h, per,
+                 n, ib, disp, du, stats, sums):
+    nb = kb.shape[0]
+    dup_b = 0
+    for j in range(nb):
+        k = kb[j]
+        # the line is fetched for the write anyway; the test adds no stall between iterations
+        dup_b += rec[k, 0] != 0.0
+        rec[k, 0] = j + 1.0
+        if d > 0:
+            rec[k, 1] = xb[j]
+        if d > 1:
+            rec[k, 2] = yb[j]
+        if d > 2:
+            rec[k, 3] = zb[j]
+        if dm > 0:
+            rec[k, 1 + d] = ub0[j]
+        if dm > 1:
+            rec[k, 2 + d] = ub1[j]
+        if dm > 2:
+            rec[k, 3 + d] = ub2[j]
+    h0, h1, h2, p0, p1, p2, n0, n1, n2 = h[0], h[1], h[2], per[0], per[1], per[2], n[0], n[1], n[2]
+    m = 0
+    nl = 0
+    dup_a = 0
+    pbad = 0
+    ubad = 0
+    pmax = 0.0
+    ps, pc = 0.0, 0.0
+    umax = 0.0
+    us, uc = 0.0, 0.0
+    rs, rc = 0.0, 0.0
+    for i in range(ka.shape[0]):
+        k = ka[i]
+        r = rec[k, 0]
+        if r >= 1.0:
+            ib[m] = np.int64(r) - 1
+            if d > 0:
+                w = _axis_cells(xa[i], rec[k, 1], h0, p0, n0)
+                if d > 1:
+                    w = _wider(w, _axis_cells(ya[i], rec[k, 2], h1, p1, n1))
+                if d > 2:
+                    w = _wider(w, _axis_cells(za[i], rec[k, 3], h2, p2, n2))
+                disp[m] = w
+                if abs(w) < np.inf:
+                    if w > pmax:
+                        pmax = w
+                    ps, pc = _kahan(ps, pc, w * w)
+                else:
+                    pbad += 1
+            if dm > 0:
+                a = np.float64(ua0[i])
+                t = rec[k, 1 + d] - a
+                s = t * t
+                q = a * a
+                if dm > 1:
+                    a = np.float64(ua1[i])
+                    t = rec[k, 2 + d] - a
+                    s += t * t
+                    q += a * a
+                if dm > 2:
+                    a = np.float64(ua2[i])
+                    t = rec[k, 3 + d] - a
+                    s += t * t
+                    q += a * a
+                du[m] = np.sqrt(s)
+                if abs(s) < np.inf and abs(q) < np.inf:
+                    if s > umax:
+                        umax = s
+                    us, uc = _kahan(us, uc, s)
+                    rs, rc = _kahan(rs, rc, q)
+                else:
+                    ubad += 1
+            m += 1
+            rec[k, 0] = -1.0
+        elif r == 0.0:
+            nl += 1
+            rec[k, 0] = -2.0
+        else:
+            dup_a += 1
+    stats[0] = m
+    stats[1] = nl
+    stats[2] = nb - dup_b - m       # distinct keys of b not matched
+    stats[3] = dup_a
+    stats[4] = dup_b                # rows of b repeating a key already seen
+    stats[5] = pbad
+    stats[6] = ubad
+    sums[0] = pmax
+    sums[1] = ps
+    sums[2] = np.sqrt(umax)
+    sums[3] = us
+    sums[4] = rs
+
+
+def dense_pairs(ka, kb, span, pa, pb, layout, mom_a, mom_b):
+    """Match dense keys and measure each pair in one compiled pass.
+
+    ``pa``/``pb`` coordinate arrays (or None: no displacement), ``mom_a``/``mom_b``
+    momentum components (possibly empty). Returns ``("dup", side, count)``, or a dict:
+    ``ib`` the matched rows of b, in the order of their partners in a (a's matched rows are not
+    kept: with nothing lost they are ``arange(na)``); per pair ``disp``, the
+    displacement in cells as :func:`matched_pairs` gives it, and ``du`` = ``|u_b - u_a|``
+    (None without positions / momenta); ``lost``, ``created`` the numbers of keys only in a
+    and only in b; over the pairs whose values are finite, ``position`` = (non-finite count,
+    largest, Σ disp²) and ``momentum`` = (non-finite count, largest |du|, Σ|du|², Σ|u_a|²),
+    the sums compensated.
+    """
+    na, nb = ka.shape[0], kb.shape[0]
+    d, pa, pb, h, per, n = _geometry(pa, pb, layout)
+    dm = len(mom_a)
+    if dm:
+        dt = np.result_type(*[np.asarray(u).dtype for u in mom_a], *[np.asarray(u).dtype for u in mom_b])
+        ua = [np.ascontiguousarray(u, dtype=dt) for u in mom_a]
+        ub = [np.ascontiguousarray(u, dtype=dt) for u in mom_b]
+        ua, ub = (ua + [ua[0]] * 3)[:3], (ub + [ub[0]] * 3)[:3]
+    else:
+        ua = ub = [np.zeros(1)] * 3
+    rec = np.zeros((span, 1 + d + dm))
+    k = min(na, nb)
+    ib = np.empty(k, dtype=np.int64)
+    disp, du = np.empty(k if d else 0), np.empty(k if dm else 0)
+    stats = np.zeros(7, dtype=np.int64)
+    sums = np.zeros(5)
+    _get("dense_pairs")(np.ascontiguousarray(ka), np.ascontiguousarray(kb), rec, d, dm, *pa, *pb,
+                        *ua, *ub, h, per, n, ib, disp, du, stats, sums)
+    del rec
+    m, nl, nc, dup_a, dup_b, pbad, ubad = (int(v) for v in stats)
+    if dup_b:
+        return ("dup", "second", dup_b)
+    if dup_a:
+        return ("dup", "first", dup_a)
+    return {"ib": _trim(ib, m), "disp": _trim(disp, m) if d else None,
+            "du": _trim(du, m) if dm else None, "lost": nl, "created": nc,
+            "position": (pbad, float(sums[0]), float(sums[1])),
+            "momentum": (ubad, float(sums[2]), float(sums[3]), float(sums[4]))}
+
+
 def _get(name):
     with _lock:
         if name not in _compiled:
             import numba
             g = globals()
-            for helper in ("_axis_cells", "_wider", "_fin", "_terms", "_fill"):
+            for helper in ("_axis_cells", "_wider", "_fin", "_terms", "_fill", "_kahan"):
                 if not hasattr(g[helper], "py_func"):
                     g[helper] = numba.njit(nogil=True, inline="always")(g[helper])
             if name == "totals_file":

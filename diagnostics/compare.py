@@ -27,7 +27,7 @@ import numpy as np
 from ..core.layout import BlockLayout
 from . import _kernels
 from .accumulate import Accumulator
-from .migration import match_keys, matched_displacement
+from .migration import DuplicateKeyError, key_plan, match_keys, matched_displacement
 
 #: particles named as differing most, per species and snapshot
 WORST = 10
@@ -299,32 +299,43 @@ def _plain(v):
 
 
 def _pair_stats(keys_cand, ia, ib, pos_ref, pos_cand, mom_ref, mom_cand, layout, extra_ref, extra_cand,
-                worst, gathered=False) -> PairStats:
-    m = int(ia.shape[0])
+                worst, gathered=False, measured=None) -> PairStats:
+    # ``measured``: what kernels.dense_pairs measured already (per pair and summed); ``ia``
+    # may then be None (only the extra columns would need it, and there are none)
+    m = int(ib.shape[0])
     pos_ref, pos_cand = [np.asarray(p) for p in pos_ref], [np.asarray(p) for p in pos_cand]
     mom_ref, mom_cand = [np.asarray(p) for p in mom_ref], [np.asarray(p) for p in mom_cand]
     out = PairStats(pairs=m, worst=worst)
     if m == 0:
         return out
-    if pos_ref and layout is not None and len(pos_ref) == len(pos_cand) == layout.ndim:
-        disp = matched_displacement(pos_ref, pos_cand, ia, ib, layout)
-        fin = np.isfinite(disp)
-        out.position_nonfinite = int(m - np.count_nonzero(fin))
+    if _positions_fit(pos_ref, pos_cand, layout):
+        if measured is not None:
+            disp = measured["disp"]
+            out.position_nonfinite, pmax, psum = measured["position"]
+        else:
+            disp = matched_displacement(pos_ref, pos_cand, ia, ib, layout)
+            fin = np.isfinite(disp)
+            out.position_nonfinite = int(m - np.count_nonzero(fin))
+            pmax = float(np.max(disp, where=fin, initial=0.0))
+            psum = float(np.sum(np.square(disp, where=fin, out=np.zeros(m))))
         if out.position_nonfinite < m:
-            out.position_max = float(np.max(disp, where=fin, initial=0.0))
-            out.position_sumsq = float(np.sum(np.square(disp, where=fin, out=np.zeros(m))))
+            out.position_max, out.position_sumsq = pmax, psum
     else:
         disp = np.full(m, np.nan)
         out.position_nonfinite = m
-    if mom_ref and len(mom_ref) == len(mom_cand):
-        du, uref = _momentum_terms(ia, ib, mom_ref, mom_cand, gathered)
-        fin = np.isfinite(du) & np.isfinite(uref)
-        out.momentum_nonfinite = int(m - np.count_nonzero(fin))
+    if _momenta_fit(mom_ref, mom_cand):
+        if measured is not None:
+            du = measured["du"]
+            out.momentum_nonfinite, umax, usum, rsum = measured["momentum"]
+        else:
+            du, uref = _momentum_terms(ia, ib, mom_ref, mom_cand, gathered)
+            fin = np.isfinite(du) & np.isfinite(uref)
+            out.momentum_nonfinite = int(m - np.count_nonzero(fin))
+            umax = float(np.sqrt(np.max(du, where=fin, initial=0.0)))
+            usum, rsum = float(np.sum(du, where=fin)), float(np.sum(uref, where=fin))
+            du = np.sqrt(du, out=du)
         if out.momentum_nonfinite < m:
-            out.momentum_max = float(np.sqrt(np.max(du, where=fin, initial=0.0)))
-            out.momentum_sumsq = float(np.sum(du, where=fin))
-            out.momentum_ref_sumsq = float(np.sum(uref, where=fin))
-        du = np.sqrt(du, out=du)
+            out.momentum_max, out.momentum_sumsq, out.momentum_ref_sumsq = umax, usum, rsum
     else:
         du = np.full(m, np.nan)
         out.momentum_nonfinite = m
@@ -348,6 +359,14 @@ def _pair_stats(keys_cand, ia, ib, pos_ref, pos_cand, mom_ref, mom_cand, layout,
     out.worst_position = disp[top]
     out.worst_momentum = du[top]
     return out
+
+
+def _positions_fit(pos_ref, pos_cand, layout) -> bool:
+    return bool(pos_ref) and layout is not None and len(pos_ref) == len(pos_cand) == layout.ndim
+
+
+def _momenta_fit(mom_ref, mom_cand) -> bool:
+    return bool(mom_ref) and len(mom_ref) == len(mom_cand)
 
 
 def _momentum_terms(ia, ib, mom_ref, mom_cand, gathered):
@@ -376,14 +395,52 @@ def compare_particles(keys_ref, keys_cand, pos_ref, pos_cand, mom_ref, mom_cand,
     Positions are compared in level-0 cells of ``layout`` (minimum image on
     its periodic axes); momenta by ``|u_cand - u_ref|``.
     """
-    m = match_keys(keys_ref, keys_cand)
-    out = _pair_stats(keys_cand, m.ia, m.ib, pos_ref, pos_cand, mom_ref, mom_cand, layout,
-                      extra_ref, extra_cand, worst)
-    out.only_ref = int(m.lost.size)
-    out.only_cand = int(m.created.size)
+    got = _dense_pairs(keys_ref, keys_cand, pos_ref, pos_cand, mom_ref, mom_cand, layout)
+    if isinstance(got, dict):
+        ib, only_ref, only_cand = got["ib"], got["lost"], got["created"]
+        # the reference's matched rows: all of them in order, or (some lost) not needed, as
+        # the runs then differ whatever the extra columns say
+        ia = np.arange(ib.shape[0]) if only_ref == 0 else None
+        if ia is None:
+            extra_ref, extra_cand = (), ()
+    else:
+        m = got if got is not None else match_keys(keys_ref, keys_cand)
+        ia, ib, only_ref, only_cand = m.ia, m.ib, m.lost.size, m.created.size
+        got = None
+    out = _pair_stats(keys_cand, ia, ib, pos_ref, pos_cand, mom_ref, mom_cand, layout,
+                      extra_ref, extra_cand, worst, measured=got)
+    out.only_ref = int(only_ref)
+    out.only_cand = int(only_cand)
     if out.only_ref or out.only_cand:
         out.identical = False
     return out
+
+
+def _dense_pairs(keys_ref, keys_cand, pos_ref, pos_cand, mom_ref, mom_cand, layout):
+    """What :func:`_kernels.dense_pairs` measures in its one compiled match-and-measure pass; where
+    it does not apply, the match made by sorting (keys not dense) or None (small inputs, no
+    numba, more than 3 axes, nothing to measure).
+
+    The same pairs and per-pair values as :func:`match_keys` with the separate measures, bit for
+    bit, and the same sums within rounding (compensated there, pairwise here); it only reads
+    each candidate particle's record once instead of gathering every column.
+    """
+    n = max(_length(keys_ref), _length(keys_cand))
+    pos_ok, mom_ok = _positions_fit(pos_ref, pos_cand, layout), _momenta_fit(mom_ref, mom_cand)
+    if (not _kernels.available or n < _kernels.MIN_SIZE or (pos_ok and len(pos_ref) > 3)
+            or (mom_ok and len(mom_ref) > 3) or not (pos_ok or mom_ok)):
+        return None
+    plan = key_plan(keys_ref, keys_cand)
+    if plan[0] != "dense":
+        return plan[1]          # the match, made by sorting: measured the separate way
+    pa = [np.asarray(p) for p in pos_ref] if pos_ok else None
+    pb = [np.asarray(p) for p in pos_cand] if pos_ok else None
+    got = _kernels.dense_pairs(plan[1], plan[2], plan[3], pa, pb, layout if pos_ok else None,
+                               [np.asarray(u) for u in mom_ref] if mom_ok else [],
+                               [np.asarray(u) for u in mom_cand] if mom_ok else [])
+    if isinstance(got, tuple):
+        raise DuplicateKeyError(got[2], got[1])
+    return got
 
 
 # the accumulator -------------------------------------------------------------------------------

@@ -193,7 +193,7 @@ def _sorted_match(ka, kb):
     return KeyMatch(ia, ib.astype(np.int64), lost, created)
 
 
-def _plan(keys_a, keys_b):
+def key_plan(keys_a, keys_b):
     """("dense", ka, kb, span) when the keys pack into a dense range, else ("done", KeyMatch)."""
     comps_a, comps_b = _components(keys_a), _components(keys_b)
     if len(comps_a) != len(comps_b):
@@ -224,7 +224,7 @@ def match_keys(keys_a, keys_b) -> KeyMatch:
     ``(id, creator_rank)``). Keys that are NaN never match. Raises
     :class:`DuplicateKeyError` when a key repeats within a snapshot.
     """
-    plan = _plan(keys_a, keys_b)
+    plan = key_plan(keys_a, keys_b)
     if plan[0] == "done":
         return plan[1]
     return _dense_match(*plan[1:])
@@ -395,7 +395,7 @@ def migrate(keys_a, keys_b, block_a, block_b, pos_a=None, pos_b=None, layout: Bl
     fast = (_kernels.available and max(block_a.shape[0], block_b.shape[0]) >= _kernels.MIN_SIZE
             and (not with_pos or (layout.ndim <= 3 and len(pa) == len(pb) == layout.ndim)))
     nsteps = int(steps) if steps is not None and np.isfinite(steps) and steps >= 1 else 1
-    plan = _plan(keys_a, keys_b) if fast else None
+    plan = key_plan(keys_a, keys_b) if fast else None
     notes = []
     max_disp, over, nonfinite = np.nan, 0, 0
     got = None

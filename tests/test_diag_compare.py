@@ -243,3 +243,64 @@ def test_momentum_kernel_equals_numpy_path():
     want_ref = sum(a[ia].astype(float) ** 2 for a in ua)
     np.testing.assert_allclose(du, want_du, rtol=1e-12)
     np.testing.assert_allclose(uref, want_ref, rtol=1e-12)
+
+
+def _fields(s: PairStats):
+    return (s.pairs, s.only_ref, s.only_cand, s.position_max, s.position_nonfinite, s.momentum_max,
+            s.momentum_nonfinite, s.identical, list(s.worst_key), list(s.worst_position),
+            list(s.worst_momentum))
+
+
+@pytest.mark.parametrize("case", ["3d-float32", "nonfinite", "momenta-only", "positions-only", "identical"])
+def test_one_pass_match_equals_separate_measures(case, monkeypatch):
+    # the compiled match-and-measure pass against match_keys plus the separate per-pair measures
+    # (forced by raising the size threshold): the same pairs and values, sums within rounding
+    need_that(_kernels.available, "numba is not installed: no compiled comparison kernel")
+    rng = np.random.default_rng(11)
+    n = _kernels.MIN_SIZE + 5000
+    d = 3 if case == "3d-float32" else 2
+    lay = regular_layout([0, 1] * d, [16] * d, [2] * d, periodic=("x",))
+    dt = np.float32 if case == "3d-float32" else np.float64
+    pos = [rng.random(n).astype(dt) for _ in range(d)]
+    mom = [rng.normal(size=n).astype(dt) for _ in range(d)]
+    ids = rng.permutation(2 * n)[:n]                      # dense enough for the id-indexed match
+    if case == "identical":
+        keep, cand_ids = np.arange(n), ids
+    else:
+        keep = np.flatnonzero(rng.random(n) > 0.01)       # 1 % only in the reference
+        cand_ids = np.concatenate([ids[keep], 2 * n + np.arange(300)])   # 300 only in the candidate
+    order = rng.permutation(cand_ids.size)
+    extra = rng.random(cand_ids.size - keep.size)
+
+    def cand(a, jitter):
+        b = np.concatenate([a[keep] + (jitter * rng.normal(size=keep.size)).astype(a.dtype),
+                            extra.astype(a.dtype)])
+        return b[order]
+
+    pb = [cand(p, 0 if case == "identical" else 1e-3) for p in pos]
+    ub = [cand(u, 0 if case == "identical" else 1e-4) for u in mom]
+    if case == "nonfinite":
+        pos[0][:50] = np.nan
+        ub[1][7] = np.inf
+    pa_, pb_ = ([], []) if case == "momenta-only" else (pos, pb)
+    ua_, ub_ = ([], []) if case == "positions-only" else (mom, ub)
+    args = (ids, cand_ids[order], pa_, pb_, ua_, ub_, lay)
+    fused = compare_particles(*args)
+    monkeypatch.setattr(_kernels, "MIN_SIZE", 10 ** 12)
+    separate = compare_particles(*args)
+    np.testing.assert_equal(_fields(fused), _fields(separate))      # NaN equals NaN here
+    for f in ("position_sumsq", "momentum_sumsq", "momentum_ref_sumsq"):
+        assert getattr(fused, f) == pytest.approx(getattr(separate, f), rel=1e-12)
+    assert fused.identical == (case == "identical")
+
+
+@pytest.mark.parametrize("side", ["first", "second"])
+def test_one_pass_match_names_repeated_ids(side):
+    need_that(_kernels.available, "numba is not installed: no compiled comparison kernel")
+    n = _kernels.MIN_SIZE + 10
+    lay = regular_layout([0, 1], [10], [1])
+    ka, kb = np.arange(n), np.arange(n)
+    (ka if side == "first" else kb)[5] = 6
+    with pytest.raises(DuplicateKeyError) as err:
+        compare_particles(ka, kb, [np.zeros(n)], [np.zeros(n)], [], [], lay)
+    assert err.value.side == side and err.value.count == 1

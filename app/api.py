@@ -284,19 +284,21 @@ class AuditedRun:
         return CheckOutcome(bool(res.ok), float(rtol), failures, table, list(res.lines))
 
     def compare(self, candidate, *, pair: str = "step", time_tol=None, mode: str = "auto",
-                position_cells=None, ks_p=None, rtol=None, **options) -> CompareOutcome:
+                position_cells=None, ks_p=None, rtol=None, ks_correction: str = "holm",
+                **options) -> CompareOutcome:
         """``swarmaudit compare REF CAND`` with this run as the reference.
 
         ``candidate`` is another :class:`AuditedRun`, or a path opened with
         ``options`` (the run options of :func:`open_run`). ``pair`` is
         ``step`` or ``time``; ``mode`` ``auto``, ``particles``,
         ``distributions`` or ``both``; ``position_cells``, ``ks_p`` and
-        ``rtol`` are the gate's tolerances, as on the command line.
+        ``rtol`` are the gate's tolerances and ``ks_correction`` (``holm``, ``bh``
+        or ``none``) the correction of its p-values, as on the command line.
         """
         from ..audit import compare as C
         other = candidate if isinstance(candidate, AuditedRun) else open_run(candidate, **options)
         comp = C.compare_runs(self.ctx, other.ctx, pair=pair, time_tol=time_tol, mode=mode)
-        result = C.gate(comp, position_cells, ks_p, rtol)
+        result = C.gate(comp, position_cells, ks_p, rtol, ks_correction)
         lines = [f"reference: {self.ctx.run.source}", f"candidate: {other.ctx.run.source}",
                  *C.summary_lines(comp), *result.lines]
         return CompareOutcome(bool(result.ok), comp, pd.DataFrame(result.failures), lines)

@@ -46,7 +46,12 @@ def add_compare_parser(sub, physics_options, positive_float) -> argparse.Argumen
                    help="fail when a matched particle moved more than X level-0 cells, or a particle "
                         "is in one run only")
     t.add_argument("--ks-p", type=float, metavar="P",
-                   help="fail when a KS or block-census chi-square p-value is below P")
+                   help="fail when a KS or block-census chi-square p-value is below P, after the "
+                        "correction for testing many columns, species and snapshots at once")
+    t.add_argument("--ks-correction", choices=("holm", "bh", "none"), default="holm",
+                   help="that correction: holm (default; the chance of any false failure stays "
+                        "below P), bh (Benjamini-Hochberg: the expected share of false failures "
+                        "among them), none")
     t.add_argument("--rtol", type=float, metavar="R",
                    help="fail when a relative momentum difference or a checked total differs by more than R")
     p.add_argument("--out", metavar="DIR", help="write the compare_*.csv tables, figures and report.html")
@@ -78,7 +83,7 @@ def run_compare(args, out=None, err=None) -> int:
     if args.out:
         _guard_out(args.out, (ref, cand), args)
     comp = C.compare_runs(ref, cand, pair=args.pair, time_tol=args.time_tol, mode=args.mode)
-    result = C.gate(comp, args.position_cells, args.ks_p, args.rtol)
+    result = C.gate(comp, args.position_cells, args.ks_p, args.rtol, args.ks_correction)
     if not args.quiet:
         print(f"reference: {ref.run.source}", file=out)
         print(f"candidate: {cand.run.source}", file=out)

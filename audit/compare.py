@@ -434,7 +434,7 @@ def _when(row) -> str:
     return f"reference snapshot {i}{at} / candidate snapshot {j}" + (f" (step {sc})" if sc is not None else "")
 
 
-def gate(comp: Comparison, position_cells=None, ks_p=None, rtol=None) -> GateResult:
+def gate(comp: Comparison, position_cells=None, ks_p=None, rtol=None, correction: str = "holm") -> GateResult:
     """Does every paired snapshot agree within the tolerances given?
 
     * a species in one run only always fails (measure ``species``);
@@ -443,7 +443,10 @@ def gate(comp: Comparison, position_cells=None, ks_p=None, rtol=None) -> GateRes
     * ``rtol``: a largest relative momentum difference above it (``momentum``), and a
       total (those ``check`` judges) whose relative difference exceeds it (``total``);
     * ``ks_p``: a KS p-value below it (``ks``) and a census chi-square p-value below it
-      (``census``).
+      (``census``), the p-values of all these tests adjusted together by ``correction``
+      (:data:`diagnostics.compare.CORRECTIONS`; Holm's by default): at ``--ks-p 0.01`` a
+      thousand tests of runs that agree fail by chance once in a hundred comparisons,
+      not about ten times in each.
     """
     position_cells = _check_tolerance(position_cells, "--position-cells", low_ok=True)
     rtol = _check_tolerance(rtol, "--rtol", low_ok=True)
@@ -471,19 +474,32 @@ def gate(comp: Comparison, position_cells=None, ks_p=None, rtol=None) -> GateRes
             v = r["max_relative_momentum"]
             if np.isfinite(v) and v > rtol:
                 fail(r, s, "momentum", f"largest relative momentum difference {v:.4g} > {rtol:g} (--rtol)")
+    if correction not in _cmp.CORRECTIONS:
+        raise OptionError(f"--ks-correction takes one of {', '.join(_cmp.CORRECTIONS)}, got '{correction}'")
     if ks_p is not None:
         d = comp.distributions
-        for _, r in d.iterrows():
-            if np.isfinite(r["ks_pvalue"]) and r["ks_pvalue"] < ks_p:
-                fail(r, r["species"], f"ks:{r['column']}",
-                     f"KS test of {r['column']}: p = {r['ks_pvalue']:.3g} < {ks_p:g} (--ks-p; "
-                     f"statistic {r['ks_statistic']:.4g})")
         c = comp.census.drop_duplicates(["ref_snapshot", "cand_snapshot", "species"])
-        for _, r in c.iterrows():
-            if r["species"] != ALL and np.isfinite(r["chi2_pvalue"]) and r["chi2_pvalue"] < ks_p:
+        c = c[c["species"] != ALL]
+        raw = np.concatenate([d["ks_pvalue"].to_numpy(float), c["chi2_pvalue"].to_numpy(float)])
+        adj = _cmp.adjust_pvalues(raw, correction)
+        tests = int(np.count_nonzero(np.isfinite(raw)))
+        how = {"holm": "Holm", "bh": "Benjamini-Hochberg"}.get(correction)
+
+        def p_text(k):
+            if how is None:
+                return f"p = {raw[k]:.3g}"
+            return f"p = {raw[k]:.3g}, {adj[k]:.3g} after {how}'s correction over {tests} tests"
+
+        for k, (_, r) in enumerate(d.iterrows()):
+            if np.isfinite(adj[k]) and adj[k] < ks_p:
+                fail(r, r["species"], f"ks:{r['column']}",
+                     f"KS test of {r['column']}: {p_text(k)} < {ks_p:g} (--ks-p; "
+                     f"statistic {r['ks_statistic']:.4g})")
+        for k, (_, r) in enumerate(c.iterrows(), start=len(d)):
+            if np.isfinite(adj[k]) and adj[k] < ks_p:
                 fail(r, r["species"], "census",
                      f"block census differs: chi-square {r['chi2']:.4g} on {int(r['chi2_dof'])} degrees of "
-                     f"freedom, p = {r['chi2_pvalue']:.3g} < {ks_p:g} (--ks-p)")
+                     f"freedom, {p_text(k)} < {ks_p:g} (--ks-p)")
     if rtol is not None and len(comp.totals):
         t = comp.totals
         judged = set(_tables.checked_pairs(t.rename(columns={"ref_value": "value"})))
@@ -508,7 +524,8 @@ def gate(comp: Comparison, position_cells=None, ks_p=None, rtol=None) -> GateRes
         if len(found) > 1:
             lines.append(f"{len(found) - 1} more finding(s); see the compare_*.csv tables")
     else:
-        given = [f"{k.replace('_', '-')} {v:g}" for k, v in tol.items() if v is not None]
+        given = [f"{k.replace('_', '-')} {v:g}" + (f" ({correction} correction)" if k == "ks_p" else "")
+                 for k, v in tol.items() if v is not None]
         what = ", ".join(given) if given else "no tolerance given: only species are gated"
         ident = bool(len(p)) and bool(p["identical"].all()) and not comp.missing
         lines.append(f"ok: {len(pr.pairs)} paired snapshot(s) agree ({what})"

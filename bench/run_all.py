@@ -9,6 +9,8 @@ Gathers the rows of
   x-y image against datashader alone and against ``numpy.histogram2d``;
 * ``bench_diagnostics.py``: census against one numpy pass, matching against
   ``numpy.argsort`` and ``pandas.merge``;
+* ``bench_compare.py``: particle-by-particle comparison of two runs against
+  ``migrate`` on the same pair (both an id match);
 * ``bench_io.py``: cold open + first frame against h5py + datashader, drift
   over a run against raw h5py reads (and reopened through the cache);
 * ``bench_scale.py``: 100 M particles over 16 files through dask against ten
@@ -103,6 +105,8 @@ def gather(args) -> tuple[list[tuple[str, list[dict]]], list[str], list[str]]:
     bd = _module("bench_diagnostics")
     if bd is not None and hasattr(bd, "run"):
         section("diagnostics (bench_diagnostics.py)", lambda: bd.run(args.n, args.repeat))
+    import bench_compare
+    section("run comparison (bench_compare.py)", lambda: bench_compare.run(args.n, args.repeat))
     import bench_io
     section("reading (bench_io.py)",
             lambda: bench_io.run(args.n, args.snapshots, args.drift_n, args.repeat))

@@ -153,6 +153,40 @@ def census_chi2(ref_counts, cand_counts) -> tuple[float, int, float]:
     return chi2, dof, float(_chi2.sf(chi2, dof))
 
 
+# many tests at once ------------------------------------------------------------------------
+#: corrections for testing many columns, species and snapshots at once
+CORRECTIONS = ("holm", "bh", "none")
+
+
+def adjust_pvalues(pvalues, method: str = "holm") -> np.ndarray:
+    """P-values adjusted for testing them all at once (NaN stays NaN and does not count).
+
+    ``holm``: Holm's step-down correction, which holds the chance of any false failure
+    at the level (Holm 1979): sorted ascending, ``p(i) * (m - i + 1)``, made monotone
+    and capped at 1. ``bh``: Benjamini–Hochberg's false discovery rate
+    (``scipy.stats.false_discovery_control``). ``none``: as given.
+    """
+    p = np.asarray(pvalues, dtype=np.float64)
+    if method not in CORRECTIONS:
+        raise ValueError(f"correction is one of {', '.join(CORRECTIONS)}, got '{method}'")
+    out = p.copy()
+    fin = np.isfinite(p)
+    m = int(np.count_nonzero(fin))
+    if method == "none" or m == 0:
+        return out
+    q = p[fin]
+    if method == "bh":
+        from scipy.stats import false_discovery_control
+        out[fin] = false_discovery_control(q, method="bh")
+        return out
+    order = np.argsort(q, kind="stable")
+    scaled = np.minimum(1.0, q[order] * (m - np.arange(m)))
+    adj = np.empty(m)
+    adj[order] = np.maximum.accumulate(scaled)
+    out[fin] = adj
+    return out
+
+
 # particle by particle ---------------------------------------------------------------------
 @dataclass
 class PairStats:

@@ -241,3 +241,26 @@ def test_bad_input_exits_2(two_stream_runs, capsys, tmp_path):
     code, _, err = _run(capsys, "compare", str(r / "ref"), str(r / "dt"), "--pair", "step",
                         "--position-cells", "1")
     assert code in (0, 1)                            # step 0 pairs; the rest are listed unpaired
+
+
+def test_ks_gate_corrects_for_many_tests():
+    # two independent draws of the same distributions: 3 snapshots x 2 species x 4 columns = 24
+    # KS tests plus 6 census tests, all of true null hypotheses. Uncorrected at p = 0.5 about half
+    # of them fail; after Holm's or Benjamini-Hochberg's correction none may (common practice:
+    # correct a family of tests before gating on any of them)
+    ref = context(_snaps(seed=3), LAY)
+    comp = C.compare_runs(ref, context(_snaps(seed=4), LAY), mode="distributions")
+    raw = C.gate(comp, ks_p=0.5, correction="none")
+    assert not raw.ok and len(raw.failures) >= 5
+    holm = C.gate(comp, ks_p=0.5)
+    assert holm.ok and "holm correction" in holm.lines[-1]
+    assert C.gate(comp, ks_p=0.5, correction="bh").ok
+    # a real difference still fails after the correction, and the message names both p-values
+    hot = _snaps(seed=4)
+    for snap in hot:
+        snap["species"]["e"][0]["vx"] = snap["species"]["e"][0]["vx"] * 2.0
+    res = C.gate(C.compare_runs(ref, context(hot, LAY), mode="distributions"), ks_p=0.01)
+    assert not res.ok and res.failures[0]["measure"] == "ks:vx"
+    assert "after Holm's correction over" in res.failures[0]["text"]
+    with pytest.raises(OptionError):
+        C.gate(comp, ks_p=0.5, correction="sidak")

@@ -17,7 +17,8 @@ from scipy import stats
 from swarmaudit.core.layout import regular_layout
 from swarmaudit.diagnostics import _kernels
 from swarmaudit.diagnostics.compare import (PairStats, census_chi2, compare_particles,
-                                            distribution_distance, effective_size, ks_pvalue,
+                                            adjust_pvalues, distribution_distance, effective_size,
+                                            ks_pvalue,
                                             pair_stats)
 from swarmaudit.diagnostics.migration import DuplicateKeyError
 
@@ -304,3 +305,47 @@ def test_one_pass_match_names_repeated_ids(side):
     with pytest.raises(DuplicateKeyError) as err:
         compare_particles(ka, kb, [np.zeros(n)], [np.zeros(n)], [], [], lay)
     assert err.value.side == side and err.value.count == 1
+
+
+# many tests at once ------------------------------------------------------------------------
+def test_holm_worked_example():
+    # Holm (1979), step-down, worked by hand (from memory of the method): sorted p 0.005, 0.01,
+    # 0.03, 0.04 times m - i + 1 = 4, 3, 2, 1 -> 0.02, 0.03, 0.06, 0.04 -> monotone 0.06 for the last
+    got = adjust_pvalues([0.01, 0.04, 0.03, 0.005], "holm")
+    np.testing.assert_allclose(got, [0.03, 0.06, 0.06, 0.02])
+    np.testing.assert_array_equal(adjust_pvalues([0.2, np.nan, 0.9], "holm")[1:2], [np.nan])
+    assert adjust_pvalues([0.2, np.nan, 0.9], "holm")[2] == 0.9      # m = 2 finite p-values
+    np.testing.assert_array_equal(adjust_pvalues([0.5, 0.7], "none"), [0.5, 0.7])
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_holm_rejects_what_the_step_down_rule_rejects(seed):
+    # the definition: reject the k smallest p-values for the largest k with
+    # p(j) <= alpha / (m - j + 1) for every j <= k
+    rng = np.random.default_rng(seed)
+    p = np.concatenate([rng.random(40), rng.random(10) * 1e-3])
+    adj = adjust_pvalues(p, "holm")
+    order = np.argsort(p)
+    m = p.size
+    for alpha in (0.001, 0.01, 0.05, 0.2):
+        ok = p[order] <= alpha / (m - np.arange(m))
+        k = m if ok.all() else int(np.argmin(ok))
+        rejected = np.zeros(m, bool)
+        rejected[order[:k]] = True
+        np.testing.assert_array_equal(adj <= alpha, rejected)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_benjamini_hochberg_rejects_what_the_step_up_rule_rejects(seed):
+    # Benjamini & Hochberg (1995): reject the k smallest for the largest k with p(k) <= k alpha / m
+    rng = np.random.default_rng(seed)
+    p = np.concatenate([rng.random(40), rng.random(10) * 1e-2])
+    adj = adjust_pvalues(p, "bh")
+    order = np.argsort(p)
+    m = p.size
+    for alpha in (0.01, 0.05, 0.2):
+        below = np.flatnonzero(p[order] <= alpha * np.arange(1, m + 1) / m)
+        k = int(below.max()) + 1 if below.size else 0
+        rejected = np.zeros(m, bool)
+        rejected[order[:k]] = True
+        np.testing.assert_array_equal(adj <= alpha, rejected)

@@ -134,7 +134,7 @@ def entry_digest(material: dict) -> str:
     return hashlib.sha256(text.encode()).hexdigest()
 
 
-def _has_files(signature) -> bool:
+def has_files(signature) -> bool:
     """Whether a snapshot has files to key a stored entry on (not in memory only, not gone)."""
     return bool(signature) and all(size >= 0 for _, size, _ in signature)
 
@@ -333,7 +333,7 @@ class ReductionCache:
 
         ``material``: the entry's key when the caller has made it already (:func:`entry_key`).
         """
-        if not self.enabled or not _has_files(signature):
+        if not self.enabled or not has_files(signature):
             return compute()   # no file behind it (in memory, or gone): nothing to key on
         if material is None:
             material = self.key_material(signature, what, params)
@@ -458,7 +458,7 @@ class SnapshotCache:
         with self._lock:
             self._memory[slot] = (digest, value)
         disk = cache_for(self._ctx)
-        if disk.enabled and _has_files(signature):
+        if disk.enabled and has_files(signature):
             disk.store(material, {"value": value, "notes": []})
 
     def has(self, i: int, what: str, params) -> bool:
@@ -469,7 +469,7 @@ class SnapshotCache:
         if held is not None and held[0] == digest:
             return True
         disk = cache_for(self._ctx)
-        return disk.enabled and _has_files(signature) and disk.path_for(material).is_file()
+        return disk.enabled and has_files(signature) and disk.path_for(material).is_file()
 
     def clear(self) -> None:
         with self._lock:

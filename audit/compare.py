@@ -174,19 +174,10 @@ class Comparison:
 
 
 def _stamp(ref: AuditContext, cand: AuditContext, i: int, j: int) -> dict:
-    sr, sc = ref.run[i], cand.run[j]
-    return {"ref_snapshot": i, "cand_snapshot": j, "ref_step": sr.step, "cand_step": sc.step,
-            "ref_time": np.nan if sr.time is None else float(sr.time),
-            "cand_time": np.nan if sc.time is None else float(sc.time)}
+    return {**_tables.row_stamp(ref, i, "ref_"), **_tables.row_stamp(cand, j, "cand_")}
 
 
-def _finish(rows, columns) -> pd.DataFrame:
-    df = pd.DataFrame(list(rows), columns=columns)
-    for c in ("ref_step", "cand_step"):
-        df[c] = pd.array(df[c], dtype="Int64")
-    for c in ("ref_snapshot", "cand_snapshot"):
-        df[c] = df[c].astype(np.int64)
-    return df
+_finish = _tables.finish_table
 
 
 def _shared_roles(fa, fb, roles) -> list[tuple[str, str]]:

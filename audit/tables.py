@@ -20,7 +20,7 @@ from ..diagnostics import drift as _drift
 from ..diagnostics.halo import halo_counts
 from ..diagnostics.migration import DuplicateKeyError, Migration, MigrationResult
 from ..diagnostics.rebalance import rebalance_whatif
-from .cache import cached_reduction, context_cache, layout_fingerprint
+from .cache import cached_reduction, context_cache, has_files, layout_fingerprint
 from ..core.context import AuditContext
 from ..engine.pieces import read_in_pieces
 from ..engine.reduce import reduce, reduce_many
@@ -67,21 +67,31 @@ def _positions(ctx: AuditContext, snapshots) -> list[int]:
     return out
 
 
-def _stamp(ctx: AuditContext, i: int) -> dict:
+def row_stamp(ctx: AuditContext, i: int, prefix: str = "") -> dict:
+    """The columns that begin every row about snapshot ``i``: snapshot, step, time (``prefix``
+    names the run when a row is about two: ``ref_``, ``cand_``)."""
     snap = ctx.run[i]
-    return {"snapshot": i, "step": snap.step, "time": np.nan if snap.time is None else float(snap.time)}
+    return {f"{prefix}snapshot": i, f"{prefix}step": snap.step,
+            f"{prefix}time": np.nan if snap.time is None else float(snap.time)}
 
 
-def _finish(rows_or_frames, columns, frames: bool = False) -> pd.DataFrame:
+_STEP_COLUMNS = ("step", "ref_step", "cand_step")
+_SNAPSHOT_COLUMNS = ("snapshot", "from_snapshot", "to_snapshot", "ref_snapshot", "cand_snapshot")
+
+
+def finish_table(rows_or_frames, columns, frames: bool = False) -> pd.DataFrame:
+    """A table from rows (dicts) or from data frames, in ``columns`` order, with the DESIGN's
+    column types: steps nullable integers (a run may store none), snapshots integers."""
     if frames:
         parts = [f for f in rows_or_frames if len(f)]
         df = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=columns)
     else:
         df = pd.DataFrame(list(rows_or_frames), columns=columns)
     df = df[columns]
-    if "step" in df:
-        df["step"] = pd.array(df["step"], dtype="Int64")
-    for col in ("snapshot", "from_snapshot", "to_snapshot"):
+    for col in _STEP_COLUMNS:
+        if col in df:
+            df[col] = pd.array(df[col], dtype="Int64")
+    for col in _SNAPSHOT_COLUMNS:
         if col in df:
             df[col] = df[col].astype(np.int64)
     return df
@@ -243,7 +253,7 @@ def _sum_block_tables(tables) -> pd.DataFrame:
 def _stack(parts, columns) -> pd.DataFrame:
     """One table from (stamp, species, table) parts, built once (pandas is slow on many small appends)."""
     if not parts:
-        return _finish([], columns)
+        return finish_table([], columns)
     data = {}
     sizes = [len(t) for _, _, t in parts]
     for c in columns:
@@ -256,7 +266,7 @@ def _stack(parts, columns) -> pd.DataFrame:
     steps = [stamp["step"] for stamp, _, _ in parts]
     if any(x is None for x in steps):
         data["step"] = np.repeat(np.array(steps, dtype=object), sizes)
-    return _finish([pd.DataFrame(data)], columns, frames=True)
+    return finish_table([pd.DataFrame(data)], columns, frames=True)
 
 
 def _sum_rank_tables(tables) -> pd.DataFrame:
@@ -274,7 +284,7 @@ def census_table(ctx: AuditContext, snapshots=None) -> pd.DataFrame:
         per = _reduce(ctx, i, "census")
         if not per:
             continue
-        stamp = _stamp(ctx, i)
+        stamp = row_stamp(ctx, i)
         tables = {s: bc for s, (bc, _) in per.items()}
         tables[ALL] = _sum_block_tables(list(tables.values()))
         parts.extend((stamp, s, bc) for s, bc in tables.items())
@@ -290,8 +300,8 @@ def rank_table(ctx: AuditContext, i: int) -> pd.DataFrame:
     (i,) = _positions(ctx, [i])
     per = _reduce(ctx, i, "census")
     if not per:
-        return _finish([], RANK_COLUMNS, frames=True)
-    stamp = _stamp(ctx, i)
+        return finish_table([], RANK_COLUMNS, frames=True)
+    stamp = row_stamp(ctx, i)
     tables = {s: rc for s, (_, rc) in per.items()}
     tables[ALL] = _sum_rank_tables(list(tables.values()))
     return _stack([(stamp, s, t) for s, t in tables.items()], RANK_COLUMNS)
@@ -304,7 +314,7 @@ def imbalance_table(ctx: AuditContext, snapshots=None) -> pd.DataFrame:
         per = _reduce(ctx, i, "census")
         if not per:
             continue
-        stamp = _stamp(ctx, i)
+        stamp = row_stamp(ctx, i)
         blocks = {s: bc for s, (bc, _) in per.items()}
         ranks = {s: rc for s, (_, rc) in per.items()}
         blocks[ALL] = _sum_block_tables(list(blocks.values()))
@@ -313,7 +323,7 @@ def imbalance_table(ctx: AuditContext, snapshots=None) -> pd.DataFrame:
             for by, t, col in (("rank", ranks[s], "rank"), ("block", blocks[s], "block")):
                 loads = t.loc[t[col] >= 0, "count"].to_numpy()   # particles in no block load nobody
                 rows.append({**stamp, "species": s, "by": by, **_census.imbalance(loads)})
-    return _finish(rows, IMBALANCE_COLUMNS)
+    return finish_table(rows, IMBALANCE_COLUMNS)
 
 
 def rebalance_table(ctx: AuditContext, i: int, nranks: int | None = None) -> pd.DataFrame:
@@ -372,7 +382,7 @@ def _migration_pair(ctx: AuditContext, a: int, b: int) -> dict:
               "steps": steps}
     # kept on disk only when the second snapshot has files to key on too
     return cached_reduction(ctx, a, "migration", params, lambda: _compute_migration(ctx, a, b, la, lb),
-                            persist=all(size >= 0 for _, size, _ in sig_b))
+                            persist=has_files(sig_b))
 
 
 def _compute_migration(ctx: AuditContext, a: int, b: int, la, lb) -> dict:
@@ -449,10 +459,10 @@ def migration_tables(ctx: AuditContext, pairs=None) -> tuple[pd.DataFrame, pd.Da
             total = (pd.concat(tr, ignore_index=True).groupby(["from_block", "to_block"], sort=True)["count"]
                      .sum().reset_index())
             moves.append(total.assign(species=ALL, **head))
-    mig = _finish(moves, MIGRATION_COLUMNS, frames=True)
+    mig = finish_table(moves, MIGRATION_COLUMNS, frames=True)
     for col in ("from_block", "to_block", "count"):
         mig[col] = mig[col].astype(np.int64)
-    summ = _finish(summary, SUMMARY_COLUMNS)
+    summ = finish_table(summary, SUMMARY_COLUMNS)
     for col in ("matched", "migrated", "created", "lost", "over_one_cell"):
         summ[col] = summ[col].astype(np.int64)
     summ["max_displacement_cells"] = summ["max_displacement_cells"].astype(np.float64)
@@ -473,7 +483,7 @@ def traffic_table(ctx: AuditContext, pairs=None) -> pd.DataFrame:
         if per:
             total = pd.concat(per).groupby("rank", sort=True)[["send", "receive"]].sum().reset_index()
             frames.append(total.assign(species=ALL, **head))
-    df = _finish(frames, TRAFFIC_COLUMNS, frames=True)
+    df = finish_table(frames, TRAFFIC_COLUMNS, frames=True)
     for col in ("rank", "send", "receive"):
         df[col] = df[col].astype(np.int64)
     return df
@@ -521,7 +531,7 @@ def drift_rows(ctx: AuditContext) -> list[dict]:
         _note(ctx, "no field or potential energy is stored beside the particles, so total_energy "
                    "is not formed (kinetic_energy is still tabulated)")
     for i in range(n):
-        stamp = _stamp(ctx, i)
+        stamp = row_stamp(ctx, i)
         per = _reduce(ctx, i, "totals")
         sums: dict[str, list] = {}
         for s, (values, bad) in per.items():

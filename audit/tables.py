@@ -27,6 +27,7 @@ from ..engine.reduce import reduce, reduce_many
 from ..core.errors import InputError, OptionError
 from ..core.frame import is_clock_scalar, transient_columns
 from ..core.layout import assign_blocks
+from ..core.roles import SPECIES_CONSTANTS
 
 CENSUS_COLUMNS = ["snapshot", "step", "time", "species", "block", "level", "rank", "count", "weight"]
 RANK_COLUMNS = ["snapshot", "step", "time", "species", "rank", "count", "weight", "blocks"]
@@ -490,16 +491,12 @@ def traffic_table(ctx: AuditContext, pairs=None) -> pd.DataFrame:
 
 
 # drift -------------------------------------------------------------------------------
-#: stored scalars that are a species' constants (a single-species file keeps them at its root)
-_SPECIES_CONSTANTS = ("mass", "charge")
-
-
 def _meta_scalars(snap) -> dict[str, float]:
     """The stored scalars that are drift rows: not the clock (time, step; see
     :func:`core.frame.is_clock_scalar`), not a species' mass or charge."""
     out = {}
     for k, v in (snap.meta or {}).items():
-        if isinstance(v, (bool, np.bool_)) or is_clock_scalar(k) or str(k).strip().lower() in _SPECIES_CONSTANTS:
+        if isinstance(v, (bool, np.bool_)) or is_clock_scalar(k) or str(k).strip().lower() in SPECIES_CONSTANTS:
             continue
         try:
             f = float(v)

@@ -25,6 +25,10 @@ ROLES = (
 )
 
 POSITION_ROLES = ("x", "y", "z")
+
+#: scalars that are a species' constants, not per-particle columns nor drift rows (a file of one
+#: species may keep them at its root)
+SPECIES_CONSTANTS = ("mass", "charge")
 VELOCITY_ROLES = ("vx", "vy", "vz")
 PROPER_VELOCITY_ROLES = ("ux", "uy", "uz")
 MOMENTUM_ROLES = ("px", "py", "pz")

@@ -6,7 +6,7 @@ import numpy as np
 
 from ..core.errors import InputError
 from ..core.frame import Frame, Snapshot
-from ..core.roles import AXES, RoleMap
+from ..core.roles import AXES, SPECIES_CONSTANTS, RoleMap
 
 #: an ``(N, d)`` array or sub-array field wider than this is not a vector of particle components
 MAX_COMPONENTS = 16
@@ -16,6 +16,21 @@ def component_names(base: str, d: int) -> list[str]:
     if d <= len(AXES):
         return [f"{base}/{a}" for a in AXES[:d]]
     return [f"{base}/{i}" for i in range(d)]
+
+
+def species_constants(scalars) -> dict[str, float]:
+    """The species constants (:data:`core.roles.SPECIES_CONSTANTS`) among a file's root scalars
+    (a mapping or ``(name, value)`` pairs): what a file of one species keeps for that species."""
+    items = scalars.items() if hasattr(scalars, "items") else scalars
+    out = {}
+    for k, v in items:
+        if str(k).strip().lower() in SPECIES_CONSTANTS and not isinstance(v, (bool, np.bool_)):
+            try:
+                if np.ndim(v) == 0:
+                    out[str(k).strip().lower()] = float(v)
+            except (TypeError, ValueError):
+                continue
+    return out
 
 
 def is_numeric(dtype) -> bool:

@@ -19,7 +19,7 @@ import numpy as np
 from ..core.column import Column
 from ..core.errors import InputError
 from ..core.frame import Snapshot
-from ._columns import Table, make_snapshot, split_scalars
+from ._columns import Table, make_snapshot, species_constants, split_scalars
 
 DEFAULT_SPECIES = "particles"
 #: a header line longer than this is not a header (a binary file, most likely)
@@ -370,7 +370,7 @@ class CSVReader:
         step, time, meta, time_unit = split_scalars(scalars, path)
         table = Table(path)
         # the file holds one species: its ``# mass = …`` and ``# charge = …`` are that species'
-        table.attrs.update({k: meta[k] for k in ("mass", "charge") if k in meta})
+        table.attrs.update(species_constants(meta))
         for n in names:
             table.add(n, length, _loader(lay, n), n)
         return make_snapshot(path, {DEFAULT_SPECIES: table}, columns=columns, step=step, time=time,

@@ -35,7 +35,7 @@ from ..core.column import Column, read_fully
 from ..core.roles import _VECTOR_STEMS
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        make_snapshot, native, reject_non_numeric, scalar_value, short_species_names,
-                       split_scalars, take_field)
+                       species_constants, split_scalars, take_field)
 
 SIGNATURE = b"\x89HDF\r\n\x1a\n"
 #: names of groups whose members are the components of one vector (``position/x``)
@@ -663,7 +663,7 @@ class HDF5Reader:
                 for t in scan.tables.values():
                     if t.where == "/":
                         # a single-species file may keep its species attributes at the root
-                        t.attrs.update({k: meta[k] for k in ("mass", "charge") if k in meta})
+                        t.attrs.update(species_constants(meta))
             finally:
                 # the scan's objects go first, then the file (without h5py's sweep over every
                 # object still open in it: the scan holds the only ones)

@@ -25,7 +25,7 @@ from ..core.frame import Snapshot
 from ..core.column import Column, read_record_field
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        has_role, make_snapshot, native, reject_non_numeric, scalar_value,
-                       split_scalars, take_field)
+                       species_constants, split_scalars, take_field)
 
 NPY_MAGIC = b"\x93NUMPY"
 ZIP_MAGICS = (b"PK\x03\x04", b"PK\x05\x06")
@@ -224,8 +224,8 @@ def _open_npz(path: str, columns) -> Snapshot:
     for s, c, v in scalars:
         if s in tables and s != DEFAULT_SPECIES and isinstance(v, (int, float)):
             tables[s].attrs[c] = float(v)
-        elif s == DEFAULT_SPECIES and c in ("mass", "charge") and isinstance(v, (int, float)):
-            tables.setdefault(DEFAULT_SPECIES, Table(path)).attrs[c] = float(v)
+    if species_constants(root):
+        tables.setdefault(DEFAULT_SPECIES, Table(path)).attrs.update(species_constants(root))
     return make_snapshot(path, tables, columns=columns, step=step, time=time, meta=meta,
                          warnings=warnings, time_unit=time_unit)
 

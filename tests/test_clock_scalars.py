@@ -60,6 +60,11 @@ def test_clock_values_are_not_drift_rows(tmp_path, fmt):
     assert list(table.drop_duplicates("snapshot")["time"]) == pytest.approx([0.0, 0.1, 0.2])  # from t
     assert list(table.drop_duplicates("snapshot")["step"]) == [0, 10, 20]
     assert audit.check(ctx, rtol=1e-12).ok
+    # the root's mass is the single species' constant in every format: Σ ½ m v² uses it
+    (frame,) = ctx.run[0].species.values()
+    assert frame.attrs["mass"] == 2.0
+    ke = table[(table["snapshot"] == 0) & (table["quantity"] == "kinetic_energy")]["value"]
+    assert float(ke.iloc[0]) == pytest.approx(0.5 * 2.0 * np.sum(cols["vx"] ** 2), rel=1e-12)
 
 
 def test_time_wins_over_t_and_both_stay_out_of_the_totals(tmp_path):

@@ -20,6 +20,18 @@ import numpy as np
 from .errors import InputError
 
 
+def native_dtype(dtype) -> np.dtype:
+    """``dtype`` in native byte order: what a column's arrays are once read (numba kernels and
+    bincount want it), whatever order the file stores."""
+    dtype = np.dtype(dtype)
+    return dtype if dtype.isnative else dtype.newbyteorder("=")
+
+
+def native(arr: np.ndarray) -> np.ndarray:
+    """The array in native byte order (a copy only when it is not)."""
+    return arr if arr.dtype.isnative else arr.astype(native_dtype(arr.dtype))
+
+
 class Column:
     """One column of one species, read lazily.
 
@@ -30,7 +42,7 @@ class Column:
     native-order array of ``dtype`` and of the rows' length) and returns it,
     so a reduction streaming a column reuses one buffer. ``dtype`` and
     ``length`` are what the reader knows before reading (None when it does
-    not). ``hold()`` is a context manager that keeps the column's file open
+    not); ``dtype`` is in native byte order, as the arrays read are. ``hold()`` is a context manager that keeps the column's file open
     while a reduction reads several pieces or columns of it (a no-op by
     default). ``direct()`` is True while reads go straight to the file
     without a shared library handle (they let other threads run);
@@ -49,7 +61,7 @@ class Column:
         self._read = read
         self._rows = rows
         self._rows_into = rows_into
-        self.dtype = None if dtype is None else np.dtype(dtype)
+        self.dtype = None if dtype is None else native_dtype(dtype)
         self.length = None if length is None else int(length)
         self._hold = hold
         self._direct = direct
@@ -130,7 +142,7 @@ def read_record_field(path, offset: int, dtype, take, start: int, stop: int) -> 
     rec = dtype.itemsize
     n = max(0, int(stop) - int(start))
     field_dtype = take(np.empty(0, dtype)).dtype
-    out = np.empty(n, dtype=field_dtype.newbyteorder("=") if not field_dtype.isnative else field_dtype)
+    out = np.empty(n, dtype=native_dtype(field_dtype))
     if n == 0:
         return out
     chunk = max(1, RECORD_CHUNK_BYTES // max(rec, 1))

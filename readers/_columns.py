@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..core.column import native  # noqa: F401  (the readers' one byte-order rule)
 from ..core.errors import InputError
 from ..core.frame import Frame, Snapshot
 from ..core.roles import AXES, SPECIES_CONSTANTS, RoleMap
@@ -73,11 +74,6 @@ def take_field(arr: np.ndarray, path, component):
     for name in path:
         arr = arr[name]
     return arr if component is None else arr[:, component]
-
-
-def native(arr: np.ndarray) -> np.ndarray:
-    """The array in native byte order (numba kernels and bincount want it)."""
-    return arr if arr.dtype.isnative else arr.astype(arr.dtype.newbyteorder("="))
 
 
 def check_fits_memory(path, what: str, nbytes: int) -> None:

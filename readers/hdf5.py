@@ -612,7 +612,7 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
             return None
         return held[0], ext.offset, ext.dtype
 
-    return Column(lambda: load(), dtype=None if dtype is None else np.dtype(dtype).newbyteorder("="),
+    return Column(lambda: load(), dtype=dtype,
                   length=length, rows=lambda start, stop: load((start, stop)),
                   rows_into=lambda start, stop, into: load((start, stop), into),
                   hold=lambda: _hold_fd(path) if direct() else _hold(path),

@@ -163,7 +163,7 @@ def _member_loader(path: str, member: str, shape, fortran, dtype, comp=None, fie
         out = take_field(np.empty(0, dtype), *field).dtype
     else:
         out = dtype.subdtype[0] if dtype.subdtype is not None else dtype
-    return Column(load, dtype=out if out.isnative else out.newbyteorder("="),
+    return Column(load, dtype=out,
                   length=shape[0] if shape else 1)
 
 

@@ -33,6 +33,7 @@ import time
 import numpy as np
 
 from ..core.errors import OptionError
+from .pic2d import TwoStreamSetup
 
 MANIFEST = "swarmaudit-demo.json"
 #: bump when the runs change, so old demo folders are written afresh
@@ -43,16 +44,22 @@ RUNS = ("two_stream", "inlet_wall", "small_npz", "small_csv", "small_npy", "two_
         "two_stream_dt")
 #: snapshots of the variants of the main run (pairs for ``swarmaudit compare``)
 VARIANT_SNAPSHOTS = 10
-#: the time step of the changed-step variant (the main run's is 0.1)
+#: the time step of the changed-step variant
 VARIANT_DT = 0.125
+#: the rank-count variant: the same physics on another decomposition, particles held sorted by cell
+RANKS_VARIANT = {"ranks": 6, "blocks": (8, 4), "sort_by_cell": True}
+_MAIN_DT = TwoStreamSetup.dt
 DESCRIPTIONS = {
     "two_stream": "2-D electrostatic PIC, two-stream instability; per-rank HDF5, 4 ranks, refined blocks, one rebalance",
     "inlet_wall": "Ar+ / Ar2+ ions injected at an inlet, absorbed at a wall or turned back by a potential hill; HDF5",
     "small_npz": "drifting 3-D Plummer star cluster, direct-sum N-body; .npz",
     "small_csv": "nitrogen in a duct leaking through a pump port (fails a tight check); CSV + layout.csv",
     "small_npy": "elastic glass grains in a periodic box; structured .npy",
-    "two_stream_ranks": "two_stream on 6 ranks, 8x4 blocks, particles sorted by cell: equal up to rounding",
-    "two_stream_dt": "two_stream with time step 0.125 instead of 0.1: statistically close, not equal",
+    "two_stream_ranks": (f"two_stream on {RANKS_VARIANT['ranks']} ranks, "
+                         f"{RANKS_VARIANT['blocks'][0]}x{RANKS_VARIANT['blocks'][1]} blocks, particles "
+                         "sorted by cell: equal up to rounding"),
+    "two_stream_dt": (f"two_stream with time step {VARIANT_DT:g} instead of {_MAIN_DT:g}: statistically "
+                      "close, not equal"),
 }
 
 
@@ -181,7 +188,6 @@ def write_demo_runs(out, particles=None, snapshots=None, force: bool = False, pr
     except FileNotFoundError:
         pass
     started = time.perf_counter()
-    from .pic2d import TwoStreamSetup
     from .two_stream import snapshot_steps
     main_setup = TwoStreamSetup(particles=particles)
     main = snapshot_steps(main_setup.steps, snapshots)
@@ -192,7 +198,7 @@ def write_demo_runs(out, particles=None, snapshots=None, force: bool = False, pr
         "small_csv": lambda d: write_small_csv(d, progress),
         "small_npy": lambda d: write_small_npy(d, progress),
         "two_stream_ranks": lambda d: write_two_stream(
-            d, particles, snapshots, progress, ranks=6, blocks=(8, 4), sort_by_cell=True,
+            d, particles, snapshots, progress, **RANKS_VARIANT,
             at_steps=variant_steps(main, 1.0, 1.0), label="two_stream_ranks"),
         "two_stream_dt": lambda d: write_two_stream(
             d, particles, snapshots, progress, dt=VARIANT_DT,

@@ -6,7 +6,8 @@
 * ``.npz``: one array per column. 1-D arrays are columns, ``(N, d)`` arrays give ``name/x``...,
   0-d arrays are per-snapshot scalars (``step``, ``time``, others to ``meta``). A key prefix
   ``beam_a/x`` puts the column in species ``beam_a`` (a 0-d ``beam_a/mass`` is its attribute);
-  keys without one (or named like a column, ``position/x``) belong to ``particles``.
+  keys without one (or named like a column, ``position/x``) belong to ``particles``; see
+  :func:`species_prefixes` for a prefix that could be either (``p/x``).
 """
 
 from __future__ import annotations
@@ -22,6 +23,7 @@ import numpy.lib.format as npformat
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot
+from ..core.roles import POSITION_ROLES, RoleMap
 from ..core.column import Column, read_record_field
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        has_role, make_snapshot, native, reject_non_numeric, scalar_value,
@@ -123,12 +125,37 @@ def _field_loader(path: str, offset: int, dtype, n: int, col: str, fpath, comp):
 
 # .npz ---------------------------------------------------------------------------
 
-def _split_key(key: str) -> tuple[str, str]:
-    """(species, column) of an npz key: ``beam_a/x`` -> (beam_a, x); ``position/x`` stays a column."""
-    if "/" in key and not has_role(key):
-        species, col = key.split("/", 1)
-        if species and col:
-            return species, col
+def species_prefixes(keys) -> set[str]:
+    """The key prefixes of an archive that name species (``beam_a/x``: species ``beam_a``).
+
+    A prefix whose keys all read as components of one vector column (``position/x``,
+    ``p/x``) is that column of the unnamed species, unless another prefix names a
+    species and the unnamed species would then hold no position: a prefix is a
+    species when one of its keys is not a component (``p/vx``), and all prefixes
+    are species when the keys without one give no position (``e/x`` beside
+    ``p/x``).
+    """
+    by_prefix: dict[str, list[str]] = {}
+    plain = []
+    for k in keys:
+        head, sep, rest = k.partition("/")
+        if sep and head and rest:
+            by_prefix.setdefault(head, []).append(k)
+        else:
+            plain.append(k)
+    species = {h for h, ks in by_prefix.items() if not all(has_role(k) for k in ks)}
+    if species:
+        unnamed = plain + [k for h, ks in by_prefix.items() if h not in species for k in ks]
+        if not set(RoleMap().resolve(unnamed)) & set(POSITION_ROLES):
+            species = set(by_prefix)
+    return species
+
+
+def _split_key(key: str, species: set[str]) -> tuple[str, str]:
+    """(species, column) of an npz key, given the archive's :func:`species_prefixes`."""
+    head, sep, rest = key.partition("/")
+    if sep and head in species:
+        return head, rest
     return DEFAULT_SPECIES, key
 
 
@@ -174,6 +201,8 @@ def _open_npz(path: str, columns) -> Snapshot:
     try:
         with zipfile.ZipFile(path) as zf:
             infos = zf.infolist()
+            named = species_prefixes([i.filename[:-4] for i in infos
+                                      if not i.is_dir() and i.filename.endswith(".npy")])
             for info in infos:
                 if info.is_dir():
                     continue
@@ -188,7 +217,7 @@ def _open_npz(path: str, columns) -> Snapshot:
                     raise InputError(path, f"array '{key}' declares shape {shape} ({_nbytes(shape, dtype)} "
                                      f"bytes) but the archive holds {info.file_size - header_len} bytes of it",
                                      "the archive is damaged or was not completely written")
-                species, col = _split_key(key)
+                species, col = _split_key(key, named)
                 if len(shape) == 0:
                     if dtype.kind in "biufSU":
                         value = scalar_value(_member_loader(path, info.filename, (1,), False, dtype)()[0])

@@ -163,6 +163,24 @@ def test_npz_species_prefix_and_scalars(tmp_path, ref):
     assert snap.species["particles"].length == 7
 
 
+@pytest.mark.parametrize("keys,want", [
+    # a species named like a vector stem keeps its positions (p/x is species p's x, not momentum)
+    ({"p/x": 9, "p/y": 9, "p/vx": 9, "e/x": 4, "e/y": 4}, {"p": ["x", "y", "vx"], "e": ["x", "y"]}),
+    ({"p/x": 9, "p/y": 9, "e/x": 4, "e/y": 4}, {"p": ["x", "y"], "e": ["x", "y"]}),
+    # beside plain positions, p/x and p/y are the momentum of the unnamed species
+    ({"x": 6, "y": 6, "p/x": 6, "p/y": 6}, {"particles": ["x", "y", "p/x", "p/y"]}),
+    ({"position/x": 5, "position/y": 5, "e/x": 3, "e/vx": 3},
+     {"particles": ["position/x", "position/y"], "e": ["x", "vx"]}),
+])
+def test_npz_prefix_is_a_species_or_a_vector(tmp_path, keys, want):
+    path = tmp_path / "s.npz"
+    np.savez(path, **{k: np.arange(n, dtype=float) for k, n in keys.items()}, step=np.array(3))
+    snap = NumpyReader().open(str(path))
+    assert {s: f.columns for s, f in snap.species.items()} == want
+    if "p" in want:
+        assert snap.species["p"].position_names == ["x", "y"] and snap.species["p"].length == 9
+
+
 def test_csv_comment_scalars_blank_lines_and_crlf(tmp_path, ref):
     path = tmp_path / "s.csv"
     lines = ["# written by a test", "# step = 12", "# time = 0.5", "# field_energy = 1e-3",

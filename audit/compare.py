@@ -190,11 +190,6 @@ def _shared_roles(fa, fb, roles) -> list[tuple[str, str]]:
     return out
 
 
-def _weights(frame):
-    w = frame.per_particle("weight", 1.0)
-    return None if np.ndim(w) == 0 else w
-
-
 def _particle_row(ctx, note, fa, fb, layout, where: str):
     """PairStats of one species, or None with a note when ids cannot pair the particles."""
     ka, kb = fa.key_columns(), fb.key_columns()
@@ -234,19 +229,21 @@ def _particle_row(ctx, note, fa, fb, layout, where: str):
     return stats
 
 
-def _distribution_rows(fa, fb, stamp, species):
+def _distribution_rows(ctx, fa, fb, stamp, species):
     rows = []
     cols = _shared_roles(fa, fb, POSITION_ROLES)
     if fa.momentum_kind() == fb.momentum_kind():
         cols += _shared_roles(fa, fb, fa.momentum_roles())
+    if not cols:
+        return rows
+    acc = _cmp.DistributionComparison(cols, (fa.column_for("weight"), fb.column_for("weight")))
     with transient_columns([fa, fb]):
-        wa, wb = _weights(fa), _weights(fb)
-        for a, b in cols:
-            d = _cmp.distribution_distance(fa[a], fb[b], wa, wb)
-            rows.append({**stamp, "species": species, "column": a, "ref_count": d.ref_count,
-                         "cand_count": d.cand_count, "ks_statistic": d.ks_statistic,
-                         "ks_pvalue": d.ks_pvalue, "wasserstein": d.wasserstein,
-                         "ref_mean": d.ref_mean, "cand_mean": d.cand_mean})
+        found = reduce(acc, [fa, fb], ctx)
+    for (a, _), d in zip(cols, found):
+        rows.append({**stamp, "species": species, "column": a, "ref_count": d.ref_count,
+                     "cand_count": d.cand_count, "ks_statistic": d.ks_statistic,
+                     "ks_pvalue": d.ks_pvalue, "wasserstein": d.wasserstein,
+                     "ref_mean": d.ref_mean, "cand_mean": d.cand_mean})
     return rows
 
 
@@ -303,7 +300,7 @@ def compare_runs(ref: AuditContext, cand: AuditContext, *, pair: str = "step", t
                          or (mode == "auto" and (stats is None
                                                  or stats.matched_fraction < AUTO_MATCHED_SHARE)))
             if want_dist:
-                dist_rows.extend(_distribution_rows(fa, fb, stamp, s))
+                dist_rows.extend(_distribution_rows(ref, fa, fb, stamp, s))
     for m in missing:
         note(f"reference snapshot {m['ref_snapshot']} / candidate snapshot {m['cand_snapshot']}: species "
              f"'{m['species']}' is only in the {m['in']}")

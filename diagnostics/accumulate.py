@@ -137,6 +137,38 @@ class Accumulator:
         return state
 
 
+class KeepRows(Accumulator):
+    """Base of a reduction that needs every row of its frames together (a match by id, a sort).
+
+    The state keeps each piece's arrays of ``frame_columns`` with its row offset, so the
+    engine never hands it a reused buffer (``reads_once`` is False); :meth:`joined` gives
+    one frame's columns in row order, whatever the pieces were, for ``finish``.
+    """
+
+    reads_once = False
+
+    def start(self):
+        return {k: [] for k in range(len(self.frame_columns))}
+
+    def add(self, state, piece: Piece):
+        cols = self.frame_columns[piece.frame]
+        state[piece.frame].append((piece.start, {c: piece[c] for c in cols}))
+        return state
+
+    def merge(self, a, b):
+        return {k: a[k] + b[k] for k in a}
+
+    def joined(self, state, k: int) -> dict[str, np.ndarray]:
+        """Frame ``k``'s columns, every row, in row order."""
+        chunks = sorted(state[k], key=lambda t: t[0])
+        cols = self.frame_columns[k]
+        if len(chunks) == 1:
+            return chunks[0][1]
+        if not chunks:
+            return {c: np.zeros(0) for c in cols}
+        return {c: np.concatenate([ch[c] for _, ch in chunks]) for c in cols}
+
+
 def fold(acc: Accumulator, pieces: Iterable[Piece]):
     """The state of ``pieces`` (consecutive rows, in order) folded from ``acc.start()``."""
     state = acc.start()

@@ -26,7 +26,7 @@ import numpy as np
 
 from ..core.layout import BlockLayout
 from . import _kernels
-from .accumulate import Accumulator
+from .accumulate import KeepRows
 from .migration import DuplicateKeyError, key_plan, match_keys, matched_displacement
 
 #: particles named as differing most, per species and snapshot
@@ -478,18 +478,15 @@ def _dense_pairs(keys_ref, keys_cand, pos_ref, pos_cand, mom_ref, mom_cand, layo
 
 
 # the accumulator -------------------------------------------------------------------------------
-class ParticleComparison(Accumulator):
+class ParticleComparison(KeepRows):
     """:func:`compare_particles` of two frames (0: the reference, 1: the candidate), fed in pieces.
 
     ``keys``, ``positions``, ``momenta`` and ``extras`` are column names,
     one tuple per frame (the two runs may name a role differently). Matching
     needs every key of both frames together, so the state keeps the rows it
-    is given (the engine therefore never hands it a reused buffer:
-    ``reads_once`` is False) and ``finish`` matches them in one call of the
+    is given (:class:`KeepRows`) and ``finish`` matches them in one call of the
     matcher migration uses.
     """
-
-    reads_once = False
 
     def __init__(self, layout: BlockLayout | None, keys, positions, momenta, extras=((), ()),
                  worst: int = WORST):
@@ -507,28 +504,8 @@ class ParticleComparison(Accumulator):
         return tuple(tuple(dict.fromkeys(self.keys[k] + self.positions[k] + self.momenta[k] + self.extras[k]))
                      for k in (0, 1))
 
-    def start(self):
-        return {0: [], 1: []}
-
-    def add(self, state, piece):
-        cols = self.frame_columns[piece.frame]
-        state[piece.frame].append((piece.start, {c: piece[c] for c in cols}))
-        return state
-
-    def merge(self, a, b):
-        return {k: a[k] + b[k] for k in (0, 1)}
-
-    def _joined(self, chunks, k):
-        chunks = sorted(chunks, key=lambda t: t[0])
-        cols = self.frame_columns[k]
-        if len(chunks) == 1:
-            return chunks[0][1]
-        if not chunks:
-            return {c: np.zeros(0) for c in cols}
-        return {c: np.concatenate([ch[c] for _, ch in chunks]) for c in cols}
-
     def finish(self, state) -> PairStats:
-        a, b = self._joined(state[0], 0), self._joined(state[1], 1)
+        a, b = self.joined(state, 0), self.joined(state, 1)
 
         def key(cols, k):
             names = self.keys[k]
@@ -538,3 +515,29 @@ class ParticleComparison(Accumulator):
                                  [b[c] for c in self.positions[1]], [a[c] for c in self.momenta[0]],
                                  [b[c] for c in self.momenta[1]], self.layout,
                                  [a[c] for c in self.extras[0]], [b[c] for c in self.extras[1]], self.worst)
+
+
+class DistributionComparison(KeepRows):
+    """:func:`distribution_distance` of column pairs of two frames (0: reference, 1: candidate).
+
+    ``columns`` is a sequence of ``(reference column, candidate column)``; ``weights`` the
+    weight column of each frame, or None where every particle weighs the same. A sort needs
+    every value together, so the rows are kept (:class:`KeepRows`) and ``finish`` gives one
+    :class:`DistributionDistance` per pair, in order.
+    """
+
+    def __init__(self, columns, weights=(None, None)):
+        self.columns = tuple((str(a), str(b)) for a, b in columns)
+        self.weights = tuple(weights)
+
+    @property
+    def frame_columns(self):
+        return tuple(tuple(dict.fromkeys([c[k] for c in self.columns]
+                                         + ([self.weights[k]] if self.weights[k] else [])))
+                     for k in (0, 1))
+
+    def finish(self, state) -> list[DistributionDistance]:
+        a, b = self.joined(state, 0), self.joined(state, 1)
+        wa = a[self.weights[0]] if self.weights[0] else None
+        wb = b[self.weights[1]] if self.weights[1] else None
+        return [distribution_distance(a[x], b[y], wa, wb) for x, y in self.columns]

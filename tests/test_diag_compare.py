@@ -349,3 +349,35 @@ def test_benjamini_hochberg_rejects_what_the_step_up_rule_rejects(seed):
         rejected = np.zeros(m, bool)
         rejected[order[:k]] = True
         np.testing.assert_array_equal(adj <= alpha, rejected)
+
+
+def test_distribution_accumulator_in_pieces_matches_scipy():
+    # pieces in any order, merged, give what the whole arrays give, and that is scipy's KS and
+    # Wasserstein (unweighted) and the hand-made weighted form's values (weighted)
+    from swarmaudit.diagnostics.accumulate import Piece, fold, merge_all
+    from swarmaudit.diagnostics.compare import DistributionComparison
+    rng = np.random.default_rng(12)
+    a = {"vx": rng.normal(0, 1, 3000), "x": rng.random(3000), "w": rng.uniform(1, 2, 3000)}
+    b = {"u": rng.normal(0.1, 1, 2500), "xx": rng.random(2500), "w": rng.uniform(1, 2, 2500)}
+    for weights in ((None, None), ("w", "w")):
+        acc = DistributionComparison([("vx", "u"), ("x", "xx")], weights)
+
+        def pieces(arrays, k, cut):
+            n = len(next(iter(arrays.values())))
+            edges = list(range(0, n, cut)) + [n]
+            return [Piece({c: v[lo:hi] for c, v in arrays.items()}, lo, hi, frame=k)
+                    for lo, hi in zip(edges[:-1], edges[1:])]
+
+        states = [fold(acc, [p]) for p in pieces(a, 0, 700) + pieces(b, 1, 400)][::-1]
+        got = acc.finish(merge_all(acc, states))
+        wa, wb = (a["w"], b["w"]) if weights[0] else (None, None)
+        want = [distribution_distance(a["vx"], b["u"], wa, wb), distribution_distance(a["x"], b["xx"], wa, wb)]
+        assert [(g.ks_statistic, g.ks_pvalue, g.wasserstein) for g in got] == \
+            [(w.ks_statistic, w.ks_pvalue, w.wasserstein) for w in want]
+        if weights[0] is None:
+            ks = stats.ks_2samp(a["vx"], b["u"], method="asymp")
+            assert got[0].ks_statistic == pytest.approx(ks.statistic)
+            assert got[0].wasserstein == pytest.approx(stats.wasserstein_distance(a["vx"], b["u"]))
+        else:
+            assert got[0].wasserstein == pytest.approx(
+                stats.wasserstein_distance(a["vx"], b["u"], a["w"], b["w"]))

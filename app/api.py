@@ -145,7 +145,7 @@ class AuditedRun:
         self.ctx = ctx
         self._inputs = dict(input_options or {})
         self._migration = None
-        self._served = None
+        self._server = None
 
     # what is in it ------------------------------------------------------------------
     @property
@@ -354,16 +354,16 @@ class AuditedRun:
         """
         import panel as pn
         from .dashboard import Dashboard, VIEW_STYLE
-        from .state import SIDE_PANELS, URL_KEYS, ServedRuns, ViewState
+        from .state import SIDE_PANELS, URL_KEYS, ServerState, ViewState
         from .view_policy import PANEL_ALIASES
         which = PANEL_ALIASES.get(which, which)
         if which not in VIEWS:
             raise OptionError(f"view() takes one of {', '.join(VIEWS)}, got '{which}'")
         _load_notebook_extension()
-        if self._served is None:
-            self._served = ServedRuns()
-            self._served.add(self.name, self.ctx)
-        view_state = ViewState(self._served)
+        if self._server is None:      # this run's own server state, shared by its views
+            self._server = ServerState()
+            self._server.add(self.name, self.ctx)
+        view_state = ViewState(self._server.runs)
         inverse = {v: k for k, v in URL_KEYS.items()}
         query = {}
         for key, value in state.items():
@@ -385,7 +385,7 @@ class AuditedRun:
                        if getattr(p, "objects", None) and len(p.objects) < 30 else "")
             raise OptionError(f"view(): {bad}={state.get(bad, state.get(refused[0]))!r} is not one "
                               f"of the choices for this run{choices}")
-        dash = Dashboard(view_state, self._served)
+        dash = Dashboard(view_state, self._server)
         if which == "dashboard":
             return dash.page()
         if which in ("space", "phase"):

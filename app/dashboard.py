@@ -19,7 +19,7 @@ import holoviews as hv
 
 from ..core.errors import SwarmAuditError
 from . import render, view_policy
-from .state import SERVED, ServedRuns, ViewState
+from .state import ServerState, ViewState
 from .view_policy import (BLOCK_MODE_LABELS, CMAPS, COLOR_BY_LABELS, LABELS, SCALING_LABELS,
                           SECTIONS)
 
@@ -78,14 +78,14 @@ def _highlight(img):
 
 
 class Dashboard(param.Parameterized):
-    """One session's page, built around its ViewState."""
+    """One session's page, built around its ViewState and the server's shared state."""
 
     reset_count = param.Integer(0, doc="bumped by 'reset zoom' to rebuild the views at their opening ranges")
 
-    def __init__(self, state: ViewState, runs: ServedRuns | None = None, **params):
+    def __init__(self, state: ViewState, server: ServerState, **params):
         super().__init__(**params)
         self.state = state
-        self.runs = runs if runs is not None else SERVED
+        self.server = server
         self._status = {"space": pn.pane.Markdown("", styles=STATUS_STYLE, margin=(0, 8)),
                         "phase": pn.pane.Markdown("", styles=STATUS_STYLE, margin=(0, 8))}
         self.problem = pn.pane.Alert("", alert_type="warning", visible=False, margin=(4, 8))
@@ -109,7 +109,7 @@ class Dashboard(param.Parameterized):
         self._update_selection_info()
         self._update_live_note()
         from .panels import SidePanels
-        self.side = SidePanels(state)
+        self.side = SidePanels(state, server)
 
     def _show_link_notes(self):
         notes = self.state.link_notes
@@ -373,7 +373,7 @@ class Dashboard(param.Parameterized):
 
         run_select = pn.widgets.Select.from_param(s.param.run, label=LABELS["run"],
                                                   sizing_mode="stretch_width")
-        run_select.visible = len(self.runs) > 1
+        run_select.visible = len(self.server.runs) > 1
         w = {}
         for p in ("species", "space_x", "space_y", "phase_x", "phase_y", "color_column"):
             w[p] = pn.widgets.Select.from_param(s.param[p], label=LABELS[p],
@@ -511,11 +511,11 @@ def _html(text) -> str:
     return html.escape(str(text))
 
 
-def build_page(runs: ServedRuns | None = None, query: dict | None = None, base_url: str = ""):
-    """The page of one session; ``query`` is the URL query (validated key by key)."""
-    state = ViewState(runs)
+def build_page(server: ServerState, query: dict | None = None, base_url: str = ""):
+    """The page of one session of ``server``; ``query`` is the URL query (validated key by key)."""
+    state = ViewState(server.runs)
     if query:
         state.apply_query(query)
-    dash = Dashboard(state, runs)
+    dash = Dashboard(state, server)
     dash.set_base_url(base_url)
     return dash, dash.page()

@@ -3,13 +3,11 @@
 Numbers come from ``core.audit`` / ``diagnostics`` and figures from
 ``app.figures`` (the builders the export uses). Work over a whole run (drift)
 or between two snapshots (migration) runs in a worker thread with a
-progress bar; its result is kept per process, so every viewer and every
-revisit gets it at once.
+progress bar; its result is kept by the server (``ServerState.results``), so
+every viewer and every revisit gets it at once.
 """
 
 from __future__ import annotations
-
-import threading
 
 import numpy as np
 import pandas as pd
@@ -19,34 +17,18 @@ import param
 
 from ..core.errors import SwarmAuditError
 from . import figures
-from .state import ALL_SPECIES, RESULTS, SIDE_PANELS, ViewState
+from .state import ALL_SPECIES, SIDE_PANELS, ServerState, ViewState
 from .view_policy import LABELS, PANELS as TAB_TITLES, SUMMARY_LABELS
 
 #: size of each side figure on the page (two side by side beside the controls)
 SIDE_W, SIDE_H = 560, 400
 
-_small_cache: dict = {}
-_small_lock = threading.Lock()
-
-
-def _cached(key, compute):
-    with _small_lock:
-        if key in _small_cache:
-            return _small_cache[key]
-    value = compute()
-    with _small_lock:
-        if len(_small_cache) > 512:
-            _small_cache.clear()
-        _small_cache[key] = value
-    return value
-
-
 def _run_key(state) -> tuple:
-    # the name a page shows plus the run object itself: two servers in one process (tests)
-    # may both call a run "demo"; the epoch changes when a live run's rescan re-opened or
-    # moved snapshots, so results computed by position are not reused for other files
+    # the name of the run in view (unique within a server, and results are per server); the
+    # epoch changes when a live run's rescan re-opened or moved snapshots, so results computed
+    # by position are not reused for other files
     served = state.served
-    return (state.run, id(served)) + ((served.epoch,) if served.epoch else ())
+    return (state.run,) + ((served.epoch,) if served.epoch else ())
 
 
 def _fit(obj, width=SIDE_W, height=SIDE_H):
@@ -61,9 +43,10 @@ def _note(text: str, kind: str = "info"):
 class SidePanels(param.Parameterized):
     """The tabs under the particle views; each tab is a view of the same state."""
 
-    def __init__(self, state: ViewState, **params):
+    def __init__(self, state: ViewState, server: ServerState, **params):
         super().__init__(**params)
         self.state = state
+        self.results = server.results
         self._moves = pn.Column(sizing_mode="stretch_width", min_height=200)
         self._totals = pn.Column(sizing_mode="stretch_width", min_height=200)
         self._watchers: dict[str, object] = {}
@@ -90,7 +73,7 @@ class SidePanels(param.Parameterized):
         s = self.state
         key = ("census", _run_key(s), int(i), s.species)
         from ..audit import tables as audit
-        return _cached(key, lambda: audit.snapshot_census(s.served.ctx, int(i), s.species))
+        return self.results.cached(key, lambda: audit.snapshot_census(s.served.ctx, int(i), s.species))
 
     def block_counts(self, i: int):
         """Particles per layout row of snapshot ``i`` (for tinting the block overlay)."""
@@ -114,7 +97,7 @@ class SidePanels(param.Parameterized):
             blocks, ranks, imb = self.census(i)
             layout = s.served.layout(i)
             from ..audit import tables as audit
-            whatif = _cached(("whatif", _run_key(s), i), lambda: audit.rebalance_table(s.served.ctx, i))
+            whatif = self.results.cached(("whatif", _run_key(s), i), lambda: audit.rebalance_table(s.served.ctx, i))
         except (ImportError, AttributeError):
             return _note("The block census is not available in this build.")
         except SwarmAuditError as exc:
@@ -256,7 +239,7 @@ class SidePanels(param.Parameterized):
         """Show ``show(result)`` in ``holder`` when ``work`` is done; a progress bar meanwhile."""
         self._token[name] += 1
         token = self._token[name]
-        fut = RESULTS.submit(key, work)
+        fut = self.results.submit(key, work)
         if fut.done():
             holder.objects = [self._outcome(fut, show)]
             return
@@ -268,7 +251,7 @@ class SidePanels(param.Parameterized):
             if self._token[name] != token:
                 cb.stop()
                 return
-            bar.value = int(100 * RESULTS.progress(key))
+            bar.value = int(100 * self.results.progress(key))
             if fut.done():
                 cb.stop()
                 holder.objects = [self._outcome(fut, show)]

@@ -23,7 +23,7 @@ from ..core.errors import OptionError
 from ..core.run import Run
 from . import login
 from .confine import outside_note
-from .state import SCAN_SECONDS, SERVED, URL_KEYS, ServedRuns, link_query
+from .state import SCAN_SECONDS, URL_KEYS, ServerState, link_query
 from .view_policy import run_name
 
 log = logging.getLogger("swarmaudit.serve")
@@ -98,10 +98,10 @@ def host_names() -> list[str]:
     return sorted(n for n in names if n)
 
 
-def _session_page(runs: ServedRuns):
+def _session_page(server: ServerState):
     """The panel app of one browser session; never a traceback on the page."""
     try:
-        return _build_session_page(runs)
+        return _build_session_page(server)
     except Exception as exc:     # the page says it failed; the server log gets one line
         log.error("page could not be built: %s: %s", type(exc).__name__, exc)
         import panel as pn
@@ -135,7 +135,7 @@ def _take_query() -> dict[str, str]:
     return link_query(search)
 
 
-def _build_session_page(runs: ServedRuns):
+def _build_session_page(server: ServerState):
     import panel as pn
 
     from .dashboard import build_page
@@ -145,7 +145,7 @@ def _build_session_page(runs: ServedRuns):
     if loc is not None:
         port = f":{loc.port}" if loc.port else ""
         base = f"{loc.protocol}//{loc.hostname}{port}{loc.pathname}"
-    dash, page = build_page(runs, query, base)
+    dash, page = build_page(server, query, base)
     # a run still being written: new snapshots join every open page (the scan itself is shared)
     pn.state.add_periodic_callback(dash.follow_run, period=int(1000 * FOLLOW_SECONDS))
     if loc is not None:
@@ -170,28 +170,32 @@ def _login_template() -> str | None:
     return path if os.path.isfile(path) else None
 
 
-def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
+def serve_runs(paths_or_contexts, args, *, ready=None, roots=None,
+               shared: ServerState | None = None) -> int:
     """Serve several runs (contexts, (name, context) pairs, or run folders) until interrupted.
 
     ``args`` carries ``port``, ``share``, ``password``, ``no_browser``.
     ``roots``: the folders the given contexts' snapshots must stay inside (run folders
     are their own root).
     ``ready(url)`` is called once the server listens (tests, the demo).
+    ``shared``: the state its sessions share (made here when not given; a test passes its own
+    to look into it).
     """
     import panel as pn
 
     from ..core.roles import RoleMap
-    runs = SERVED
+    shared = shared if shared is not None else ServerState()
+    runs = shared.runs
     for item in paths_or_contexts:
         if isinstance(item, AuditContext):
-            runs.add(run_name(item), item, roots=roots)
+            shared.add(run_name(item), item, roots=roots)
         elif isinstance(item, tuple):      # (name, context) or (name, context, its roots)
-            runs.add(item[0], item[1], roots=item[2] if len(item) > 2 else roots)
+            shared.add(item[0], item[1], roots=item[2] if len(item) > 2 else roots)
         else:
             from ..readers.discover import open_run
             ctx = AuditContext(open_run(os.fspath(item), RoleMap()))
             confine(ctx, [os.fspath(item)])
-            runs.add(run_name(ctx), ctx, roots=[os.fspath(item)])
+            shared.add(run_name(ctx), ctx, roots=[os.fspath(item)])
     if not len(runs):
         raise OptionError("nothing to serve")
 
@@ -221,14 +225,14 @@ def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
                   unused_session_lifetime_milliseconds=UNUSED_SESSION_MS, **login.TOKEN_EXCLUDES)
     if share:
         kwargs.update(auth_provider=login.auth_provider(password, _login_template()))
-    # the served runs are fixed here, once per process: every session shares them
-    app = {"/": lambda: _session_page(runs)}
+    # the served runs are fixed here, once per server: every session shares them
+    app = {"/": lambda: _session_page(shared)}
     try:
-        server = pn.serve(app, **kwargs)
+        httpd = pn.serve(app, **kwargs)
     except OSError as exc:
         raise OptionError(f"cannot listen on {address}:{port} ({exc.strerror or exc}); "
                           f"try another --port") from None
-    login.refuse_foreign_hosts(server._tornado, hosts)
+    login.refuse_foreign_hosts(httpd._tornado, hosts)
     local = f"http://127.0.0.1:{port}/"
     print(f"swarmaudit: serving {', '.join(runs.names)} at {local}", flush=True)
     if share:
@@ -246,20 +250,20 @@ def serve_runs(paths_or_contexts, args, *, ready=None, roots=None) -> int:
     print("swarmaudit: press Ctrl-C to stop", flush=True)
     # the server library puts its own SIGINT handler in ours' place: Ctrl-C stops the loop and
     # marks the interrupt, so the command ends like every other one (exit 130)
-    loop = server.io_loop
+    loop = httpd.io_loop
     interrupt.stop_with(lambda: loop.asyncio_loop.call_soon_threadsafe(loop.stop))
-    server.start()
+    httpd.start()
     if ready is not None:
-        server.io_loop.add_callback(ready, local)
+        httpd.io_loop.add_callback(ready, local)
     if not getattr(args, "no_browser", False):
-        server.io_loop.add_callback(lambda: _open_browser(local + ("login" if share else "")))
+        httpd.io_loop.add_callback(lambda: _open_browser(local + ("login" if share else "")))
     try:
-        server.io_loop.start()
+        httpd.io_loop.start()
     except KeyboardInterrupt:
         pass
     finally:
         try:
-            server.stop()
+            httpd.stop()
         except Exception:
             pass
     return 0

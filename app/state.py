@@ -1,13 +1,15 @@
-"""What the dashboard shows, as one parameterized object, and the runs it may show.
+"""What the dashboard shows, as one parameterized object, and what a server shares.
 
 :class:`ViewState` holds the whole view (run, snapshot, species, axes, ranges,
 colouring, overlays, side panel, selection). A shared link is that state
 written into the URL query; :meth:`ViewState.apply_query` reads it back one
 key at a time and refuses what it does not know, so no URL can name a file.
 
-:class:`ServedRuns` is the per-process registry of the runs a server was
-started with. Sessions share it: a run's columns are read once per process,
-whatever the number of viewers.
+:class:`ServerState` is what one server shares between its sessions: the
+runs it was started with (:class:`ServedRuns`; a run's columns are read once,
+whatever the number of viewers) and the results of slow work
+(:class:`Results`). Whoever serves pages makes one (``serve``, a notebook's
+``view()``, a test) and hands it to every page it builds.
 """
 
 from __future__ import annotations
@@ -256,18 +258,25 @@ class ServedRuns:
 
 
 class Results:
-    """Results of slow work (drift over a run, migration between two snapshots), shared by sessions.
+    """Results of work shared by the sessions of one server.
 
-    ``submit(key, fn)`` starts ``fn`` in a worker thread once per key; every
-    session asking for the same key gets the same future, and a revisit is
-    instant.
+    ``submit(key, fn)`` starts slow work (drift over a run, migration between
+    two snapshots) in a worker thread once per key; every session asking for
+    the same key gets the same future, and a revisit is instant.
+    ``cached(key, compute)`` keeps a quick per-snapshot answer (a census, a
+    pairing) computed where it is asked for.
     """
+
+    #: quick answers kept before the oldest are let go
+    KEEP = 512
 
     def __init__(self, workers: int = 2):
         self._pool = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="swarmaudit")
         self._futures: dict[tuple, Future] = {}
         self._progress: dict[tuple, float] = {}
         self._lock = threading.Lock()
+        self._small: dict = {}
+        self._small_lock = threading.Lock()
 
     def submit(self, key: tuple, fn, *args) -> Future:
         with self._lock:
@@ -290,10 +299,29 @@ class Results:
         fut = self._futures.get(key)
         return fut.result() if fut is not None and fut.done() else None
 
+    def pending(self) -> list[Future]:
+        """The futures of work not finished yet."""
+        with self._lock:
+            return [f for f in self._futures.values() if not f.done()]
+
+    def cached(self, key, compute):
+        """``compute()`` once per key (a failure is not kept: it raises again next time)."""
+        with self._small_lock:
+            if key in self._small:
+                return self._small[key]
+        value = compute()
+        with self._small_lock:
+            if len(self._small) > self.KEEP:
+                self._small.clear()
+            self._small[key] = value
+        return value
+
     def clear(self) -> None:
         with self._lock:
             self._futures.clear()
             self._progress.clear()
+        with self._small_lock:
+            self._small.clear()
 
 
 def _retry(fut: Future) -> bool:
@@ -301,9 +329,21 @@ def _retry(fut: Future) -> bool:
     return not isinstance(fut.exception(), SwarmAuditError)
 
 
-#: the registry of this server process (filled by serve.serve_runs)
-SERVED = ServedRuns()
-RESULTS = Results()
+class ServerState:
+    """What one server shares between its sessions: the runs it serves and the results of work.
+
+    Every page of the server is built around the same object (handed to
+    :func:`.dashboard.build_page`); two servers in one process (tests, a
+    notebook beside ``serve``) share nothing.
+    """
+
+    def __init__(self, runs: ServedRuns | None = None, workers: int = 2):
+        self.runs = runs if runs is not None else ServedRuns()
+        self.results = Results(workers)
+
+    def add(self, name: str, ctx, roots: list[str] | None = None) -> ServedRun:
+        """Serve one more run (a taken name gets a suffix); the served run."""
+        return self.runs.add(name, ctx, roots=roots)
 
 
 # ---------------------------------------------------------------------------
@@ -374,8 +414,8 @@ class ViewState(param.Parameterized):
     run_revision = param.Integer(0, doc="bumped when snapshots joined or left the run in view")
     data_revision = param.Integer(0, doc="bumped when the files of the snapshot in view changed")
 
-    def __init__(self, runs: ServedRuns | None = None, **params):
-        self._runs = runs if runs is not None else SERVED
+    def __init__(self, runs: ServedRuns, **params):
+        self._runs = runs
         #: one sentence per link value that was left out (shown on the page)
         self.link_notes: list[str] = []
         names = self._runs.names

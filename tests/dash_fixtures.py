@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from swarmaudit.app.state import ServerState
 from swarmaudit.core.context import AuditContext
 from swarmaudit.core.errors import InputError
 from swarmaudit.core.frame import Frame, Snapshot
@@ -47,3 +48,11 @@ def memory_context(nsnap=3, n=4000, nan_at=None, bad_at=None, name="mem"):
     run = Run(refs, lambda ref, rm: snaps[refs.index(ref)], source=f"/runs/{name}")
     layout = regular_layout([0, 4, 0, 2], [16, 8], [4, 2], periodic=("x", "y"), ranks=2)
     return AuditContext(run, layout)
+
+
+def server_of(*named):
+    """A server's shared state serving ``(name, context)`` pairs, in order (what ``serve`` makes)."""
+    server = ServerState()
+    for name, ctx in named:
+        server.add(name, ctx)
+    return server

@@ -8,19 +8,22 @@ import time
 
 import numpy as np
 import pytest
-from dash_fixtures import memory_context, two_beam_snapshot
+from dash_fixtures import memory_context, server_of, two_beam_snapshot
 
 from swarmaudit.app import render, view_policy
 from swarmaudit.app.dashboard import Dashboard, build_page
-from swarmaudit.app.state import RESULTS, URL_KEYS, ServedRuns, ViewState
+from swarmaudit.app.state import URL_KEYS, ViewState
 
 
 @pytest.fixture
-def runs():
-    r = ServedRuns()
-    r.add("beams", memory_context(nsnap=4, n=3000, nan_at=2, bad_at=3))
-    r.add("single", memory_context(nsnap=1, n=500, name="single"))
-    return r
+def server():
+    return server_of(("beams", memory_context(nsnap=4, n=3000, nan_at=2, bad_at=3)),
+                     ("single", memory_context(nsnap=1, n=500, name="single")))
+
+
+@pytest.fixture
+def runs(server):
+    return server.runs
 
 
 def test_defaults_follow_roles(runs):
@@ -83,10 +86,10 @@ def _image_counts(overlay):
     return np.nan_to_num(img.dimension_values(2, flat=False))
 
 
-def test_space_view_equals_histogram2d(runs):
+def test_space_view_equals_histogram2d(runs, server):
     s = ViewState(runs)
     s.species = "beam_right"
-    dash = Dashboard(s, runs)
+    dash = Dashboard(s, server)
     frame = s.frame()
     xr, yr = (0.0, 4.0), (0.0, 2.0)
     out = dash.render_view("space", x_range=xr, y_range=yr, snapshot=0)
@@ -100,10 +103,10 @@ def test_space_view_equals_histogram2d(runs):
     assert s.space_xr == xr and s.space_yr == yr     # the zoom is part of the state (and link)
 
 
-def test_weight_colouring_sums_weights(runs):
+def test_weight_colouring_sums_weights(runs, server):
     s = ViewState(runs)
     s.param.update(species="beam_left", color_by="weight")
-    dash = Dashboard(s, runs)
+    dash = Dashboard(s, server)
     f = s.frame()
     out = dash.render_view("phase", x_range=(0.0, 4.0), y_range=(-2.0, 2.0), snapshot=0)
     nx, ny = dash.shown["phase"][0].grid
@@ -112,10 +115,10 @@ def test_weight_colouring_sums_weights(runs):
     np.testing.assert_allclose(_image_counts(out), ref.T)
 
 
-def test_linked_selection_counts_and_weight(runs):
+def test_linked_selection_counts_and_weight(runs, server):
     s = ViewState(runs)
     s.species = "beam_right"
-    dash = Dashboard(s, runs)
+    dash = Dashboard(s, server)
     f = s.frame()
     box = (0.5, 0.25, 2.0, 1.5)
     s.param.update(select_view="space", select_box=box)
@@ -134,17 +137,17 @@ def test_linked_selection_counts_and_weight(runs):
     np.testing.assert_array_equal(layer > 0, ref.T > 0)
 
 
-def test_nan_positions_are_reported(runs):
+def test_nan_positions_are_reported(runs, server):
     s = ViewState(runs)
     s.param.update(species="beam_right", snapshot=2)
-    dash = Dashboard(s, runs)
+    dash = Dashboard(s, server)
     dash.render_view("space", snapshot=2)
     assert "7 with NaN/inf coordinates left out" in dash._status["space"].object
 
 
-def test_unreadable_snapshot_shows_a_message_and_the_rest_works(runs):
+def test_unreadable_snapshot_shows_a_message_and_the_rest_works(runs, server):
     s = ViewState(runs)
-    dash = Dashboard(s, runs)
+    dash = Dashboard(s, server)
     s.snapshot = 3
     assert dash.problem.visible and "truncated" in dash.problem.object
     out = dash.render_view("space", snapshot=3)          # no exception: a message element
@@ -156,8 +159,8 @@ def test_unreadable_snapshot_shows_a_message_and_the_rest_works(runs):
     assert "particles binned" in dash._status["space"].object
 
 
-def test_one_snapshot_run_hides_migration_and_drift(runs):
-    dash, _ = build_page(runs, {"run": "single"})
+def test_one_snapshot_run_hides_migration_and_drift(server):
+    dash, _ = build_page(server, {"run": "single"})
     assert dash.state.run == "single"
     moves = dash.side.moves_panel()
     totals = dash.side.totals_panel()
@@ -174,12 +177,11 @@ def test_slab_of_a_3d_run(runs):
     snap = Snapshot("/mem/cube.npz", {"p": Frame("p", 5000, {k: (lambda v=v: v) for k, v in cols.items()})})
     ref = SnapshotRef("cube.npz", ["/mem/cube.npz"])
     ctx = AuditContext(Run([ref], lambda r, m: snap), regular_layout([0, 1] * 3, [4] * 3, [2] * 3))
-    r = ServedRuns()
-    r.add("cube", ctx)
-    s = ViewState(r)
+    cube = server_of(("cube", ctx))
+    s = ViewState(cube.runs)
     assert s.slab_axis == "z"
     s.slab_range = (0.25, 0.5)
-    dash = Dashboard(s, r)
+    dash = Dashboard(s, cube)
     xr, yr = (0.0, 0.5), (0.0, 0.5)
     out = dash.render_view("space", x_range=xr, y_range=yr, snapshot=0, slab_range=s.slab_range)
     nx, ny = dash.shown["space"][0].grid
@@ -189,19 +191,21 @@ def test_slab_of_a_3d_run(runs):
     np.testing.assert_array_equal(_image_counts(out), ref2.T)
 
 
-def test_sessions_share_one_copy_and_one_result(runs):
+def test_sessions_share_one_copy_and_one_result(runs, server):
     a, b = ViewState(runs), ViewState(runs)
     assert a.frame() is b.frame()
     assert a.frame()["x"] is b.frame()["x"]
-    da, db = Dashboard(a, runs), Dashboard(b, runs)
+    da, db = Dashboard(a, server), Dashboard(b, server)
     a.snapshot = b.snapshot = 1
     da.side.moves_panel()
     db.side.moves_panel()
-    key = ("moves", ("beams", id(runs["beams"])), 0, 1, "all")
+    key = ("moves", ("beams",), 0, 1, "all")
+    results = server.results
     deadline = time.time() + 30
-    while RESULTS.get(key) is None and time.time() < deadline:
+    while results.get(key) is None and time.time() < deadline:
         time.sleep(0.05)
-    moves, summary, disp, steps = RESULTS.get(key)
+    moves, summary, disp, steps = results.get(key)
+    assert len(results._futures) == 1        # the second session asked for the same future
     # every particle keeps its id between the two snapshots of the fixture
     assert int(summary["matched"].iloc[0]) == 6000 and steps == 10
     assert disp.size == 6000
@@ -220,3 +224,17 @@ def test_fixture_beams_move_with_their_velocity():
     # guard on the fixture itself: beam_right drifts +x between snapshots
     a, b = two_beam_snapshot(0), two_beam_snapshot(1)
     assert a.frame("beam_right").length == b.frame("beam_right").length
+
+
+def test_two_servers_in_one_process_share_nothing():
+    # two servers may both call their run "beams": each page's census is its own run's
+    small = server_of(("beams", memory_context(nsnap=2, n=300)))
+    large = server_of(("beams", memory_context(nsnap=2, n=900)))
+    counts = []
+    for server in (small, large):
+        dash = Dashboard(ViewState(server.runs), server)
+        blocks, _, _ = dash.side.census(0)
+        counts.append(int(blocks["count"].sum()))
+    # two species per snapshot in the fixture: 2 n particles (numpy-free count of the fixture)
+    assert counts == [600, 1800]
+    assert small.results is not large.results and small.runs is not large.runs

@@ -213,19 +213,20 @@ def test_a_per_rank_folder_with_fewer_files_waits_for_the_rest(tmp_path, capsys)
 
 @pytest.fixture
 def live(tmp_path):
-    from swarmaudit.app.state import ServedRuns, ViewState
+    from swarmaudit.app.state import ServerState, ViewState
     run = tmp_path / "live"
     run.mkdir()
     write_h5(run, 0)
     write_h5(run, 10)
     ctx = AuditContext(open_run(str(run)))
-    runs = ServedRuns()
-    served = runs.add("live", ctx, roots=[str(run)])
-    return run, runs, served, ViewState
+    server = ServerState()
+    served = server.add("live", ctx, roots=[str(run)])
+    return run, server, served, ViewState
 
 
 def test_rescan_extends_the_served_run_in_place(live, tmp_path):
-    run, runs, served, ViewState = live
+    run, server, served, ViewState = live
+    runs = server.runs
     a, b = ViewState(runs), ViewState(runs)
     b.snapshot = 1
     x0 = a.frame()["x"]
@@ -269,7 +270,8 @@ def test_rescan_extends_the_served_run_in_place(live, tmp_path):
 
 
 def test_rewritten_snapshot_is_reopened_and_its_viewers_redraw(live):
-    run, runs, served, ViewState = live
+    run, server, served, ViewState = live
+    runs = server.runs
     a, b = ViewState(runs), ViewState(runs)
     b.snapshot = 1
     old = b.frame()
@@ -286,7 +288,8 @@ def test_rewritten_snapshot_is_reopened_and_its_viewers_redraw(live):
 
 
 def test_a_snapshot_sorted_in_before_keeps_each_view_on_its_snapshot(live):
-    run, runs, served, ViewState = live
+    run, server, served, ViewState = live
+    runs = server.runs
     s = ViewState(runs)
     s.snapshot = 1                                # step 10
     write_h5(run, 5)                              # a late arrival between 0 and 10
@@ -297,7 +300,7 @@ def test_a_snapshot_sorted_in_before_keeps_each_view_on_its_snapshot(live):
 
 
 def test_a_symlink_added_later_is_still_confined(live, tmp_path):
-    run, runs, served, _ = live
+    run, _, served, _ = live
     outside = tmp_path / "elsewhere"
     outside.mkdir()
     write_h5(outside, 99)
@@ -308,7 +311,7 @@ def test_a_symlink_added_later_is_still_confined(live, tmp_path):
 
 
 def test_rescans_are_shared_and_rate_limited(live):
-    run, runs, served, _ = live
+    run, _, served, _ = live
     served.refresh(min_interval=0)
     scans = served.scans
     write_h5(run, 20)
@@ -321,8 +324,8 @@ def test_rescans_are_shared_and_rate_limited(live):
 def test_the_page_timer_grows_the_player(live):
     import panel as pn
     from swarmaudit.app.dashboard import build_page
-    run, runs, served, _ = live
-    dash, page = build_page(runs)
+    run, server, served, _ = live
+    dash, page = build_page(server)
     player = page.select(pn.widgets.Player)[0]
     assert player.end == 1
     write_h5(run, 20)

@@ -32,7 +32,7 @@ def server(tmp_path):
     from bench_viewers import write_run
 
     from swarmaudit.app import serve
-    from swarmaudit.app.state import SERVED
+    from swarmaudit.app.state import ServerState
     from swarmaudit.core.column import Column
     from swarmaudit.core.context import AuditContext
     from swarmaudit.readers.discover import open_run
@@ -49,6 +49,7 @@ def server(tmp_path):
                     return load()
                 frame._loaders[col] = Column(counted)
     box = {}
+    shared = ServerState()
 
     def ready(url):
         from tornado.ioloop import IOLoop
@@ -58,7 +59,7 @@ def server(tmp_path):
         asyncio.set_event_loop(asyncio.new_event_loop())
         args = SimpleNamespace(port=0, share=False, password=None, no_browser=True)
         try:
-            serve.serve_runs([("many", ctx)], args, ready=ready)
+            serve.serve_runs([("many", ctx)], args, ready=ready, shared=shared)
         except Exception as exc:         # shown by the test instead of a silent thread
             box["error"] = exc
 
@@ -69,19 +70,17 @@ def server(tmp_path):
         time.sleep(0.05)
     assert "url" in box, box.get("error", "the server did not start")
     try:
-        yield box["url"], reads, SERVED["many"]
+        yield box["url"], reads, shared
     finally:
         box["loop"].add_callback(box["loop"].stop)
         thread.join(timeout=20)
-        SERVED._runs.pop("many", None)
 
 
-def _background_work_done(timeout=60):
+def _background_work_done(shared, timeout=60):
     """Wait for the shared run-wide work (drift, migration) the pages started."""
-    from swarmaudit.app.state import RESULTS
     deadline = time.time() + timeout
     while time.time() < deadline:
-        if all(f.done() for f in list(RESULTS._futures.values())):
+        if not shared.results.pending():
             return
         time.sleep(0.1)
     raise AssertionError("the shared background work did not finish")
@@ -91,12 +90,13 @@ def test_eight_sessions_share_one_copy(server):
     need("playwright.async_api")
     import psutil
     from bench_viewers import drive_sessions
-    url, reads, served = server
+    url, reads, shared = server
+    served = shared.runs["many"]
 
     # one viewer first: it reads what the page shows (and the run-wide totals read theirs)
     first = drive_sessions(url, 1, timeout=60, viewport=(1000, 800))
     assert not first[0]["errors"] and first[0]["stepped"], first
-    _background_work_done()
+    _background_work_done(shared)
     after_one = dict(reads)
     rss0 = psutil.Process().memory_info().rss
     for i in (0, 1):
@@ -110,7 +110,7 @@ def test_eight_sessions_share_one_copy(server):
     # a smaller window than a desk's: the browser paints less, the server's work is the same
     results = drive_sessions(url, SESSIONS, timeout=150, viewport=(1000, 800))
     seconds = time.perf_counter() - t
-    _background_work_done()
+    _background_work_done(shared)
     rss1 = psutil.Process().memory_info().rss
 
     errors = {r["session"]: r["errors"] for r in results if r["errors"]}

@@ -7,12 +7,12 @@ the same particles on the same edges (the outside reference).
 
 import numpy as np
 import pytest
-from dash_fixtures import memory_context
+from dash_fixtures import memory_context, server_of
 
 from swarmaudit.app import view_policy as policy
 from swarmaudit.app.dashboard import build_page
 from swarmaudit.app.export import ExportOptions, export_run
-from swarmaudit.app.state import ServedRuns, ViewState, link_query
+from swarmaudit.app.state import ViewState, link_query
 
 
 @pytest.fixture
@@ -21,18 +21,21 @@ def ctx():
 
 
 @pytest.fixture
-def runs(ctx):
-    r = ServedRuns()
-    r.add(policy.run_name(ctx), ctx)     # the name serve gives the run
-    return r
+def server(ctx):
+    return server_of((policy.run_name(ctx), ctx))     # the name serve gives the run
+
+
+@pytest.fixture
+def runs(server):
+    return server.runs
 
 
 LINK = ("http://127.0.0.1:5006/?snap=1&sp=beam_left&sx=x&sy=y&px=x&py=vx"
         "&sxr=%5B0.5%2C+3.5%5D&syr=%5B0.25%2C+1.75%5D&scale=log&color=weight&tab=drift")
 
 
-def test_a_link_exported_headlessly_is_the_screens_picture(ctx, runs, tmp_path):
-    dash, _ = build_page(runs, link_query(LINK.split("?", 1)[1]))
+def test_a_link_exported_headlessly_is_the_screens_picture(ctx, server, tmp_path):
+    dash, _ = build_page(server, link_query(LINK.split("?", 1)[1]))
     assert dash.state.link_notes == []
     for which in ("space", "phase"):
         dash.render_view(which)
@@ -109,8 +112,8 @@ PROBES = [
 
 
 @pytest.mark.parametrize("key,value,why", PROBES)
-def test_an_edited_link_value_is_dropped_with_a_note_and_the_views_draw(runs, key, value, why):
-    dash, _ = build_page(runs, link_query(f"snap=1&{key}={value}"))
+def test_an_edited_link_value_is_dropped_with_a_note_and_the_views_draw(server, key, value, why):
+    dash, _ = build_page(server, link_query(f"snap=1&{key}={value}"))
     s = dash.state
     assert s.space_xr is None and s.space_yr is None and s.phase_xr is None and s.phase_yr is None
     assert s.select_box is None and s.slab_range is None
@@ -134,17 +137,17 @@ def test_a_range_set_directly_is_checked_by_the_parameter(runs):
     assert s.space_xr == (0.5, 1.5)
 
 
-def test_a_zoom_too_far_from_the_data_draws_the_opening_range(runs):
-    dash, _ = build_page(runs, {})
+def test_a_zoom_too_far_from_the_data_draws_the_opening_range(server):
+    dash, _ = build_page(server, {})
     dash.render_view("space", x_range=(-1e12, 1e12), y_range=(0.0, 1.0))
     view, _ = dash.shown["space"]
     assert view.x_range == view.opening[0] and view.notes
     assert dash.state.space_xr is None                     # not stored in the link either
 
 
-def test_old_tab_names_in_links_still_open_their_panel(runs):
-    assert build_page(runs, {"tab": "moves"})[0].state.side == "migration"
-    assert build_page(runs, {"tab": "totals"})[0].state.side == "drift"
+def test_old_tab_names_in_links_still_open_their_panel(server):
+    assert build_page(server, {"tab": "moves"})[0].state.side == "migration"
+    assert build_page(server, {"tab": "totals"})[0].state.side == "drift"
 
 
 def test_names_are_one_per_thing():

@@ -263,6 +263,13 @@ class AuditedRun:
         """``migration_summary.csv``: matched, migrated, created, lost and jumps per snapshot pair."""
         return self._migration_tables()[1].copy()
 
+    def halo(self, snapshot: int = 0, width_cells: float = 1) -> pd.DataFrame:
+        """Per block of one snapshot: its particles (``count``) and how many of them other
+        blocks need as ghosts within ``width_cells`` level-0 cells (``halo``), per species
+        and ``all`` (the README's *Halo*)."""
+        from ..audit.tables import halo_table
+        return halo_table(self.ctx, snapshot, width_cells)
+
     def drift(self) -> pd.DataFrame:
         """``drift.csv``: every total of every snapshot against the first snapshot."""
         from ..audit.tables import drift_table

@@ -17,7 +17,7 @@ import pandas as pd
 
 from ..diagnostics import census as _census
 from ..diagnostics import drift as _drift
-from ..diagnostics.halo import halo_counts
+from ..diagnostics.halo import Halo
 from ..diagnostics.migration import DuplicateKeyError, Migration, MigrationResult
 from ..diagnostics.rebalance import rebalance_whatif
 from .cache import cached_reduction, context_cache, has_files, layout_fingerprint
@@ -350,8 +350,7 @@ def halo_table(ctx: AuditContext, i: int, width_cells: float = 1) -> pd.DataFram
                        "left out of the halo table")
             continue
         with _transient([frame]):
-            pos = frame.positions()
-            parts.append(halo_counts(pos, assign_blocks(pos, layout), layout, width_cells)
+            parts.append(reduce(Halo(layout, frame.position_names, width_cells), frame, ctx)
                          .assign(species=s))
     if not parts:
         return pd.DataFrame(columns=["snapshot", "species", "block", "count", "halo"])

@@ -23,7 +23,8 @@ import itertools
 import numpy as np
 import pandas as pd
 
-from ..core.layout import BlockLayout, _as_columns
+from ..core.layout import BlockLayout, _as_columns, assign_blocks
+from .accumulate import Accumulator
 
 #: (particle, neighbour) pairs tested at a time: bounds the temporary arrays
 _PAIRS_AT_ONCE = 1 << 21
@@ -174,19 +175,58 @@ def halo_mask(positions, block_ids, layout: BlockLayout, width_cells: float = 1)
     return halo
 
 
-def halo_counts(positions, block_ids, layout: BlockLayout, width_cells: float = 1) -> pd.DataFrame:
-    """Per block: particles (``count``) and those other blocks need within ``width_cells`` (``halo``).
-
-    Every layout block gets a row; a ``-1`` row (halo 0) collects particles in no block.
-    """
+def _count(state, positions, block_ids, layout: BlockLayout, width_cells: float):
     rows = layout.block_index(np.asarray(block_ids))
     mask = halo_mask(positions, block_ids, layout, width_cells)
-    shifted = rows + 1
-    count = np.bincount(shifted, minlength=layout.nblocks + 1)
-    halo = np.bincount(shifted[mask], minlength=layout.nblocks + 1)
+    shifted = rows + 1                         # slot 0: in no block
+    state["count"] += np.bincount(shifted, minlength=layout.nblocks + 1)
+    state["halo"] += np.bincount(shifted[mask], minlength=layout.nblocks + 1)
+    return state
+
+
+def _table(state, layout: BlockLayout) -> pd.DataFrame:
+    count, halo = state["count"], state["halo"]
     df = pd.DataFrame({"block": layout.block_id.astype(np.int64), "count": count[1:].astype(np.int64),
                        "halo": halo[1:].astype(np.int64)})
     if count[0]:
         df = pd.concat([df, pd.DataFrame({"block": [-1], "count": [int(count[0])], "halo": [0]})],
                        ignore_index=True)
     return df
+
+
+def _empty(layout: BlockLayout) -> dict:
+    n = layout.nblocks + 1
+    return {"count": np.zeros(n, np.int64), "halo": np.zeros(n, np.int64)}
+
+
+def halo_counts(positions, block_ids, layout: BlockLayout, width_cells: float = 1) -> pd.DataFrame:
+    """Per block: particles (``count``) and those other blocks need within ``width_cells`` (``halo``).
+
+    Every layout block gets a row; a ``-1`` row (halo 0) collects particles in no block.
+    """
+    return _table(_count(_empty(layout), positions, block_ids, layout, width_cells), layout)
+
+
+class Halo(Accumulator):
+    """:func:`halo_counts` of a frame fed in pieces: whether a particle is in a halo depends
+    on it alone (its position and the layout), so the counts of the pieces add up."""
+
+    reads_once = True
+
+    def __init__(self, layout: BlockLayout, positions, width_cells: float = 1):
+        self.layout = layout
+        self.columns = tuple(positions)
+        self.width_cells = float(width_cells)
+
+    def start(self):
+        return _empty(self.layout)
+
+    def add(self, state, piece):
+        pos = [piece[c] for c in self.columns]
+        return _count(state, pos, assign_blocks(pos, self.layout), self.layout, self.width_cells)
+
+    def merge(self, a, b):
+        return {k: a[k] + b[k] for k in a}
+
+    def finish(self, state) -> pd.DataFrame:
+        return _table(state, self.layout)

@@ -83,6 +83,14 @@ def test_tables_are_the_exported_csvs(sample):
     assert os.path.isfile(res.report)
 
 
+def test_halo_is_the_audit_table(sample):
+    from swarmaudit.audit.tables import halo_table
+    got = sample["run"].halo(0, width_cells=2)
+    pd.testing.assert_frame_equal(got, halo_table(sample["run"].ctx, 0, 2))
+    a = got[got["species"] == "all"]
+    assert a["count"].sum() == sum(len(sample["run"].frame(0, s)) for s in sample["run"].species)
+
+
 def test_snapshots_table(sample):
     t = sample["run"].snapshots
     assert t["snapshot"].tolist() == list(range(SNAPS))

@@ -779,7 +779,7 @@ def pair_displacements(ctx: AuditContext, a: int, b: int, species) -> tuple[np.n
     keys, which the migration tables note) are left out. Returns the
     displacements and the steps between the snapshots (None when unknown).
     """
-    from ..diagnostics.migration import match_keys, matched_displacement
+    from ..diagnostics.migration import Displacements
     sa, sb = ctx.run[a], ctx.run[b]
     layout = ctx.layout(a)
     steps = (sb.step - sa.step) if (sa.step is not None and sb.step is not None) else None
@@ -791,11 +791,11 @@ def pair_displacements(ctx: AuditContext, a: int, b: int, species) -> tuple[np.n
         ka, kb = fa.key_columns(), fb.key_columns()
         if not ka or not kb or len(ka) != len(kb):
             continue
+        acc = Displacements((ka, kb), (fa.position_names, fb.position_names), layout)
         with transient_columns([fa, fb]):
             try:
-                m = match_keys(fa.key(), fb.key())
+                parts.append(reduce(acc, [fa, fb], ctx))
             except DuplicateKeyError:
                 continue
-            parts.append(matched_displacement(fa.positions(), fb.positions(), m.ia, m.ib, layout))
     disp = np.concatenate(parts) if parts else np.zeros(0)
     return disp, (int(steps) if steps is not None and steps > 0 else None)

@@ -17,7 +17,7 @@ import pandas as pd
 from ..core.errors import SwarmAuditError
 from ..core.layout import BlockLayout, assign_blocks
 from . import _kernels
-from .accumulate import Accumulator
+from .accumulate import Accumulator, KeepRows
 
 
 class DuplicateKeyError(SwarmAuditError):
@@ -328,6 +328,36 @@ def matched_displacement(pos_a, pos_b, ia, ib, layout: BlockLayout) -> np.ndarra
         return _kernels.matched_pairs(ia, ib, None, [np.asarray(p) for p in pos_a],
                                       [np.asarray(p) for p in pos_b], layout)[1]
     return displacement_cells([np.asarray(p)[ia] for p in pos_a], [np.asarray(p)[ib] for p in pos_b], layout)
+
+
+class Displacements(KeepRows):
+    """The displacement in level-0 cells of every particle matched between two frames
+    (0: the earlier snapshot, 1: the later), by :func:`match_keys` and
+    :func:`matched_displacement`: what the displacement histogram shows. ``keys`` and
+    ``positions`` are column names, one tuple per frame; a repeated key raises
+    :class:`DuplicateKeyError` from ``finish``."""
+
+    def __init__(self, keys, positions, layout: BlockLayout):
+        self.keys = tuple(tuple(k) for k in keys)
+        self.positions = tuple(tuple(p) for p in positions)
+        self.layout = layout
+        if len(self.keys[0]) != len(self.keys[1]) or not self.keys[0]:
+            raise ValueError("both snapshots need the same number of key columns")
+
+    @property
+    def frame_columns(self):
+        return tuple(tuple(dict.fromkeys(self.keys[k] + self.positions[k])) for k in (0, 1))
+
+    def finish(self, state) -> np.ndarray:
+        a, b = self.joined(state, 0), self.joined(state, 1)
+
+        def key(cols, k):
+            names = self.keys[k]
+            return cols[names[0]] if len(names) == 1 else tuple(cols[n] for n in names)
+
+        m = match_keys(key(a, 0), key(b, 1))
+        return matched_displacement([a[c] for c in self.positions[0]], [b[c] for c in self.positions[1]],
+                                    m.ia, m.ib, self.layout)
 
 
 def _owner(layout: BlockLayout, blocks: np.ndarray) -> np.ndarray:

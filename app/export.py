@@ -82,12 +82,11 @@ def _movie_format(args):
 
 
 def check_cmap(name: str) -> None:
-    from holoviews.plotting.util import process_cmap
-    try:
-        process_cmap(name, ncolors=8)
-    except Exception:
-        raise OptionError(f"--cmap: no colour map named '{name}' (try viridis, magma, "
-                          "cividis, fire, kbc)") from None
+    """Refuse a colour-map name nothing can draw (matplotlib's and colorcet's names are known)."""
+    from .colours import cmap_problem
+    problem = cmap_problem(name)
+    if problem:
+        raise OptionError(f"--cmap: {problem}")
 
 
 def parse_pair(text, option: str):

@@ -180,10 +180,10 @@ def _label_points(table: pd.DataFrame):
 
 def _bright_under(fraction, cmap) -> np.ndarray:
     """True where the colour map at ``fraction`` is light enough for dark text."""
-    from holoviews.plotting.util import process_cmap
+    from .colours import palette
     try:
-        colours = process_cmap(cmap, ncolors=256)
-    except Exception:
+        colours = palette(cmap, 256)
+    except (ValueError, TypeError):
         return np.zeros(len(fraction), dtype=bool)
     idx = np.clip((np.nan_to_num(fraction) * 255).astype(int), 0, 255)
     rgb = np.array([[int(c[k:k + 2], 16) / 255 for k in (1, 3, 5)] for c in colours])[idx]

@@ -242,43 +242,11 @@ def shared_norm(arrays, scaling: str):
 
     The ends are the smallest and largest non-empty bin over all frames
     (empty bins stay transparent, as in a single figure). For ``eq_hist`` the
-    equalisation is computed once from the bins of every frame pooled, with
-    holoviews' own ``EqHistNormalize`` binning, and then kept fixed.
+    equalisation is computed once from the bins of every frame pooled
+    (``colours.eq_hist_edges``, holoviews' binning) and then kept fixed.
     """
-    from matplotlib.colors import LogNorm, Normalize
-    values = [np.asarray(a, dtype=np.float64) for a in arrays]
-    pooled = np.concatenate([v[np.isfinite(v) & (v > 0)].ravel() for v in values]) if values else np.zeros(0)
-    if pooled.size == 0:
-        return Normalize(0.0, 1.0), (0.0, 1.0)
-    lo, hi = float(pooled.min()), float(pooled.max())
-    if hi <= lo:
-        hi = lo + 1.0
-    if scaling == "linear":
-        return Normalize(lo, hi), (lo, hi)
-    if scaling == "log":
-        return LogNorm(lo, hi), (lo, hi)
-    norm = _fixed_eq_hist_class()(vmin=lo, vmax=hi)
-    norm._bin_edges = norm.binning(pooled, norm._ncolors)
-    return norm, (lo, hi)
-
-
-_EQ_HIST = {}
-
-
-def _fixed_eq_hist_class():
-    """holoviews' EqHistNormalize with its equalisation frozen (it re-bins every array it is given)."""
-    if "cls" not in _EQ_HIST:
-        from holoviews.plotting.mpl.util import EqHistNormalize
-
-        class FixedEqHistNormalize(EqHistNormalize):
-            def process_value(self, data):
-                isscalar = np.isscalar(data)
-                arr = np.array([data], dtype=np.float64) if isscalar else np.asarray(data, dtype=np.float64)
-                out = np.interp(arr, self._bin_edges, self._color_bins)
-                return np.ma.masked_invalid(out), isscalar
-
-        _EQ_HIST["cls"] = FixedEqHistNormalize
-    return _EQ_HIST["cls"]
+    from .colours import scale_norm, shown_values
+    return scale_norm([shown_values(a, "count", scaling) for a in arrays], scaling)
 
 
 # encoding ------------------------------------------------------------------------------------

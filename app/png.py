@@ -130,7 +130,8 @@ def _equalised_colorbar(fig, cax):
     """
     cbar = getattr(cax, "_colorbar", None)
     norm = getattr(cbar, "norm", None)
-    if norm is None or not any(t.__name__ == "EqHistNormalize" for t in type(norm).__mro__):
+    if norm is None or not any(t.__name__ in ("EqHistNormalize", "EqHistNorm")
+                               for t in type(norm).__mro__):
         return cax
     from matplotlib.cm import ScalarMappable
     from matplotlib.colors import Normalize

@@ -17,7 +17,6 @@ import pandas as pd
 import xarray as xr
 
 import datashader as ds
-import holoviews as hv
 
 from ..engine import dask_backend
 from ..diagnostics._colstats import finite_stats
@@ -30,6 +29,7 @@ _BACKENDS = ("bokeh", "matplotlib")
 
 
 def _ensure_backends():
+    import holoviews as hv
     # Options are declared per backend; both registries must exist for that,
     # and loading them must not change which backend the caller renders with.
     current = hv.Store.current_backend if hv.Store.renderers else None
@@ -237,15 +237,13 @@ def density_image(agg: xr.DataArray, *, cmap: str, scaling: str = "eq_hist", tit
     Empty pixels (zero count, or no particle for a mean) are left transparent
     so the background and overlays show through.
     """
+    import holoviews as hv
     _ensure_backends()
     if scaling not in SCALINGS:
         raise OptionError(f"scaling takes one of {', '.join(SCALINGS)}, got '{scaling}'")
     ydim, xdim = agg.dims[:2]
-    data = np.asarray(agg.values, dtype=np.float64)
-    if agg.attrs.get("reduction", "count") == "count":
-        data = np.where(data > 0, data, np.nan)
-    elif scaling == "log":
-        data = np.where(data > 0, data, np.nan)
+    from .colours import shown_values
+    data = shown_values(agg.values, agg.attrs.get("reduction", "count"), scaling)
     xs = np.asarray(agg.coords[xdim].values, dtype=np.float64)
     ys = np.asarray(agg.coords[ydim].values, dtype=np.float64)
     xr_ = agg.attrs.get("x_range") or (xs[0], xs[-1])
@@ -301,6 +299,7 @@ def block_overlay(layout, counts=None, labels: bool = False, *, axes=(0, 1), sla
     ``counts`` is indexed like the layout's rows (``layout.block_index`` maps
     block ids to rows). With ``labels`` each block shows its id and count.
     """
+    import holoviews as hv
     _ensure_backends()
     rect, rows = block_rectangles(layout, axes, slab)
     ids = np.asarray(layout.block_id)[rows]

@@ -74,7 +74,8 @@ MIGRATED_MEANS = "matched particles that are in another block than before"
 # ---------------------------------------------------------------------------------------------
 # colour
 
-#: colour maps offered; names both bokeh and matplotlib resolve through holoviews
+#: colour maps offered on the screen's menu; a name anywhere (a link, --cmap) is checked by
+#: ``colours.cmap_problem``, which knows these and every matplotlib and colorcet name
 CMAPS = ("viridis", "magma", "cividis", "inferno", "fire", "kbc", "bmy", "gray")
 #: the colour map of every density view, census map and deposit unless one is chosen
 DEFAULT_CMAP = "viridis"

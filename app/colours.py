@@ -140,25 +140,37 @@ def eq_hist_edges(values, vmin: float, vmax: float, ncolors: int = EQ_HIST_COLOU
     counts, _ = np.histogram(data, edges)
     filled = np.nonzero(counts)[0]
     levels = len(filled)
-    if levels > 1:
-        hist = np.zeros(levels + 1)
-        hist[1:] = counts[filled]
-        centres = np.concatenate([[0.0], 0.5 * (edges[filled] + edges[filled + 1])])
-        centres[0] = 2 * centres[1] - centres[-1]
-    else:
-        hist = counts
-        centres = 0.5 * (edges[1:] + edges[:-1])
-    cdf = np.cumsum(hist).astype(np.float64)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        cdf = (cdf - cdf[1]) / (cdf[-1] - cdf[1])
+    if levels <= 1:
+        # one value (or none) has no distribution to equalise (holoviews' binning gives NaN):
+        # the value sits where a lowest level would sit, the scale rises evenly from there
+        start = _cdf_start(levels) if levels else 0.0
+        low = -start / (1.0 - start)      # where a cdf of 0 falls on the scale
+        out = vmin + (np.linspace(0.0, 1.0, ncolors + 1) - low) / (1.0 - low) * (vmax - vmin)
+        out[-1] = vmax
+        return out
+    # the cumulative count over the filled bins, after a leading virtual bin for the stretch
+    hist = np.zeros(levels + 1)
+    hist[1:] = counts[filled]
+    centres = np.concatenate([[0.0], 0.5 * (edges[filled] + edges[filled + 1])])
+    centres[0] = 2 * centres[1] - centres[-1]
+    cdf = np.cumsum(hist)
+    cdf = (cdf - cdf[1]) / (cdf[-1] - cdf[1])
     cdf[0] = -1.0
-    # few discrete levels: stretch the cdf's span below zero, leaving the palette's low end unused
-    slope = -0.5 / 98.0
-    multiple = slope * levels + (1.5 - 2 * slope)
-    lower = 1 - multiple if multiple > 1 else 0.0
-    out = np.interp(np.linspace(lower, 1, ncolors + 1), cdf, centres)
+    out = np.interp(np.linspace(_cdf_start(levels), 1, ncolors + 1), cdf, centres)
     out[-1] = vmax
     return out
+
+
+def _cdf_start(levels: int) -> float:
+    """Where the colour steps start on the cdf: 0 for many levels, below 0 for few.
+
+    The span is 1.5 times the cdf's for two levels, falling by 0.5 over the next 98
+    (datashader's rescale_discrete_levels), so the lowest of few levels is not drawn
+    in the palette's darkest colour.
+    """
+    slope = -0.5 / 98.0
+    multiple = slope * levels + (1.5 - 2 * slope)
+    return 1 - multiple if multiple > 1 else 0.0
 
 
 class EqHistNorm(Normalize):

@@ -14,7 +14,6 @@ import os
 import numpy as np
 
 from ..audit import tables as _tables
-from .png import use_headless_matplotlib
 from .report import FigureItem
 
 #: the diverging colour map of a difference (blue: fewer in the candidate, red: more)
@@ -53,34 +52,43 @@ def _range_union(frames, cols):
     return padded_range(lo, hi, margin=DATA_MARGIN) if hi >= lo else (0.0, 1.0)
 
 
+def _figure(width, height, dpi):
+    """A figure of the export's kind (exact pixels, Agg, no pyplot) laid out by matplotlib's
+    constrained layout (panels and colour bars of several sizes)."""
+    from .png import new_figure
+    fig = new_figure(width, height, dpi)
+    fig.set_layout_engine("constrained")
+    return fig
+
+
 def _density_figure(path, ref_counts, cand_counts, agg, x_range, y_range, title, xlabel, ylabel,
                     width, height, dpi):
-    use_headless_matplotlib()
-    import matplotlib.pyplot as plt
     from matplotlib.colors import LogNorm, TwoSlopeNorm
-    fig, axes = plt.subplots(1, 3, figsize=(width / dpi, height / dpi), dpi=dpi, constrained_layout=True)
+    from .colours import colour_map, shown_values
+    from .png import save_png
+    fig = _figure(width, height, dpi)
+    axes = fig.subplots(1, 3)
     top = max(float(ref_counts.max()), float(cand_counts.max()), 1.0)
     extent = (x_range[0], x_range[1], y_range[0], y_range[1])
     norm = LogNorm(vmin=1.0, vmax=max(top, 1.0 + 1e-9))
     for ax, data, name in ((axes[0], ref_counts, "reference"), (axes[1], cand_counts, "candidate")):
-        im = ax.imshow(np.where(data > 0, data, np.nan), origin="lower", extent=extent, aspect="auto",
-                       cmap=DENSITY_CMAP, norm=norm, interpolation="nearest")
+        im = ax.imshow(shown_values(data, "count", "log"), origin="lower", extent=extent,
+                       aspect="auto", cmap=colour_map(DENSITY_CMAP), norm=norm,
+                       interpolation="nearest")
         ax.set_title(f"{name}")
         ax.set_xlabel(xlabel)
     axes[0].set_ylabel(ylabel)
     fig.colorbar(im, ax=axes[:2], label="particles per pixel", shrink=0.9)
     diff = cand_counts - ref_counts
     lo, hi = difference_limits(diff)
-    im = axes[2].imshow(diff, origin="lower", extent=extent, aspect="auto", cmap=DIFFERENCE_CMAP,
+    im = axes[2].imshow(diff, origin="lower", extent=extent, aspect="auto",
+                        cmap=colour_map(DIFFERENCE_CMAP),
                         norm=TwoSlopeNorm(vcenter=0.0, vmin=lo, vmax=hi), interpolation="nearest")
     axes[2].set_title("candidate − reference")
     axes[2].set_xlabel(xlabel)
     fig.colorbar(im, ax=axes[2], label="particles per pixel", shrink=0.9)
     fig.suptitle(title)
-    fig.savefig(f"{path}.part", format="png", dpi=dpi, facecolor="white")
-    plt.close(fig)
-    os.replace(f"{path}.part", path)
-    return path
+    return save_png(fig, path)
 
 
 def _views(fa, fb, layout):
@@ -156,15 +164,14 @@ def totals_figure(totals, path, *, width=1200, dpi=100, ref_drift=None, cand_dri
     ``ref_drift``/``cand_drift`` (each run's drift table) draw the curves over every snapshot of
     each run; without them the curves have the paired snapshots only.
     """
-    use_headless_matplotlib()
-    import matplotlib.pyplot as plt
+    from .png import save_png
     t = totals[totals["species"].astype(str) == _tables.ALL]
     names = [q for q in TOTALS_SHOWN if q in set(t["quantity"])]
     if not names:
         names = list(dict.fromkeys(t["quantity"]))[:6]
     rows = max(len(names), 1)
-    fig, axes = plt.subplots(rows, 2, figsize=(width / dpi, 2.1 * rows + 0.6), dpi=dpi, squeeze=False,
-                             constrained_layout=True)
+    fig = _figure(width, int(round((2.1 * rows + 0.6) * dpi)), dpi)
+    axes = fig.subplots(rows, 2, squeeze=False)
     for k, q in enumerate(names):
         g = t[t["quantity"] == q].sort_values("ref_time")
         x = g["ref_time"].to_numpy(dtype=float)
@@ -192,7 +199,4 @@ def totals_figure(totals, path, *, width=1200, dpi=100, ref_drift=None, cand_dri
             right.set_title("difference")
     for ax in axes[-1]:
         ax.set_xlabel("time" if np.isfinite(t["ref_time"].to_numpy(dtype=float)).any() else "snapshot")
-    fig.savefig(f"{path}.part", format="png", dpi=dpi, facecolor="white")
-    plt.close(fig)
-    os.replace(f"{path}.part", path)
-    return path
+    return save_png(fig, path)

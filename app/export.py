@@ -4,9 +4,10 @@ Each particle view is the view of a dashboard state (``ViewState``) as
 ``view_policy.particle_view`` decides it: axes, ranges, colour map, scale,
 grid and labels come from the one policy the dashboard draws with, and
 ``--view LINK`` draws the very state a dashboard link holds. The audit
-figures go through ``app.figures``, as on the screen. Every PNG is drawn by
-the holoviews matplotlib backend on the Agg canvas at exactly ``--width`` x
-``--height`` pixels.
+figures show the ``app.figure_data`` records the screen's figures are built
+from. Every PNG is drawn with matplotlib's object API on the Agg canvas at
+exactly ``--width`` x ``--height`` pixels (``app.mpl_figures``); the plotting
+stack of the screen (holoviews, bokeh, panel) is never imported.
 """
 
 from __future__ import annotations
@@ -26,7 +27,6 @@ from ..core.errors import InputError, OptionError
 from ..core.frame import transient_columns
 from ..core.outputs import FIGURE_DIR, REPORT_NAME, TABLE_NAMES
 from . import view_policy as policy
-from .png import use_headless_matplotlib
 
 MOVIE_DIR = "movies"
 
@@ -160,7 +160,8 @@ class FigureRecord:
     species: str | None = None
     caption: str = ""
     aggregate: object | None = None     # the xarray aggregate of a density view (kept on request)
-    element: object | None = None       # the holoviews object drawn
+    drawn: np.ndarray | None = None     # the image a density view drew, rows from the lowest y up
+                                        # (NaN where a bin is blank; kept on request)
     view: dict | None = None            # how a density view was aggregated
 
 
@@ -352,7 +353,6 @@ class _Plan:
 def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = False,
                stream=None, movie_writer=None) -> ExportResult:
     """Write figures, tables and report.html into ``opts.out``; return what was written."""
-    use_headless_matplotlib()
     t0 = time.perf_counter()
     out = os.path.abspath(opts.out)
     if os.path.exists(out) and not os.path.isdir(out):
@@ -440,7 +440,8 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                    keep_aggregates, stream, link_figs=(), movies=(), args=None,
                    movie_writer=None) -> None:
     """Draw and write everything into the plan's staging folder."""
-    from . import figures as F
+    from . import figure_data as D
+    from . import mpl_figures as M
     from .png import save_png
     from .progress import Progress
     from .report import FigureItem, Section, TableItem, Verdict, render_report, write_report
@@ -453,12 +454,29 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
              + len(deposit_figs) + 4 + 1)
     bar = Progress(total, "export", stream=stream,
                    enabled=False if opts.quiet else None)
-    size = dict(width=opts.width, height=opts.height, dpi=opts.dpi, fontscale=opts.fontscale)
+    size = M.FigureSize.of(opts)
 
-    def add_figure(rec: FigureRecord, obj):
+    def add_figure(rec: FigureRecord, draw):
+        """Draw (``draw()`` returns a Figure) and write one figure."""
         interrupt.check()       # Ctrl-C between figures: stop before drawing the next
-        save_png(obj, rec.path, **size)
-        rec.element = obj if keep_aggregates else None
+        save_png(draw(), rec.path)
+        res.figures.append(rec)
+
+    # an image figure is laid out once per kind of picture; each later image is swapped in
+    laid_out: dict[tuple, object] = {}
+
+    def image_figure(key, make):
+        if key not in laid_out:
+            laid_out[key] = make()
+        return laid_out[key]
+
+    def add_density(rec: FigureRecord, view, agg):
+        interrupt.check()
+        key = ("view", view.xcol, view.ycol, view.grid, view.x_range, view.y_range, view.xlabel,
+               view.ylabel, view.clabel, view.cmap, view.scaling, view.equal)
+        fig = M.show_density(image_figure(key, lambda: M.density_figure(view, size)), view, agg)
+        fig.save(rec.path)
+        rec.drawn = fig.drawn() if keep_aggregates else None
         res.figures.append(rec)
 
     with bar:
@@ -501,7 +519,7 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                                                 frames=frames, box=box)
                     agg = view.aggregate(frame)
                     rec = _view_record(kind, path, view, agg, frame, i, sp, keep_aggregates)
-                add_figure(rec, view.image(agg))
+                add_density(rec, view, agg)
                 bar.step(f"{kind} view {i} {sp}")
         if link_figs:
             state = export_state(runs, opts, 0, runs[runs.names[0]].species_names(0)[-1])
@@ -519,9 +537,9 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                     notes.append(f"--view: the {kind} view of the link cannot be drawn: {exc}")
                     bar.step()
                     continue
-                add_figure(_view_record(kind, path, view, agg, frame, state.snapshot,
-                                        state.species, keep_aggregates, prefix="the link's "),
-                           view.image(agg))
+                add_density(_view_record(kind, path, view, agg, frame, state.snapshot,
+                                         state.species, keep_aggregates, prefix="the link's "),
+                            view, agg)
                 bar.step(f"link {kind} view")
 
         # movies: every snapshot, one colour scale each ----------------------------------------------
@@ -537,15 +555,16 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
             blocks, ranks, imb = audit.snapshot_census(ctx, i, audit.ALL, census_df)
             xl, yl = _position_labels(ctx, i, species)
             title = f"{name} · particles per block, all species · {policy.snapshot_label_of(snap, i)}"
-            obj = F.census_map(blocks, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl)
+            data = D.census_map(blocks, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl)
             add_figure(FigureRecord("census_map", map_path, title, i, "all",
                                     "particles per block (all species); refined blocks outlined"),
-                       obj)
+                       lambda: M.census_map(data, size))
             bar.step(f"census map {i}")
             title = f"{name} · particles per rank, all species · {policy.snapshot_label_of(snap, i)}"
-            obj = F.rank_bars(ranks, imb, title)
+            loads = D.rank_bars(ranks, imb, title)
             add_figure(FigureRecord("rank_load", bar_path, title, i, "all",
-                                    "particles per rank with the mean (dashed)"), obj)
+                                    "particles per rank with the mean (dashed)"),
+                       lambda: M.rank_bars(loads, size))
             bar.step(f"rank load {i}")
 
         # migration -------------------------------------------------------------------------------
@@ -561,7 +580,7 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
             add_figure(FigureRecord("transfer", heat_path, title, b, "all",
                                     f"migrated particles ({policy.MIGRATED_MEANS}), block to "
                                     "block; the ones that stayed are left out"),
-                       F.transfer_heatmap(table, title, cmap=opts.cmap))
+                       lambda: M.transfer_matrix(D.transfer_matrix(table, title, cmap=opts.cmap), size))
             bar.step(f"transfer {a}-{b}")
             title = f"{name} · displacement · snapshot {a} → {b}"
             add_figure(FigureRecord("displacement", disp_path, title, b, "all",
@@ -569,7 +588,8 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                                      "line is one level-0 cell per step") if steps else
                                     "steps between the snapshots unknown; the dashed line is one "
                                     "level-0 cell"),
-                       F.displacement_histogram(disp, steps, title))
+                       lambda: M.displacement_histogram(D.displacement_histogram(disp, steps, title),
+                                                        size))
             bar.step(f"displacement {a}-{b}")
 
         # gate: judged before the drift figure, which marks what the gate judges ------------------
@@ -592,8 +612,8 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                                     "where a checked total first leaves it"
                                     if opts.rtol else
                                     "drift of every total against the first snapshot (no --rtol given)"),
-                       F.drift_curves(drift_df, opts.rtol, title, checked=checked,
-                                      xlabel=_time_label(run)))
+                       lambda: M.drift_curves(D.drift_curves(drift_df, opts.rtol, title, checked=checked,
+                                                             xlabel=_time_label(run)), size))
             bar.step("drift")
         else:
             notes.append("the run has one snapshot: no drift figure")
@@ -610,10 +630,13 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
             xl, yl = _position_labels(ctx, i, species)
             title = f"{name} · weight deposited (CIC) · {policy.snapshot_label_of(snap, i)}"
             label = "weight per cell" + (" (summed over z)" if layout.ndim == 3 else "")
+            dep = D.deposit_map(grid, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl,
+                                label=label)
+            key = ("deposit", dep.grid.shape, dep.bounds, dep.xlabel, dep.ylabel, dep.value_label)
             add_figure(FigureRecord("deposit", path, title, i, "all",
                                     "cloud-in-cell deposit of particle weight on the level-0 cells"),
-                       F.deposit_map(grid, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl,
-                                     label=label))
+                       lambda: M.show_deposit(image_figure(key, lambda: M.deposit_figure(dep, size)),
+                                              dep).fig)
             bar.step(f"deposit {i}")
 
         for note in ctx.notes:

@@ -3,17 +3,18 @@
 A frame is the export's figure of that snapshot: the view policy's view
 (``view_policy.make_view``: axis ranges, grid, colour map, labels and title,
 as the export and the dashboard decide them), aggregated and drawn by
-``png.render_figure``.
+``mpl_figures`` (the export's drawing code).
 Two things differ from a set of exported PNGs, on purpose:
 
 - every snapshot is aggregated first, and one colour scale is made from all
   the frames together (for ``eq_hist`` the equalisation of every frame's bins
   pooled), so a colour means the same count in every frame and the movie
   does not flicker as the densest bin changes;
-- the figure is laid out once; each further frame swaps the image's data
-  and the title into it and redraws the Agg canvas, instead of building a
-  new figure per frame (several times faster; ``tests/test_movie.py`` checks
-  the frames equal a figure built afresh).
+- the figure is laid out once (``mpl_figures.ImageFigure``, as the export
+  draws the snapshots of a view); each further frame swaps the image's data
+  and the title into it and redraws only those, instead of building a new
+  figure per frame (``tests/test_movie.py`` checks the frames equal a figure
+  built afresh).
 
 MP4 is encoded with the ffmpeg that the ``imageio-ffmpeg`` wheel ships (no
 system ffmpeg needed), GIF and WebP with Pillow.
@@ -189,52 +190,37 @@ class MovieFrames:
                 bar.step(f"binned snapshot {self.positions[k]}")
         self.norm, self.scale = shared_norm([a.values for a in self.aggregates], self.opts.scale)
 
-    def image(self, k: int):
-        """The holoviews element of frame ``k``: the export's density image of that snapshot."""
+    def frame_view(self, k: int):
+        """The view of frame ``k``: the shared view with that snapshot's title and labels."""
         from dataclasses import replace
         from . import render
-        f, agg = self.frames[k], self.aggregates[k]
-        view = replace(self.view, title=self.title(k), xlabel=render.axis_label(f, self.xcol),
+        f = self.frames[k]
+        return replace(self.view, title=self.title(k), xlabel=render.axis_label(f, self.xcol),
                        ylabel=render.axis_label(f, self.ycol))
-        return view.image(agg)
 
-    def _figure(self, k: int):
-        from .png import render_figure
-        o = self.opts
-        return render_figure(self.image(k), o.width, o.height, o.dpi, o.fontscale, norm=self.norm)
+    def _size(self):
+        from .mpl_figures import FigureSize
+        return FigureSize.of(self.opts)
 
     def still(self, k: int) -> np.ndarray:
         """Frame ``k`` drawn as a figure of its own (the export's path), on the shared scale."""
-        import matplotlib.pyplot as plt
-        from .png import figure_pixels
-        fig = self._figure(k)
-        try:
-            return figure_pixels(fig)
-        finally:
-            plt.close(fig)
+        from .mpl_figures import density_figure, show_density
+        view = self.frame_view(k)
+        return show_density(density_figure(view, self._size()), view, self.aggregates[k],
+                            norm=self.norm).pixels()
 
     def pixels(self, bar=None):
-        """Every frame as an (height, width, 3) uint8 array, in run order."""
-        import matplotlib.pyplot as plt
-        from holoviews.plotting.mpl.util import get_raster_array
-        from .png import _MARGIN, _wrap, figure_pixels
-        fig = self._figure(0)
-        try:
-            ax = next(a for a in fig.axes if a.get_images())
-            im = ax.get_images()[0]
-            room = fig.bbox.width * (1 - 2 * _MARGIN)
-            renderer = fig.canvas.get_renderer()
-            for k in range(len(self.frames)):
-                if k:
-                    # what holoviews would hand imshow for this frame's element, in the laid-out figure
-                    im.set_data(get_raster_array(self.image(k)))
-                    ax.title.set_text(self.title(k))
-                    _wrap(ax.title, room, renderer)
-                yield figure_pixels(fig)
-                if bar is not None:
-                    bar.step(f"frame {k + 1}/{len(self.frames)}")
-        finally:
-            plt.close(fig)
+        """Every frame as an (height, width, 3) uint8 array, in run order: one laid-out
+        figure, each frame's image and title swapped into it."""
+        from .mpl_figures import density_figure, show_density
+        figure = None
+        for k in range(len(self.frames)):
+            view = self.frame_view(k)
+            if figure is None:
+                figure = density_figure(view, self._size())
+            yield show_density(figure, view, self.aggregates[k], norm=self.norm).pixels()
+            if bar is not None:
+                bar.step(f"frame {k + 1}/{len(self.frames)}")
 
 
 def shared_norm(arrays, scaling: str):
@@ -303,10 +289,8 @@ def write_movie(ctx, out: str, *, view: str = "space", species: str | None = Non
     ``bar`` is a progress bar to step (the export's); without one the movie draws its own.
     """
     from .export import ExportOptions, guard_outputs, input_files, select_snapshots
-    from .png import use_headless_matplotlib
     from .progress import Progress
     t0 = time.perf_counter()
-    use_headless_matplotlib()
     out = os.path.abspath(os.fspath(out))
     fmt = movie_format(out)
     fps = check_fps(fps)

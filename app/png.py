@@ -1,10 +1,11 @@
-"""Writing a holoviews figure as a PNG of an exact pixel size, with no display.
+"""Figures of an exact pixel size on the Agg canvas, laid out to fit, written as PNG.
 
-The matplotlib backend of holoviews places axes by fixed figure fractions,
-which either wastes a third of the picture or clips long labels. After
-rendering, the axes are moved so their labels, titles and colour bars just
-fit inside the picture, then the figure is saved without a tight bounding
-box (that would change the pixel size).
+A figure is a plain matplotlib ``Figure`` on its own Agg canvas (no pyplot,
+no display, nothing kept by a global registry: it is freed like any object).
+Axes are placed by figure fractions, which either waste a third of the
+picture or clip long labels, so :func:`fit_layout` moves them until their
+labels, titles and colour bars just fit inside the picture; the PNG is then
+written at exactly the asked size (no tight bounding box, which would change it).
 """
 
 from __future__ import annotations
@@ -14,168 +15,73 @@ import os
 import numpy as np
 
 
-def use_headless_matplotlib() -> None:
-    """Select the Agg canvas so nothing needs a display (batch jobs, CI)."""
-    import matplotlib
-    if matplotlib.get_backend().lower() != "agg":
-        matplotlib.use("Agg", force=True)
-
-
 #: margin around the content, as a fraction of the picture
 _MARGIN = 0.02
+#: zlib effort of the PNGs (1 to 9): 6 is the common default, the smallest files for the time
+PNG_COMPRESSION = 6
 
 
-def render_figure(obj, width: int, height: int, dpi: int, fontscale: float = 1.0, norm=None):
-    """The matplotlib Figure of a holoviews object, sized width x height pixels at dpi.
-
-    ``norm`` (a matplotlib Normalize) replaces the colour scale of the
-    figure's image and colour bar: a movie's frames share one scale that way.
-    """
-    use_headless_matplotlib()
-    import holoviews as hv
-    from .figures import ensure_backends
-    ensure_backends()
-    inches = (width / dpi, height / dpi)
-    obj = obj.opts(fig_inches=inches, fontscale=fontscale, backend="matplotlib", clone=True)
-    import warnings
-    with warnings.catch_warnings():
-        # a view whose every bin holds the same count has a one-value colour range:
-        # matplotlib widens it and says so; nothing is wrong with the picture
-        warnings.filterwarnings("ignore", message="Attempting to set identical low and high")
-        warnings.filterwarnings("ignore", message="All-NaN slice encountered")
-        fig = hv.render(obj, backend="matplotlib")
-    _forget_colorbars()
-    if norm is not None:
-        set_image_norm(fig, norm)
+def new_figure(width: int, height: int, dpi: int):
+    """A white matplotlib Figure of exactly ``width`` x ``height`` pixels on its own Agg canvas."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
-    if not isinstance(fig.canvas, FigureCanvasAgg):
-        FigureCanvasAgg(fig)
-    fig.set_dpi(dpi)
-    fig.set_size_inches(*inches, forward=False)
-    _fit(fig)
+    from matplotlib.figure import Figure
+    fig = Figure(figsize=(width / dpi, height / dpi), dpi=dpi, facecolor="white")
+    FigureCanvasAgg(fig)
+    # inches * dpi must land on the whole pixel count (333 / 120 * 120 is 332.99999...)
+    w, h = fig.canvas.get_width_height()
+    if (w, h) != (width, height):
+        fig.set_size_inches((width + 1e-6) / dpi, (height + 1e-6) / dpi, forward=False)
     return fig
 
 
-def set_image_norm(fig, norm) -> None:
-    """Colour every image of ``fig`` (and its colour bar) with ``norm``."""
-    for ax in fig.axes:
-        for im in ax.get_images():
-            im.set_norm(norm)
-            bar = getattr(im, "colorbar", None)
-            if bar is not None:
-                bar.update_normal(im)
-
-
-def figure_pixels(fig) -> np.ndarray:
+def figure_pixels(fig, drawn: bool = False) -> np.ndarray:
     """The figure drawn on its Agg canvas, as an (height, width, 3) uint8 RGB array.
 
-    The same pixels ``save_png`` writes (on white, as it saves).
+    The same pixels ``save_png`` writes (on white, as it saves). ``drawn``: the
+    canvas holds the picture already (nothing is drawn again).
     """
-    fig.patch.set_facecolor("white")
-    fig.canvas.draw()
+    if not drawn:
+        fig.canvas.draw()
     rgba = np.asarray(fig.canvas.buffer_rgba())
+    if (rgba[..., 3] == 255).all():
+        return np.ascontiguousarray(rgba[..., :3])
     rgb = rgba[..., :3].astype(np.float32)
     alpha = rgba[..., 3:4].astype(np.float32) / 255.0
     return np.round(rgb * alpha + 255.0 * (1.0 - alpha)).astype(np.uint8)
 
 
-def _forget_colorbars() -> None:
-    """Drop holoviews' class-wide record of colour-bar axes.
-
-    The matplotlib backend keeps every colour bar it drew in a dict on the
-    plot class (to stack several bars beside one axes), which holds each
-    rendered figure alive: an export of hundreds of figures grew by megabytes
-    a figure. The record only matters while one figure is being laid out.
-    """
+def write_png(pixels: np.ndarray, path) -> str:
+    """Write an RGB array to ``path`` as PNG, atomically (a ``.part`` file renamed)."""
+    from PIL import Image
+    tmp = f"{path}.part"
     try:
-        from holoviews.plotting.mpl.element import ColorbarPlot
-    except ImportError:
-        return
-    store = getattr(ColorbarPlot, "_colorbars", None)
-    if isinstance(store, dict):
-        store.clear()
-
-
-def save_png(obj, path, width: int, height: int, dpi: int = 100, fontscale: float = 1.0) -> str:
-    """Render ``obj`` with matplotlib and write it to ``path`` as exactly width x height pixels."""
-    import matplotlib.pyplot as plt
-    fig = render_figure(obj, width, height, dpi, fontscale)
-    try:
-        tmp = f"{path}.part"
-        fig.savefig(tmp, dpi=dpi, format="png", facecolor="white")
+        Image.fromarray(pixels, mode="RGB").save(tmp, format="PNG", compress_level=PNG_COMPRESSION)
         os.replace(tmp, path)
-    finally:
-        plt.close(fig)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+        raise
     return os.fspath(path)
+
+
+def save_png(fig, path) -> str:
+    """Draw ``fig`` and write it to ``path`` as a PNG of the figure's pixel size."""
+    return write_png(figure_pixels(fig), path)
 
 
 def _is_colorbar(ax) -> bool:
     return getattr(ax, "_colorbar", None) is not None or ax.get_label() == "<colorbar>"
 
 
-def _nice(v: float) -> float:
-    if v == 0 or not np.isfinite(v):
-        return v
-    mag = 10 ** np.floor(np.log10(abs(v)))
-    return float(np.round(v / mag, 1) * mag) if abs(v) >= 10 else float(np.round(v, 2))
-
-
-def _equalised_colorbar(fig, cax):
-    """Redraw an equalised colour bar so its labels sit where their colours are.
-
-    The bar is drawn evenly in the normalised (equalised) space, and each
-    label ``v`` is put at ``norm(v)``: the very mapping the image's pixels
-    were coloured with, so a label always names the colour beside it.
-    Returns the new colour-bar axes (or the old one when nothing is to be done).
-    """
-    cbar = getattr(cax, "_colorbar", None)
-    norm = getattr(cbar, "norm", None)
-    if norm is None or not any(t.__name__ in ("EqHistNormalize", "EqHistNorm")
-                               for t in type(norm).__mro__):
-        return cax
-    from matplotlib.cm import ScalarMappable
-    from matplotlib.colors import Normalize
-    try:
-        probe = np.asarray(norm.inverse(np.linspace(0.0, 1.0, 7)), dtype=float).ravel()
-    except Exception:
-        return cax
-    lo, hi = float(norm.vmin), float(norm.vmax)
-    probe = np.clip(probe[np.isfinite(probe)], lo, hi)
-    whole = hi >= 10 or float(lo).is_integer() and float(hi).is_integer()
-    values = np.unique(np.concatenate([[lo, hi], np.round(probe) if whole else
-                                       [_nice(v) for v in probe]]))
-    values = values[(values >= lo) & (values <= hi)]
-    where = np.asarray(norm(values), dtype=float).ravel()
-    ok = np.isfinite(where)
-    values, where = values[ok], np.clip(where[ok], 0.0, 1.0)
-    ticks = cax.yaxis.get_ticklabels()
-    tick_size = ticks[0].get_fontsize() if ticks else None
-    label = cax.get_ylabel()
-    label_size = cax.yaxis.label.get_fontsize()
-    pos = cax.get_position()
-    cmap = cbar.cmap
-    fig.delaxes(cax)
-    new = fig.add_axes(pos)
-    bar = fig.colorbar(ScalarMappable(norm=Normalize(0.0, 1.0), cmap=cmap), cax=new)
-    bar.set_ticks(list(where))
-    bar.set_ticklabels([f"{v:g}" if not whole else f"{int(v):,}" for v in values])
-    bar.set_label(label, fontsize=label_size)
-    if tick_size:
-        new.tick_params(labelsize=tick_size)
-    return new
-
-
-def _thin_ticks(cax, renderer, axis=None) -> None:
+def _thin_ticks(axis, renderer) -> None:
     """Drop ticks whose labels would overlap (an equalised colour bar bunches them, long
     numbers crowd a narrow panel)."""
-    if axis is None:
-        axis = cax.yaxis if cax.get_position().height >= cax.get_position().width else cax.xaxis
-    cax.get_tightbbox(renderer)   # formats the tick labels
+    axis.get_tightbbox(renderer)   # places and formats the tick labels
     ticks = axis.get_major_ticks()
     locs = list(axis.get_majorticklocs())
     if len(ticks) < 2 or len(ticks) != len(locs):
         return
-    vertical = axis is cax.yaxis
+    vertical = axis.axis_name == "y"
     kept, last = [], None
     spans = []
     vlo, vhi = sorted(axis.get_view_interval())
@@ -201,6 +107,12 @@ def _thin_ticks(cax, renderer, axis=None) -> None:
         axis.set_ticks(sorted(kept))
 
 
+def _bar_axis(cax):
+    """The long axis of a colour bar (the one its ticks are on)."""
+    p = cax.get_position()
+    return cax.yaxis if p.height >= p.width else cax.xaxis
+
+
 def _wrap(text, room: float, renderer) -> None:
     """Break a title that is wider than ``room`` pixels onto more lines."""
     import textwrap
@@ -217,18 +129,35 @@ def _wrap(text, room: float, renderer) -> None:
         width = text.get_window_extent(renderer).width
 
 
-def _content_box(fig, artists, renderer):
-    boxes = [b for b in (a.get_tightbbox(renderer) for a in artists) if b is not None]
+def _content_box(fig, axes, renderer):
+    """The box of the axes with their decorations (ticks, labels, titles), as picture shares.
+
+    What is drawn inside an axes (bars, blocks, an image) stays inside it: only the
+    decorations are measured.
+    """
+    boxes = [b for b in (a.get_tightbbox(renderer, bbox_extra_artists=[]) for a in axes)
+             if b is not None]
     fw, fh = fig.bbox.width, fig.bbox.height
     return (min(b.x0 for b in boxes) / fw, min(b.y0 for b in boxes) / fh,
             max(b.x1 for b in boxes) / fw, max(b.y1 for b in boxes) / fh)
 
 
-#: least gap between a plot and its colour bar, as a share of the figure width
-_BAR_GAP = 0.02
+def _tick_locs(ax):
+    """The tick places of both axes (they follow the axes' length in pixels)."""
+    return tuple(tuple(np.round(a.get_major_locator()(), 12)) for a in (ax.xaxis, ax.yaxis))
 
 
-def _fit(fig) -> None:
+def fit_layout(fig) -> None:
+    """Move the axes of ``fig`` so titles, labels and colour bars just fit inside the picture.
+
+    One plot with its colour bars (each bar kept at its gap and width beside the plot as
+    drawn) is fitted as a box, centred in the picture; several plots (a grid of panels)
+    by :func:`_fit_grid`. Text wider than the picture is wrapped first.
+
+    The decorations around the plot (tick labels, axis labels, title, bars) are measured
+    once and the plot is sized to what is left of the picture; only when the new size
+    puts the ticks elsewhere (new labels) is it measured again.
+    """
     axes = [a for a in fig.axes if a.get_visible()]
     bars = [a for a in axes if _is_colorbar(a)]
     main = [a for a in axes if a not in bars]
@@ -239,39 +168,45 @@ def _fit(fig) -> None:
         return
     ax = main[0]
     renderer = fig.canvas.get_renderer()
-    _wrap(ax.title, fig.bbox.width * (1 - 2 * _MARGIN), renderer)
-    bars = [_equalised_colorbar(fig, cb) for cb in bars]
-    for cb in bars:
-        _thin_ticks(cb, renderer)
-    # layout without full draws: apply the aspect by hand, measure, move (twice converges)
+    fw, fh = fig.bbox.width, fig.bbox.height
+    _wrap(ax.title, fw * (1 - 2 * _MARGIN), renderer)
     ax.apply_aspect()
-    box = ax.get_position(original=False)
-    # the bar was placed beside the box before the aspect shrank it: keep it clear of the plot
-    links = [(cb, max(cb.get_position().x0 - box.x1, _BAR_GAP), cb.get_position().width) for cb in bars]
-    for _ in range(2):
+    drawn = ax.get_position(original=False)
+    links = [(cb, cb.get_position().x0 - drawn.x1, cb.get_position().width) for cb in bars]
+    for _ in range(3):
+        ticks = _tick_locs(ax)
         x0, y0, x1, y1 = _content_box(fig, [ax, *bars], renderer)
-        pos = ax.get_position(original=True)
-        left = pos.x0 + (_MARGIN - x0)
-        right = pos.x1 + ((1 - _MARGIN) - x1)
-        bottom = pos.y0 + (_MARGIN - y0)
-        top = pos.y1 + ((1 - _MARGIN) - y1)
-        if right - left < 0.2 or top - bottom < 0.2:
+        drawn = ax.get_position(original=False)
+        # decorations on each side of the drawn plot, as shares of the picture
+        dl, dr = drawn.x0 - x0, x1 - drawn.x1
+        db, dt = drawn.y0 - y0, y1 - drawn.y1
+        w = 1 - 2 * _MARGIN - dl - dr
+        h = 1 - 2 * _MARGIN - db - dt
+        if w < 0.1 or h < 0.1:
             break
-        ax.set_position([left, bottom, right - left, top - bottom])
+        left, bottom = _MARGIN + dl, _MARGIN + db
+        if ax.get_aspect() != "auto":
+            # a plot held to its data's shape fills one way and is centred the other
+            ratio = ax.get_data_ratio() * float(ax.get_aspect())      # height / width in pixels
+            pw, ph = w * fw, h * fh
+            if ph / pw > ratio:
+                nh = pw * ratio / fh
+                bottom, h = bottom + 0.5 * (h - nh), nh
+            else:
+                nw = ph / ratio / fw
+                left, w = left + 0.5 * (w - nw), nw
+        ax.set_position([left, bottom, w, h])
         ax.apply_aspect()
         drawn = ax.get_position(original=False)
-        for cb, gap, w in links:
-            cb.set_position([drawn.x1 + gap, drawn.y0, w, drawn.height])
-    _thin_ticks(ax, renderer, ax.xaxis)
-    # a box held to a fixed aspect leaves free width: centre the plot in it
-    x0, _, x1, _ = _content_box(fig, [ax, *bars], renderer)
-    shift = 0.5 * ((_MARGIN - x0) + ((1 - _MARGIN) - x1))
-    if abs(shift) > 1e-3:
-        p = ax.get_position(original=True)
-        ax.set_position([p.x0 + shift, p.y0, p.width, p.height])
-        for cb in bars:
-            q = cb.get_position()
-            cb.set_position([q.x0 + shift, q.y0, q.width, q.height])
+        for cb, gap, bw in links:
+            cb.set_position([drawn.x1 + gap, drawn.y0, bw, drawn.height])
+        # a title wider than the plot hangs over it by an amount that follows the plot's width
+        overhang = ax.title.get_text() and ax.title.get_window_extent(renderer).width > drawn.width * fw
+        if _tick_locs(ax) == ticks and not overhang:
+            break
+    _thin_ticks(ax.xaxis, renderer)
+    for cb in bars:
+        _thin_ticks(_bar_axis(cb), renderer)
 
 
 def _fit_grid(fig, main, bars) -> None:
@@ -302,12 +237,13 @@ def _fit_grid(fig, main, bars) -> None:
     ncols = max(c[4] for c in cells)
     for ax, *_ in cells:
         _wrap(ax.title, 0.9 * fw * (1 - 2 * _MARGIN) / ncols, renderer)
-    # decorations change a little with the box size (titles wider than it): measure twice
-    for _ in range(2):
+    # decorations change with the box size only through the ticks: measure again while they move
+    for _ in range(3):
+        ticks = [_tick_locs(ax) for ax, *_ in cells]
         dec_l, dec_r = np.zeros(ncols), np.zeros(ncols)
         dec_t, dec_b = np.zeros(nrows), np.zeros(nrows)
         for ax, r, c, _, _ in cells:
-            tb = ax.get_tightbbox(renderer)
+            tb = ax.get_tightbbox(renderer, bbox_extra_artists=[])
             bb = ax.get_window_extent(renderer)
             dec_l[c] = max(dec_l[c], bb.x0 - tb.x0)
             dec_r[c] = max(dec_r[c], tb.x1 - bb.x1)
@@ -322,5 +258,9 @@ def _fit_grid(fig, main, bars) -> None:
             x0 = _MARGIN * fw + dec_l[:c + 1].sum() + dec_r[:c].sum() + c * (width + gap)
             ytop = fh - top_px - dec_t[:r + 1].sum() - dec_b[:r].sum() - r * (height + gap)
             ax.set_position([x0 / fw, (ytop - height) / fh, width / fw, height / fh])
+        overhang = any(ax.title.get_text() and ax.title.get_window_extent(renderer).width > width
+                       for ax, *_ in cells)
+        if [_tick_locs(ax) for ax, *_ in cells] == ticks and not overhang:
+            break
     for ax, *_ in cells:
-        _thin_ticks(ax, renderer, ax.xaxis)
+        _thin_ticks(ax.xaxis, renderer)

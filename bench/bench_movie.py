@@ -22,35 +22,24 @@ from _rows import in_turn, machine_facts, row  # noqa: E402
 
 
 def run(run_path: str, view: str = "phase", repeat: int = 1, fmt: str = "mp4"):
-    import matplotlib.pyplot as plt
-
-    from swarmaudit.app.export import ExportOptions, density_view
+    from swarmaudit.app.export import ExportOptions
     from swarmaudit.app.movie import MovieFrames, write_movie
     from swarmaudit.app.options import context_from_options
-    from swarmaudit.app.png import save_png, use_headless_matplotlib
-    from swarmaudit.core.frame import transient_columns
+    from swarmaudit.app.png import write_png
 
-    use_headless_matplotlib()
     ctx = context_from_options(None, run=run_path, no_cache=True)
     n = len(ctx.run)
     out = tempfile.mkdtemp(prefix="swarmaudit-bench-movie-")
     opts = ExportOptions(out=out, quiet=True)
     plan = MovieFrames(ctx, view, list(range(n)), opts)
-    plan.aggregate()        # the baseline is handed the ranges and grid the movie works out itself
-    ranges, grid = plan.ranges, plan.grid
+    plan.aggregate()        # the baseline is handed the aggregates the movie works out itself
 
     def movie():
         write_movie(ctx, os.path.join(out, f"{view}.{fmt}"), view=view, opts=opts)
 
     def pngs():
-        for k, f in enumerate(plan.frames):
-            with transient_columns([f]):
-                _, img = density_view(f, plan.xcol, plan.ycol, grid=grid, x_range=ranges[plan.xcol],
-                                      y_range=ranges[plan.ycol], cmap=opts.cmap, scaling=opts.scale,
-                                      title=plan.title(k), equal=plan.equal)
-            save_png(img, os.path.join(out, f"{view}_{k:04d}.png"), width=opts.width,
-                     height=opts.height, dpi=opts.dpi, fontscale=opts.fontscale)
-        plt.close("all")
+        for k in range(len(plan.frames)):
+            write_png(plan.still(k), os.path.join(out, f"{view}_{k:04d}.png"))
 
     def frames_swapped():
         for _ in plan.pixels():

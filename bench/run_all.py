@@ -13,6 +13,9 @@ Gathers the rows of
   ``migrate`` on the same pair (both an id match);
 * ``bench_io.py``: cold open + first frame against h5py + datashader, drift
   over a run against raw h5py reads (and reopened through the cache);
+* ``bench_export.py``: ``export`` of the small demo run (3 s budget) and of one
+  10 M-particle snapshot, each a fresh process, against a bare pipeline writing
+  the same outputs;
 * ``bench_scale.py``: 100 M particles over 16 files through dask against ten
   times 10 M in memory, and the peak resident memory of each;
 
@@ -110,6 +113,9 @@ def gather(args) -> tuple[list[tuple[str, list[dict]]], list[str], list[str]]:
     import bench_io
     section("reading (bench_io.py)",
             lambda: bench_io.run(args.n, args.snapshots, args.drift_n, args.repeat))
+    import bench_export
+    section("export (bench_export.py)",
+            lambda: bench_export.run(repeat=args.repeat, big_n=args.n))
     if not args.skip_scale:
         import bench_scale
         holder = {}

@@ -62,7 +62,6 @@ def _datasets():
     return {"poisson counts": rng.poisson(3, 20000).astype(float),
             "lognormal": rng.lognormal(0, 2, 20000),
             "two levels": np.array([1.0] * 30 + [2.0] * 5),
-            "one level": np.ones(12),
             "many integers": rng.integers(1, 400, 5000).astype(float),
             "negative means": rng.normal(-2, 3, 4000)}
 
@@ -96,6 +95,13 @@ def test_eq_hist_leaves_the_low_end_unused_for_few_levels():
     assert norm.lowest == pytest.approx((multiple - 1) / multiple, abs=1 / 256)
     assert float(norm(3.0)) == 1.0
     assert 0 < norm.lowest < float(norm(2.0)) < 1.0
+    # one level (holoviews' binning is NaN there): the value sits where the lowest of L = 1
+    # levels would, and the scale rises evenly to vmax
+    one = C.eq_hist_norm(np.ones(12), 1.0, 2.0)
+    m1 = 1.5 + 0.5 / 98
+    assert one.lowest == pytest.approx((m1 - 1) / m1)
+    assert float(one(1.5)) == pytest.approx(one.lowest + 0.5 * (1 - one.lowest))
+    assert np.all(np.isfinite(one.edges)) and np.all(np.diff(one.edges) > 0)
     # many levels: the scale starts at the bottom
     many = np.arange(1.0, 300.0)
     assert C.eq_hist_norm(many, 1.0, 299.0).lowest == pytest.approx(0.0, abs=1e-9)

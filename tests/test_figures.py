@@ -1,10 +1,10 @@
-"""The figure builders: both backends render them, and what they draw equals an outside count.
+"""The figure builders of the screen: both backends render them, and what they draw equals an
+outside count.
 
-Reference values come from numpy (histogram, bincount), pandas.crosstab,
-and Pillow for the PNG size; the builders only get plain tables.
+Reference values come from numpy (histogram, bincount) and pandas.crosstab; the builders only
+get plain tables. The export's matplotlib drawing of the same records is checked in
+tests/test_mpl_figures.py.
 """
-
-import io
 
 import matplotlib
 
@@ -14,10 +14,8 @@ import holoviews as hv  # noqa: E402
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 import pytest  # noqa: E402
-from PIL import Image  # noqa: E402
 
 from swarmaudit.app import figures as F  # noqa: E402
-from swarmaudit.app.png import render_figure, save_png  # noqa: E402
 from swarmaudit.core.layout import BlockLayout, regular_layout  # noqa: E402
 
 
@@ -235,48 +233,3 @@ def test_histogram_1d_equals_numpy_weighted_histogram():
     np.testing.assert_allclose(obj.dimension_values(1), ref)
     _, fig = _both(obj)
     assert "vx [m/s]" in _mpl_texts(fig)
-
-
-@pytest.mark.parametrize("size", [(640, 480, 80), (900, 700, 100), (333, 251, 120)])
-def test_png_has_the_asked_pixel_size_and_is_not_blank(tmp_path, size):
-    w, h, dpi = size
-    rng = np.random.default_rng(5)
-    obj = F.census_map(_census(_layout(), rng), _layout(), "size test")
-    path = save_png(obj, str(tmp_path / "c.png"), w, h, dpi)
-    with Image.open(path) as im:
-        assert im.size == (w, h)
-        px = np.asarray(im.convert("L"), dtype=float)
-    assert px.std() > 10                       # not one flat colour
-
-
-def test_png_keeps_labels_inside_the_picture():
-    obj = F.rank_bars(pd.DataFrame({"rank": range(4), "count": [5, 6, 7, 8]}), None,
-                      "a rather long title that must not be clipped at either edge")
-    fig = render_figure(obj, 500, 400, 100)
-    r = fig.canvas.get_renderer()
-    for ax in fig.axes:
-        bb = ax.get_tightbbox(r)
-        assert bb.x0 >= -1 and bb.y0 >= -1 and bb.x1 <= 501 and bb.y1 <= 401
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=100)
-    assert Image.open(buf).size == (500, 400)
-
-
-def test_a_saved_figure_is_freed(tmp_path):
-    # holoviews keeps colour bars in a class-wide dict; an export of hundreds of figures
-    # must not keep every one of them alive
-    import gc
-    import weakref
-
-    import matplotlib.pyplot as plt
-    from holoviews.plotting.mpl.element import ColorbarPlot
-
-    obj = F.deposit_map(np.arange(128.0).reshape(16, 8), _layout(), "freed")
-    fig = render_figure(obj, 300, 240, 100)
-    ref = weakref.ref(fig)
-    plt.close(fig)
-    del fig
-    gc.collect()
-    assert ref() is None
-    save_png(obj, str(tmp_path / "d.png"), 300, 240, 100)
-    assert not ColorbarPlot._colorbars

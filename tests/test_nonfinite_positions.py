@@ -116,7 +116,7 @@ def test_no_finite_position_at_all_is_bad_input(tmp_path, capsys):
 
 @pytest.mark.parametrize("existing", [False, True])
 def test_failed_export_leaves_no_half_written_output(tmp_path, monkeypatch, existing):
-    from swarmaudit.app import figures
+    from swarmaudit.app import figure_data
     run = _write_run(str(tmp_path / "run"))
     out = tmp_path / "out"
     args = build_parser().parse_args(["export", run, "--out", str(out), "--domain", "2,5,-1,1",
@@ -129,7 +129,7 @@ def test_failed_export_leaves_no_half_written_output(tmp_path, monkeypatch, exis
     def broken(*a, **k):
         raise RuntimeError("the deposit figure failed")
     # the deposit map is drawn after every table and most figures are written
-    monkeypatch.setattr(figures, "deposit_map", broken)
+    monkeypatch.setattr(figure_data, "deposit_map", broken)
     with pytest.raises(RuntimeError):
         export_run(context_from_options(args), ExportOptions.from_args(args), args)
     if existing:

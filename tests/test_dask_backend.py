@@ -13,31 +13,15 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from _rank_runs import memory_frame as _frame
+from _rank_runs import ranks_from_cuts, write_rank_snapshot
+from _rank_runs import split_frame as _split
+
 from swarmaudit.engine import dask_backend as dk
-from swarmaudit.core import column
 from swarmaudit.engine import pieces as partitions
 from swarmaudit.core.context import AuditContext
 from swarmaudit.core.errors import OptionError
-from swarmaudit.core.frame import Frame, concat_frames
 from swarmaudit.core.layout import BlockLayout, assign_blocks, regular_layout
-
-
-def _frame(arrays, species="e", attrs=None, rows=True):
-    n = len(next(iter(arrays.values())))
-    loaders = {}
-    for c, a in arrays.items():
-        load = (lambda a=a: a.copy())
-        loaders[c] = (column.Column(load, rows=lambda s, e, a=a: a[s:e].copy(), dtype=a.dtype, length=len(a))
-                      if rows else load)
-    return Frame(species, n, loaders, attrs=attrs or {})
-
-
-def _split(arrays, cuts, attrs=None, rows=True, ranks=None):
-    """The arrays as per-rank parts cut at ``cuts`` (joined like per-rank files are)."""
-    edges = [0, *cuts, len(next(iter(arrays.values())))]
-    parts = [_frame({c: a[lo:hi] for c, a in arrays.items()}, attrs=attrs, rows=rows)
-             for lo, hi in zip(edges[:-1], edges[1:])]
-    return concat_frames(parts, species="e", rank_values=ranks)
 
 
 @pytest.fixture(autouse=True)
@@ -349,19 +333,9 @@ def test_finite_stats_agree_with_numpy(compiled, monkeypatch):
 
 
 def _rank_files(folder, data, cuts, step=10):
-    """Per-rank HDF5 files of one snapshot, as a simulation writes them."""
-    import h5py
-    sub = folder / f"step_{step:06d}"
-    sub.mkdir(parents=True)
-    edges = [0, *cuts, len(data["x"])]
-    for r, (lo, hi) in enumerate(zip(edges[:-1], edges[1:])):
-        with h5py.File(sub / f"rank_{r:03d}.h5", "w") as fh:
-            fh.attrs["step"] = step
-            g = fh.create_group("electrons")
-            g.attrs["mass"] = 1.0
-            g.attrs["charge"] = -1.0
-            for c, a in data.items():
-                g[c] = a[lo:hi]
+    """Per-rank HDF5 files of one snapshot of electrons, cut at ``cuts``, as a simulation writes them."""
+    write_rank_snapshot(folder, step, {"electrons": (data, {"mass": 1.0, "charge": -1.0},
+                                                     ranks_from_cuts(len(data["x"]), cuts))})
     return folder
 
 

@@ -198,7 +198,8 @@ def context_from_options(args=None, follow: bool = True, **keywords) -> AuditCon
                        use_cache=not opts.no_cache, steps_per_snapshot=opts.steps_per_snapshot)
     ctx.notes.extend(run.skipped)
     check_role_columns(role_map, run)
-    from ..engine.dask_backend import configure
+    from ..engine.dask_backend import configure, connect_scheduler
+    connect_scheduler(ctx)                 # an unreachable --scheduler stops here, with one line
     configure(ctx.engine, ctx.scheduler)   # images follow the same engine as the tables
     return ctx
 

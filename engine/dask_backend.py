@@ -22,7 +22,6 @@ starts a LocalCluster of one single-threaded worker process per core.
 from __future__ import annotations
 
 import atexit
-import itertools
 import os
 import threading
 import time
@@ -118,43 +117,6 @@ class DaskEngine:
             return [_checked(fn, it, *args) for it in items]
         return list(self._threads().map(lambda it: _checked(fn, it, *args), items))
 
-    def imap_unordered(self, fn, items, *args, window: int | None = None):
-        """Results of ``fn(item, *args)`` as they finish, at most ``window`` in flight.
-
-        For reductions whose per-piece results are large (a key and its block
-        of every particle): the caller folds each into its running state and
-        lets it go, so memory stays at ``window`` pieces.
-        """
-        items = list(items)
-        window = window or max(2, 2 * self.workers)
-        if self.client is not None:
-            from distributed import as_completed
-            it = iter(items)
-            first = [self.client.submit(fn, x, *args, pure=False) for x in _take(it, window)]
-            ac = as_completed(first)
-            for fut in ac:
-                interrupt.check()
-                res = fut.result()
-                fut.release()
-                for x in _take(it, 1):
-                    ac.add(self.client.submit(fn, x, *args, pure=False))
-                yield res
-            return
-        if self.workers <= 1:
-            for x in items:
-                yield _checked(fn, x, *args)
-            return
-        from concurrent.futures import FIRST_COMPLETED, wait
-        pool = self._threads()
-        it = iter(items)
-        pending = {pool.submit(_checked, fn, x, *args) for x in _take(it, window)}
-        while pending:
-            done, pending = wait(pending, return_when=FIRST_COMPLETED)
-            for fut in done:
-                for x in _take(it, 1):
-                    pending.add(pool.submit(_checked, fn, x, *args))
-                yield fut.result()
-
     def _threads(self) -> ThreadPoolExecutor:
         return piece_pool()   # the one piece pool of this process (engine.pieces)
 
@@ -166,10 +128,6 @@ def _checked(fn, item, *args):
     """One piece, unless Ctrl-C came: a pool then drains in one piece's time."""
     interrupt.check()
     return fn(item, *args)
-
-
-def _take(it, n):
-    return list(itertools.islice(it, n))
 
 
 _engines: dict[str, DaskEngine] = {}
@@ -214,16 +172,62 @@ def _local(kind: str) -> DaskEngine:
     return DaskEngine("processes", n, client, cluster.scheduler_address)
 
 
+#: how long a ``--scheduler`` has to answer before the command gives up (a scheduler that is up
+#: answers a connection in milliseconds; ``SWARMAUDIT_DASK_TIMEOUT`` sets another, e.g. "20s")
+CONNECT_TIMEOUT = "3s"
+
+
+def scheduler_address(address) -> str:
+    """``address`` when it is one dask.distributed can connect to (a known scheme; for tcp and
+    tls a host and a port); else an OptionError saying what is wrong. Nothing is contacted."""
+    from distributed.comm.addressing import parse_address, parse_host_port
+    from distributed.comm.registry import get_backend
+    text = str(address).strip()
+    hint = "give it as tcp://HOST:PORT, the address the scheduler prints when it starts"
+    try:
+        scheme, location = parse_address(text, strict=False)
+        get_backend(scheme)
+        if scheme in ("tcp", "tls"):
+            port = location.rpartition(":")[2]
+            if location.count(":") and not port.isdigit() and "]" not in port:
+                raise ValueError(f"the port '{port}' is not a number")
+            host, port = parse_host_port(location)
+            if not host or not 0 < int(port) < 65536:
+                raise ValueError("a host and a port from 1 to 65535 are needed")
+    except (ValueError, TypeError) as exc:
+        raise OptionError(f"--scheduler '{text}' is not a scheduler address ({exc}); {hint}") from None
+    return text
+
+
 def _connect(address: str) -> DaskEngine:
     from distributed import Client
+    address = scheduler_address(address)
+    timeout = os.environ.get("SWARMAUDIT_DASK_TIMEOUT", "").strip() or CONNECT_TIMEOUT
     try:
-        client = Client(address, timeout=os.environ.get("SWARMAUDIT_DASK_TIMEOUT", "10s"),
-                        set_as_default=False)
+        client = Client(address, timeout=timeout, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
-        raise OptionError(f"--scheduler {address}: no dask scheduler answers there ({exc})") from None
+        raise OptionError(f"--scheduler {address}: no dask scheduler answers there ({exc}); start "
+                          "one (dask scheduler) or check the address") from None
+    try:
+        # without a worker every task would wait for ever: give one the same time to join
+        client.wait_for_workers(1, timeout=timeout)
+    except (OSError, TimeoutError) as exc:
+        client.close()
+        raise OptionError(f"--scheduler {address}: the scheduler has no workers ({exc}); start one "
+                          f"(dask worker {address}) with access to the run's files") from None
     workers = max(1, sum(w.get("nthreads", 1)
                          for w in client.scheduler_info().get("workers", {}).values()))
     return DaskEngine("distributed", workers, client, address)
+
+
+def connect_scheduler(ctx) -> None:
+    """Connect to the context's ``--scheduler`` now, when the context will use it: a command
+    with an unreachable or malformed address stops at once with one OptionError, not at its
+    first reduction (or never, when everything it needs is cached)."""
+    address = getattr(ctx, "scheduler", None)
+    if address is None or (getattr(ctx, "engine", "auto") or "auto") == "memory":
+        return
+    client_for(address=scheduler_address(address))
 
 
 def close_engine(eng: DaskEngine) -> None:

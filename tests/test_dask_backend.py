@@ -293,6 +293,29 @@ def test_unreachable_scheduler_is_an_option_error(monkeypatch):
         dk.client_for(address="tcp://127.0.0.1:9")
 
 
+@pytest.mark.parametrize("address,why", [("tcp://127.0.0.1:notaport", "the port 'notaport' is not a number"),
+                                         ("udp://127.0.0.1:8786", "unknown address scheme"),
+                                         ("tcp://127.0.0.1:0", "port from 1 to 65535"),
+                                         ("", "missing port")])
+def test_a_malformed_scheduler_address_is_refused_without_connecting(address, why):
+    with pytest.raises(OptionError, match="is not a scheduler address") as err:
+        dk.client_for(address=address) if address else dk.connect_scheduler(
+            AuditContext(run=None, scheduler=address))
+    assert why in str(err.value) and repr(address) in str(err.value)
+
+
+def test_a_scheduler_without_workers_is_an_option_error(monkeypatch):
+    # every task would wait for a worker for ever: the command stops with one line instead
+    from distributed import LocalCluster
+    monkeypatch.setenv("SWARMAUDIT_DASK_TIMEOUT", "0.5s")
+    with LocalCluster(n_workers=0, processes=False, dashboard_address=None) as cluster:
+        with pytest.raises(OptionError, match="the scheduler has no workers"):
+            dk.client_for(address=cluster.scheduler_address)
+        assert cluster.scheduler_address not in dk._engines
+    # --engine memory never uses a scheduler: it is not contacted
+    dk.connect_scheduler(AuditContext(run=None, engine="memory", scheduler="tcp://127.0.0.1:9"))
+
+
 def test_drawing_follows_the_configured_engine(engine):
     from swarmaudit.app import render
     data = _particles(4000)

@@ -9,6 +9,8 @@ small enough that every test runs on several partitions.
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -291,6 +293,24 @@ def test_unreachable_scheduler_is_an_option_error(monkeypatch):
     monkeypatch.setenv("SWARMAUDIT_DASK_TIMEOUT", "1s")
     with pytest.raises(OptionError, match="no dask scheduler"):
         dk.client_for(address="tcp://127.0.0.1:9")
+
+
+def test_a_closed_port_is_given_up_after_the_short_connect_timeout(monkeypatch):
+    # a functional limit, not a speed claim: dask's own connect timeout is 30 s, a command
+    # with a wrong --scheduler should say so in seconds
+    import socket
+    from dask.utils import parse_timedelta
+    monkeypatch.delenv("SWARMAUDIT_DASK_TIMEOUT", raising=False)
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        address = f"tcp://127.0.0.1:{s.getsockname()[1]}"     # closed once the block ends
+    t0 = time.monotonic()
+    with pytest.raises(OptionError, match="no dask scheduler answers there") as err:
+        dk.client_for(address=address)
+    waited = time.monotonic() - t0
+    assert parse_timedelta(dk.CONNECT_TIMEOUT) <= 5
+    assert waited < parse_timedelta(dk.CONNECT_TIMEOUT) + 10, waited
+    assert address in str(err.value) and address not in dk._engines
 
 
 @pytest.mark.parametrize("address,why", [("tcp://127.0.0.1:notaport", "the port 'notaport' is not a number"),

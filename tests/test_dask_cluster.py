@@ -193,27 +193,27 @@ def test_compare_on_the_cluster_equals_the_in_memory_comparison(cluster, runs):
 
 def test_a_dashboard_page_on_the_cluster_shows_the_in_memory_tables(cluster, run):
     # the page's state and panels built in this process, as a served session builds them, on a
-    # context with the scheduler, against the same page without it
+    # context with the scheduler, against the same page of a server without it
+    from dash_fixtures import server_of
+
     from swarmaudit.app.dashboard import Dashboard
     from swarmaudit.app.options import context_from_options
     from swarmaudit.app.panels import SidePanels, run_drift, snapshot_migration
-    from swarmaudit.app.state import ServedRuns, ViewState
+    from swarmaudit.app.state import ViewState
     from swarmaudit.engine import dask_backend as dk
     address, client = cluster
-    pages, served = {}, []
+    pages = {}
     try:
         for name, kw in (("memory", {}), ("cluster", {"scheduler": address})):
             ctx = context_from_options(None, run=run, no_cache=True, **kw)
-            runs = ServedRuns()
-            runs.add("run", ctx)
-            served.append(runs)        # alive: the panels' memo is keyed by the run object's id
-            state = ViewState(runs)
+            server = server_of(("run", ctx))
+            state = ViewState(server.runs)
             state.param.update(snapshot=1, species="all")
-            dash = Dashboard(state, runs)
+            dash = Dashboard(state, server)
             before = _executed(client)
             image = dash.render_view("space", x_range=(0.0, 2.0), y_range=(0.0, 1.0), snapshot=1)
             drawn_on_workers = _executed(client) > before
-            blocks, ranks, imbalance = SidePanels(state).census(1)
+            blocks, ranks, imbalance = SidePanels(state, server).census(1)
             moves, summary, disp, steps = snapshot_migration(ctx, 0, 1, "all")
             pages[name] = {"image": np.nan_to_num(image.get(0).dimension_values(2, flat=False)),
                            "blocks": blocks, "ranks": ranks, "moves": moves, "summary": summary,

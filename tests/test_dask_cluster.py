@@ -6,7 +6,7 @@ loopback, one thread per worker; the commands run as a user runs them
 Each table a command writes or prints is compared with the same command run in memory (no
 scheduler): counts bit for bit, float totals to the rounding of compensated sums (rtol 1e-12:
 a worker reads its files itself, so it may take the numpy path where this process reads
-straight from a held file). The scheduler's own task counts show the work ran on the workers.
+straight from a held file). The workers' own task counts show that they did the work.
 An unreachable or malformed scheduler address is one error line and exit code 2.
 """
 

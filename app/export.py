@@ -50,6 +50,8 @@ class ExportOptions:
     fontscale: float = 1.15
     view: str | None = None         # a dashboard link (or its query): draw that state too
     movie: str | None = None        # mp4 | gif | webp: a movie of each view over every snapshot
+    #: draw the figures in a second process (None: when a core is spare; figure_writer)
+    figure_process: bool | None = None
 
     @classmethod
     def from_args(cls, args) -> "ExportOptions":
@@ -441,8 +443,8 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                    movie_writer=None) -> None:
     """Draw and write everything into the plan's staging folder."""
     from . import figure_data as D
-    from . import mpl_figures as M
-    from .png import save_png
+    from .figure_writer import FigureWriter
+    from .mpl_figures import FigureSize
     from .progress import Progress
     from .report import FigureItem, Section, TableItem, Verdict, render_report, write_report
     from ..audit import tables as audit
@@ -454,32 +456,23 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
              + len(deposit_figs) + 4 + 1)
     bar = Progress(total, "export", stream=stream,
                    enabled=False if opts.quiet else None)
-    size = M.FigureSize.of(opts)
+    size = FigureSize.of(opts)
+    figures = (len(views) + len(link_figs) + 2 * len(census_figs) + 2 * len(migration_figs)
+               + (1 if drift_fig else 0) + len(deposit_figs))
+    # started now, so a second process loads the figure code while the tables are reduced
+    writer = FigureWriter(size, figures, opts.figure_process)
 
-    def add_figure(rec: FigureRecord, draw):
-        """Draw (``draw()`` returns a Figure) and write one figure."""
-        interrupt.check()       # Ctrl-C between figures: stop before drawing the next
-        save_png(draw(), rec.path)
+    def add_figure(rec: FigureRecord, kind: str, payload):
+        """Hand one figure to the writer (``mpl_figures.draw_job``) and record it."""
+        writer.submit(kind, payload, rec.path)
         res.figures.append(rec)
-
-    # an image figure is laid out once per kind of picture; each later image is swapped in
-    laid_out: dict[tuple, object] = {}
-
-    def image_figure(key, make):
-        if key not in laid_out:
-            laid_out[key] = make()
-        return laid_out[key]
 
     def add_density(rec: FigureRecord, view, agg):
-        interrupt.check()
-        key = ("view", view.xcol, view.ycol, view.grid, view.x_range, view.y_range, view.xlabel,
-               view.ylabel, view.clabel, view.cmap, view.scaling, view.equal)
-        fig = M.show_density(image_figure(key, lambda: M.density_figure(view, size)), view, agg)
-        fig.save(rec.path)
-        rec.drawn = fig.drawn() if keep_aggregates else None
-        res.figures.append(rec)
+        data, extent = D.density_data(view, agg)
+        add_figure(rec, "density", (view, data, extent))
+        rec.drawn = data if keep_aggregates else None
 
-    with bar:
+    with bar, writer:
         # tables first: the census and drift figures are drawn from them -------------------------
         bar.draw("census table")
         census_df = audit.census_table(ctx)
@@ -558,13 +551,13 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
             data = D.census_map(blocks, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl)
             add_figure(FigureRecord("census_map", map_path, title, i, "all",
                                     "particles per block (all species); refined blocks outlined"),
-                       lambda: M.census_map(data, size))
+                       "census_map", data)
             bar.step(f"census map {i}")
             title = f"{name} · particles per rank, all species · {policy.snapshot_label_of(snap, i)}"
             loads = D.rank_bars(ranks, imb, title)
             add_figure(FigureRecord("rank_load", bar_path, title, i, "all",
                                     "particles per rank with the mean (dashed)"),
-                       lambda: M.rank_bars(loads, size))
+                       "rank_bars", loads)
             bar.step(f"rank load {i}")
 
         # migration -------------------------------------------------------------------------------
@@ -580,7 +573,7 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
             add_figure(FigureRecord("transfer", heat_path, title, b, "all",
                                     f"migrated particles ({policy.MIGRATED_MEANS}), block to "
                                     "block; the ones that stayed are left out"),
-                       lambda: M.transfer_matrix(D.transfer_matrix(table, title, cmap=opts.cmap), size))
+                       "transfer_matrix", D.transfer_matrix(table, title, cmap=opts.cmap))
             bar.step(f"transfer {a}-{b}")
             title = f"{name} · displacement · snapshot {a} → {b}"
             add_figure(FigureRecord("displacement", disp_path, title, b, "all",
@@ -588,8 +581,7 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                                      "line is one level-0 cell per step") if steps else
                                     "steps between the snapshots unknown; the dashed line is one "
                                     "level-0 cell"),
-                       lambda: M.displacement_histogram(D.displacement_histogram(disp, steps, title),
-                                                        size))
+                       "displacement_histogram", D.displacement_histogram(disp, steps, title))
             bar.step(f"displacement {a}-{b}")
 
         # gate: judged before the drift figure, which marks what the gate judges ------------------
@@ -612,8 +604,8 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                                     "where a checked total first leaves it"
                                     if opts.rtol else
                                     "drift of every total against the first snapshot (no --rtol given)"),
-                       lambda: M.drift_curves(D.drift_curves(drift_df, opts.rtol, title, checked=checked,
-                                                             xlabel=_time_label(run)), size))
+                       "drift_curves", D.drift_curves(drift_df, opts.rtol, title, checked=checked,
+                                                      xlabel=_time_label(run)))
             bar.step("drift")
         else:
             notes.append("the run has one snapshot: no drift figure")
@@ -632,11 +624,9 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
             label = "weight per cell" + (" (summed over z)" if layout.ndim == 3 else "")
             dep = D.deposit_map(grid, layout, title, cmap=opts.cmap, xlabel=xl, ylabel=yl,
                                 label=label)
-            key = ("deposit", dep.grid.shape, dep.bounds, dep.xlabel, dep.ylabel, dep.value_label)
             add_figure(FigureRecord("deposit", path, title, i, "all",
                                     "cloud-in-cell deposit of particle weight on the level-0 cells"),
-                       lambda: M.show_deposit(image_figure(key, lambda: M.deposit_figure(dep, size)),
-                                              dep).fig)
+                       "deposit", dep)
             bar.step(f"deposit {i}")
 
         for note in ctx.notes:
@@ -648,7 +638,8 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                 if msg not in notes:
                     notes.append(msg)
 
-        # report ------------------------------------------------------------------------------------
+        # report: every figure written first, it is embedded ----------------------------------------
+        writer.finish()
         sections = _sections(res, census_df, migration_df, summary_df, drift_df, FigureItem,
                              Section, TableItem)
         facts = _facts(ctx, chosen, species)

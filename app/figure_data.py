@@ -60,6 +60,18 @@ def short_number(v: float) -> str:
     return f"{v:.3g}"
 
 
+# density views -----------------------------------------------------------------------------
+def density_data(view, agg) -> tuple[np.ndarray, tuple]:
+    """(values drawn, extent x0, x1, y0, y1) of a particle view's aggregate: blank bins NaN,
+    rows from the lowest y up."""
+    from .colours import shown_values
+    data = shown_values(agg.values, view.reduction, view.scaling)
+    ydim, xdim = agg.dims[:2]
+    xs = agg.attrs.get("x_range") or (float(agg.coords[xdim][0]), float(agg.coords[xdim][-1]))
+    ys = agg.attrs.get("y_range") or (float(agg.coords[ydim][0]), float(agg.coords[ydim][-1]))
+    return data, (float(xs[0]), float(xs[1]), float(ys[0]), float(ys[1]))
+
+
 # census ------------------------------------------------------------------------------------
 @dataclass
 class CensusMap:

@@ -247,15 +247,6 @@ class ImageFigure:
         return np.ma.filled(np.ma.asarray(self.im.get_array(), dtype=np.float64), np.nan)
 
 
-def density_data(view, agg) -> tuple[np.ndarray, tuple]:
-    """(values drawn, extent) of a particle view's aggregate: blank bins NaN, rows from the lowest y."""
-    data = colours.shown_values(agg.values, view.reduction, view.scaling)
-    ydim, xdim = agg.dims[:2]
-    xs = agg.attrs.get("x_range") or (float(agg.coords[xdim][0]), float(agg.coords[xdim][-1]))
-    ys = agg.attrs.get("y_range") or (float(agg.coords[ydim][0]), float(agg.coords[ydim][-1]))
-    return data, (float(xs[0]), float(xs[1]), float(ys[0]), float(ys[1]))
-
-
 def density_figure(view, size: FigureSize) -> ImageFigure:
     """An empty figure for aggregates of ``view`` (its labels, colour map and aspect)."""
     x0, x1 = view.x_range
@@ -267,7 +258,11 @@ def density_figure(view, size: FigureSize) -> ImageFigure:
 def show_density(figure: ImageFigure, view, agg, *, title=None, norm=None) -> ImageFigure:
     """Draw ``agg`` of ``view`` into ``figure``; ``norm`` is a scale shared by several (a movie),
     else the aggregate's own ``view.scaling`` scale."""
-    data, extent = density_data(view, agg)
+    return show_values(figure, view, *D.density_data(view, agg), title=title, norm=norm)
+
+
+def show_values(figure: ImageFigure, view, data, extent, *, title=None, norm=None) -> ImageFigure:
+    """Draw the values of a density view (``figure_data.density_data``) into ``figure``."""
     if norm is None:
         norm, _ = colours.scale_norm([data], view.scaling)
     return figure.show(data, norm, view.title if title is None else title, extent=extent)
@@ -416,3 +411,54 @@ def drift_curves(c: D.DriftCurves, size: FigureSize):
     fig.suptitle(c.title, fontsize=SUPTITLE_PT * size.fontscale)
     fit_layout(fig)
     return fig
+
+
+# figure jobs ---------------------------------------------------------------------------------------
+#: what draws each kind of audit figure record into a figure of its own
+DRAW = {"census_map": census_map, "rank_bars": rank_bars, "transfer_matrix": transfer_matrix,
+        "displacement_histogram": displacement_histogram, "drift_curves": drift_curves}
+
+
+def _image_key(kind, payload):
+    """Which laid-out figure an image goes into: pictures of one kind, on one grid, labelled alike."""
+    if kind == "density":
+        v = payload[0]
+        return (kind, v.xcol, v.ycol, v.grid, v.x_range, v.y_range, v.xlabel, v.ylabel, v.clabel,
+                v.cmap, v.scaling, v.equal)
+    m = payload
+    return (kind, m.grid.shape, m.bounds, m.xlabel, m.ylabel, m.value_label, m.cmap)
+
+
+def draw_job(job, size: FigureSize, laid_out: dict) -> None:
+    """Draw one figure and write its PNG: ``job`` is (kind, payload, path).
+
+    ``density`` takes (view, values, extent) of ``figure_data.density_data``, ``deposit`` a
+    ``DepositMap``: both go into the figure ``laid_out`` keeps for their kind; every
+    other kind is a ``figure_data`` record drawn by ``DRAW[kind]``. The same wherever
+    it runs: in the export's process or in the process that draws for it.
+    """
+    kind, payload, path = job
+    if kind in ("density", "deposit"):
+        key = _image_key(kind, payload)
+        if kind == "density":
+            view, data, extent = payload
+            if key not in laid_out:
+                laid_out[key] = density_figure(view, size)
+            show_values(laid_out[key], view, data, extent).save(path)
+        else:
+            if key not in laid_out:
+                laid_out[key] = deposit_figure(payload, size)
+            show_deposit(laid_out[key], payload).save(path)
+        return
+    save_png(DRAW[kind](payload, size), path)
+
+
+def warm_up() -> None:
+    """Draw a small figure once: the fonts, text layout and colour tables are then ready."""
+    size = FigureSize(160, 120, 100)
+    data = np.arange(12.0).reshape(3, 4)
+    fig = ImageFigure(size, extent=(0, 1, 0, 1), xlabel="x", ylabel="y", clabel="c",
+                      cmap="viridis", equal=False)
+    fig.show(data, colours.scale_norm([data], "eq_hist")[0], "t").pixels()
+    figure_pixels(displacement_histogram(D.displacement_histogram(np.arange(5.0), 1, "t"), size))
+

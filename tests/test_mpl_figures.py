@@ -9,6 +9,7 @@ holoviews figures are built from (tests/test_figures.py).
 """
 
 import gc
+import os
 import re
 import subprocess
 import sys
@@ -280,3 +281,62 @@ def test_export_never_imports_the_screens_plotting_stack(tmp_path):
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip().splitlines()[-1] == "0 []"
+
+
+# the second process that draws -----------------------------------------------------------------------
+def _export(run, out, process):
+    import dataclasses
+
+    from _export_samples import LAYOUT_ARGS
+    from swarmaudit.app.cli import build_parser
+    from swarmaudit.app.export import ExportOptions, export_run
+    from swarmaudit.app.options import context_from_options
+    args = build_parser().parse_args(["export", run, "--out", str(out), *LAYOUT_ARGS, "--quiet",
+                                      "--width", "480", "--height", "360", "--dpi", "80"])
+    opts = dataclasses.replace(ExportOptions.from_args(args), figure_process=process)
+    return export_run(context_from_options(args), opts, args)
+
+
+def test_figures_drawn_by_the_second_process_are_the_ones_drawn_here(tmp_path):
+    from _export_samples import write_npz_run
+    run, _ = write_npz_run(str(tmp_path / "run"), n=800, snapshots=3)
+    there = _export(run, tmp_path / "there", True)
+    here = _export(run, tmp_path / "here", False)
+    names = sorted(os.path.basename(f.path) for f in here.figures)
+    assert names == sorted(os.path.basename(f.path) for f in there.figures) and len(names) == 17
+    for a, b in zip(sorted(f.path for f in here.figures), sorted(f.path for f in there.figures)):
+        assert open(a, "rb").read() == open(b, "rb").read(), os.path.basename(a)
+
+
+def _jobs(tmp_path, n=6):
+    rng = np.random.default_rng(8)
+    rec = D.rank_bars(pd.DataFrame({"rank": range(3), "count": [4, 5, 6]}), None, "ranks")
+    dep = D.deposit_map(rng.random((16, 8)), _layout(), "deposit")
+    jobs = [("rank_bars", rec, str(tmp_path / f"r{k}.png")) for k in range(n)]
+    return jobs + [("deposit", dep, str(tmp_path / "d.png"))]
+
+
+def test_a_drawing_error_in_the_second_process_is_raised_by_the_export(tmp_path):
+    from swarmaudit.app.figure_writer import FigureWriter
+    size = M.FigureSize(300, 240, 100)
+    for process in (True, False):
+        writer = FigureWriter(size, 10, process)
+        assert writer.in_process == process
+        with pytest.raises(AttributeError):
+            with writer:
+                writer.submit("rank_bars", None, str(tmp_path / "broken.png"))   # no record
+                writer.finish()
+        assert not writer.in_process
+
+
+def test_jobs_of_a_second_process_that_died_are_drawn_here(tmp_path):
+    from swarmaudit.app.figure_writer import FigureWriter
+    writer = FigureWriter(M.FigureSize(300, 240, 100), 10, True)
+    assert writer.in_process
+    writer._child.kill()
+    for job in _jobs(tmp_path):
+        writer.submit(*job)
+    writer.finish()
+    for _, _, path in _jobs(tmp_path):
+        with Image.open(path) as im:
+            assert im.size == (300, 240)

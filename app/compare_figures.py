@@ -15,10 +15,8 @@ import numpy as np
 
 from ..audit import tables as _tables
 from .report import FigureItem
-
-#: the diverging colour map of a difference (blue: fewer in the candidate, red: more)
-DIFFERENCE_CMAP = "RdBu_r"
-DENSITY_CMAP = "viridis"
+from .view_policy import DEFAULT_CMAP as DENSITY_CMAP
+from .view_policy import DIFFERENCE_CMAP, DIFFERENCE_MEANS, difference_limits
 #: totals drawn when they exist (species all), in this order
 TOTALS_SHOWN = ("count", "charge", "momentum_x", "momentum_y", "kinetic_energy", "total_energy")
 
@@ -32,13 +30,6 @@ def density_pair(frame_ref, frame_cand, xcol_ref, ycol_ref, xcol_cand, ycol_cand
     b = render.aggregate_points(frame_cand, xcol_cand, ycol_cand, width=width, height=height,
                                 x_range=x_range, y_range=y_range)
     return render.histogram_counts(a), render.histogram_counts(b), a
-
-
-def difference_limits(diff: np.ndarray) -> tuple[float, float]:
-    """A colour range centred on zero that holds every difference (±1 when there is none)."""
-    m = float(np.max(np.abs(diff))) if diff.size else 0.0
-    m = m if m > 0 else 1.0
-    return -m, m
 
 
 def _range_union(frames, cols):
@@ -84,7 +75,7 @@ def _density_figure(path, ref_counts, cand_counts, agg, x_range, y_range, title,
     im = axes[2].imshow(diff, origin="lower", extent=extent, aspect="auto",
                         cmap=colour_map(DIFFERENCE_CMAP),
                         norm=TwoSlopeNorm(vcenter=0.0, vmin=lo, vmax=hi), interpolation="nearest")
-    axes[2].set_title("candidate − reference")
+    axes[2].set_title(DIFFERENCE_MEANS)
     axes[2].set_xlabel(xlabel)
     fig.colorbar(im, ax=axes[2], label="particles per pixel", shrink=0.9)
     fig.suptitle(title)

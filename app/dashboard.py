@@ -20,8 +20,8 @@ import holoviews as hv
 from ..core.errors import SwarmAuditError
 from . import render, view_policy
 from .state import ServerState, ViewState
-from .view_policy import (BLOCK_MODE_LABELS, CMAPS, COLOR_BY_LABELS, LABELS, SCALING_LABELS,
-                          SECTIONS)
+from .view_policy import (BLOCK_MODE_LABELS, CMAPS, COLOR_BY_LABELS, LABELS, NO_REFERENCE,
+                          PAIR_LABELS, SCALING_LABELS, SECTIONS, SHOW_LABELS)
 
 log = logging.getLogger("swarmaudit.dashboard")
 
@@ -220,38 +220,88 @@ class Dashboard(param.Parameterized):
         s = self.state
         status = self._status[which]
         zoom = x_range is not None and y_range is not None
+        j = s.snapshot if snapshot is None else int(snapshot)
         try:
-            frame = s.frame(snapshot)
-            view = view_policy.particle_view(s, which, frame=frame, snapshot=snapshot,
+            frame = s.frame(j)
+            ref_i, ref_frame, ref_problem = self._reference(j, which)
+            frames = [frame] + ([ref_frame] if ref_frame is not None else [])
+            # one canvas for both runs: ranges and grid shared, whichever of them is shown
+            view = view_policy.particle_view(s, which, frame=frame, snapshot=snapshot, frames=frames,
                                              x_range=x_range if zoom else None,
                                              y_range=y_range if zoom else None,
                                              slab_range=slab_range)
             if zoom and not view.notes:
                 self._store_ranges(which, view.x_range, view.y_range)
-            agg = view.aggregate(frame)
+            show = s.show if s.reference else "candidate"
+            if show != "candidate" and ref_frame is None:
+                status.object = f"⚠ {ref_problem}"
+                return self._empty_overlay(which, view.x_range, view.y_range, ref_problem)
+            agg = view.aggregate(frame if show != "reference" else ref_frame)
         except SwarmAuditError as exc:
             status.object = f"⚠ {exc}"
-            self.problem.object = f"**Snapshot {s.snapshot if snapshot is None else snapshot} cannot be shown.** {exc}"
+            self.problem.object = f"**Snapshot {j} cannot be shown.** {exc}"
             self.problem.visible = True
             xr_ = tuple(x_range) if x_range and not view_policy.range_problem(x_range) else (0, 1)
             yr_ = tuple(y_range) if y_range and not view_policy.range_problem(y_range) else (0, 1)
             return self._empty_overlay(which, xr_, yr_, str(exc))
+        if show == "reference":
+            view = view.of_reference(view_policy.view_title(
+                which, s.species, f"{s.reference} {s.reference_run.describe(ref_i)}"))
+            img = view.image(agg)
+        elif show == "difference":
+            ref_agg = view.aggregate(ref_frame)
+            agg = view.difference(ref_agg, agg)
+            img = view.difference_image(agg)
+        else:
+            img = view.image(agg)
         self.shown[which] = (view, agg)
-        img = view.image(agg)
         img = img.opts(backend="bokeh", width=VIEW_W, height=VIEW_H,
                        tools=["hover", "box_select"], active_tools=["wheel_zoom"],
                        bgcolor=PAPER, toolbar="above", fontsize={"title": "10.5pt"})
-        # selection layer: the same particles, wherever the box was drawn
-        sel_img, box = self._selection_layer(frame, which, view, select_box, select_view)
-        blocks = self._blocks_layer(frame, which, view.xcol, view.ycol, snapshot)
+        # selection layer: the same particles, wherever the box was drawn (in the reference view,
+        # the reference's particles in that box)
+        drawn = ref_frame if show == "reference" else frame
+        sel_img, box = self._selection_layer(drawn, which, view, select_box, select_view)
+        if show == "candidate":
+            blocks = self._blocks_layer(frame, which, view.xcol, view.ycol, s.served, j)
+        else:         # the comparison counts both runs in the reference's blocks
+            blocks = self._blocks_layer(ref_frame, which, view.xcol, view.ycol, s.reference_run,
+                                        ref_i, counts=(show == "reference"))
         extra = ""
         if agg.attrs["nonfinite"]:
             extra = f" · **{agg.attrs['nonfinite']:,} with NaN/inf coordinates left out**"
         for note in view.notes:
             extra += f" · {note}"
+        if ref_problem and show == "candidate":
+            extra += f" · no reference here: {ref_problem}"
         ny, nx = agg.shape
-        status.object = f"{agg.attrs['particles']:,} particles binned on {nx}×{ny} bins{extra}"
+        if show == "difference":
+            d = np.asarray(agg.values)
+            differs = np.isfinite(d).any() and np.nanmax(np.abs(d)) > 0
+            _, hi = view_policy.difference_limits(d)
+            status.object = (f"{view_policy.DIFFERENCE_MEANS}: {agg.attrs['particles']:,} and "
+                             f"{agg.attrs['ref_particles']:,} particles binned on {nx}×{ny} bins, "
+                             + (f"colours ±{hi:.4g}" if differs else "**no pixel differs**")
+                             + extra)
+        else:
+            whose = f"{s.reference} {s.reference_run.describe(ref_i)}: " if show == "reference" else ""
+            status.object = f"{whose}{agg.attrs['particles']:,} particles binned on {nx}×{ny} bins{extra}"
         return img * sel_img * blocks * box
+
+    def _reference(self, j, which):
+        """(reference snapshot, its frame, None) paired with snapshot ``j``, or (None, None, why not)."""
+        s = self.state
+        if not s.reference:
+            return None, None, None
+        try:
+            i, ref_frame = self.side.reference_frame(j)
+            xcol, ycol = self._axes(which)
+            missing = [c for c in (xcol, ycol) if c not in ref_frame]
+            if missing:
+                raise SwarmAuditError(f"{s.reference} has no column '{missing[0]}'")
+        except SwarmAuditError as exc:
+            return None, None, str(exc)
+        return i, ref_frame, None
 
     def _empty_overlay(self, which, xr_, yr_, text):
         empty = hv.Image(np.full((2, 2), np.nan), bounds=(xr_[0], yr_[0], xr_[1], yr_[1]))
@@ -263,11 +313,12 @@ class Dashboard(param.Parameterized):
     def _selection_layer(self, frame, which, view, select_box, select_view):
         x_range, y_range = view.x_range, view.y_range
         empty_box = hv.Rectangles([]).opts(backend="bokeh", fill_alpha=0, line_color="#e11d48")
-        if not select_box or not select_view:
+        sx, sy = self._axes(select_view) if select_view else (None, None)
+        # (a reference run drawn may lack the columns the box was drawn on)
+        if not select_box or not select_view or sx not in frame or sy not in frame:
             nothing = hv.Image(np.zeros((2, 2)),
                                bounds=(x_range[0], y_range[0], x_range[1], y_range[1]))
             return _highlight(nothing), empty_box
-        sx, sy = self._axes(select_view)
         mask = render.box_mask(frame, sx, sy, select_box)
         agg = view.aggregate(frame, mask=mask)
         data = (np.asarray(agg.values) > 0).astype(np.float64)
@@ -282,13 +333,15 @@ class Dashboard(param.Parameterized):
             box = empty_box
         return sel, box
 
-    def _blocks_layer(self, frame, which, xcol, ycol, snapshot):
+    def _blocks_layer(self, frame, which, xcol, ycol, served, snapshot, counts=True):
+        """The layout of ``served`` at ``snapshot`` over the space view (census counts when
+        ``counts`` and the state asks for them)."""
         s = self.state
         none = hv.Rectangles([]).opts(backend="bokeh", fill_alpha=0)
         if which != "space" or s.blocks == "off":
             return none
         try:
-            layout = s.served.layout(s.snapshot if snapshot is None else snapshot)
+            layout = served.layout(snapshot)
         except SwarmAuditError:
             return none
         axes = self._block_axes(frame, xcol, ycol, layout)
@@ -298,21 +351,22 @@ class Dashboard(param.Parameterized):
         if s.slab_axis and s.slab_range and s.slab_axis in frame.position_names:
             k = frame.position_names.index(s.slab_axis)
             slab = (k, s.slab_range[0], s.slab_range[1])
-        counts = None
-        if s.blocks in ("tinted", "labelled"):
-            counts = self.side.block_counts(s.snapshot if snapshot is None else snapshot)
-        return render.block_overlay(layout, counts=counts, labels=(s.blocks == "labelled"),
+        shown = counts and s.blocks in ("tinted", "labelled")
+        counts = self.side.block_counts(snapshot, served) if shown else None
+        return render.block_overlay(layout, counts=counts, labels=shown and s.blocks == "labelled",
                                     axes=axes, slab=slab, line_color=BLOCK_LINE)
 
     @param.depends("state.run", "state.species", "state.space_x", "state.space_y",
                    "state.blocks", "state.cmap", "state.scaling", "state.color_by",
-                   "state.color_column", "state.slab_axis", "reset_count")
+                   "state.color_column", "state.slab_axis", "state.reference", "state.pair_by",
+                   "state.show", "reset_count")
     def space_view(self):
         return self._view("space")
 
     @param.depends("state.run", "state.species", "state.phase_x", "state.phase_y",
                    "state.cmap", "state.scaling", "state.color_by", "state.color_column",
-                   "state.slab_axis", "reset_count")
+                   "state.slab_axis", "state.reference", "state.pair_by", "state.show",
+                   "reset_count")
     def phase_view(self):
         return self._view("phase")
 
@@ -416,8 +470,55 @@ class Dashboard(param.Parameterized):
             _section(SECTIONS["selection"]),
             self.selection_info,
             pn.Row(whole, clear, sizing_mode="stretch_width"),
+            self._compare_controls(),
             width=330, styles=CONTROLS_STYLE, margin=0,
         )
+
+    def _compare_controls(self):
+        """The reference run, how snapshots pair, what the views show; hidden with one run."""
+        s = self.state
+
+        def options():
+            return {NO_REFERENCE: "", **{n: n for n in s.param.reference.objects if n}}
+        pick = pn.widgets.Select(label=LABELS["reference"], options=options(), value=s.reference,
+                                 sizing_mode="stretch_width")
+        pick.param.watch(lambda e: s.param.update(reference=e.new) if e.new != s.reference else None,
+                         "value")
+
+        def on_state(*_):
+            pick.param.update(options=options(), value=s.reference)
+        s.param.watch(on_state, ["run", "reference"])
+        pair = pn.widgets.RadioButtonGroup.from_param(
+            s.param.pair_by, options={v: k for k, v in PAIR_LABELS.items()}, color="light",
+            sizing_mode="stretch_width")
+        show = pn.widgets.RadioButtonGroup.from_param(
+            s.param.show, options={v: k for k, v in SHOW_LABELS.items()}, color="light",
+            sizing_mode="stretch_width")
+        pairing = pn.pane.Markdown("", styles=STATUS_STYLE, margin=(0, 10), width=300)
+
+        def on_reference(*_):
+            pair.disabled = show.disabled = not s.reference
+            pairing.object = self._pairing_note()
+        s.param.watch(on_reference, ["run", "reference", "pair_by", "snapshot", "run_revision"])
+        on_reference()
+        box = pn.Column(_section(SECTIONS["compare"]), pick,
+                        pn.pane.HTML(f"<div class='sa-small'>{_html(LABELS['pair_by'])}</div>",
+                                     stylesheets=[_PANE_CSS], margin=(4, 10, 0, 10)), pair,
+                        pn.pane.HTML(f"<div class='sa-small'>{_html(LABELS['show'])}</div>",
+                                     stylesheets=[_PANE_CSS], margin=(4, 10, 0, 10)), show,
+                        pairing, sizing_mode="stretch_width", margin=0)
+        box.visible = len(s.param.reference.objects) > 1
+        return box
+
+    def _pairing_note(self) -> str:
+        s = self.state
+        if not s.reference:
+            return ""
+        try:
+            i = self.side.reference_snapshot(s.snapshot)
+        except SwarmAuditError as exc:
+            return f"⚠ {exc}"
+        return f"paired with {_html(s.reference)} {_html(s.reference_run.describe(i))}"
 
     def _slab_controls(self):
         s = self.state
@@ -498,6 +599,7 @@ _PANE_CSS = """
 .sa-snaplabel { font-size: 14px; font-weight: 600; color: #1d2433;
   font-family: "DejaVu Sans Mono", monospace; }
 .sa-of { font-weight: 400; color: #5b6473; font-size: 12px; }
+.sa-small { font-size: 12px; color: #5b6473; }
 """
 
 

@@ -1,4 +1,4 @@
-"""The side panels of the dashboard: Blocks, Migration, Drift, Histogram (view_policy.PANELS).
+"""The side panels of the dashboard: Blocks, Migration, Drift, Histogram, Compare (view_policy.PANELS).
 
 Numbers come from ``core.audit`` / ``diagnostics`` and figures from
 ``app.figures`` (the builders the export uses). Work over a whole run (drift)
@@ -15,20 +15,25 @@ import holoviews as hv
 import panel as pn
 import param
 
+from ..audit.compare import PAIR_COLUMNS
 from ..core.errors import SwarmAuditError
 from . import figures
 from .state import ALL_SPECIES, SIDE_PANELS, ServerState, ViewState
-from .view_policy import LABELS, PANELS as TAB_TITLES, SUMMARY_LABELS
+from .view_policy import (COMPARE_TABLE_TITLES, LABELS, PANELS as TAB_TITLES, SUMMARY_LABELS,
+                          TABLE_DIGITS)
 
 #: size of each side figure on the page (two side by side beside the controls)
 SIDE_W, SIDE_H = 560, 400
 
 def _run_key(state) -> tuple:
-    # the name of the run in view (unique within a server, and results are per server); the
-    # epoch changes when a live run's rescan re-opened or moved snapshots, so results computed
-    # by position are not reused for other files
-    served = state.served
-    return (state.run,) + ((served.epoch,) if served.epoch else ())
+    return _served_key(state.served)
+
+
+def _served_key(served) -> tuple:
+    # the name of the run (unique within a server, and results are per server); the epoch
+    # changes when a live run's rescan re-opened or moved snapshots, so results computed by
+    # position are not reused for other files
+    return (served.name,) + ((served.epoch,) if served.epoch else ())
 
 
 def _fit(obj, width=SIDE_W, height=SIDE_H):
@@ -49,8 +54,11 @@ class SidePanels(param.Parameterized):
         self.results = server.results
         self._moves = pn.Column(sizing_mode="stretch_width", min_height=200)
         self._totals = pn.Column(sizing_mode="stretch_width", min_height=200)
+        self._compare = pn.Column(sizing_mode="stretch_width", min_height=200)
         self._watchers: dict[str, object] = {}
-        self._token = {"moves": 0, "totals": 0}
+        self._token = {"moves": 0, "totals": 0, "compare": 0}
+        #: the Compare tab's tables as last shown (name -> the rows of the pair and species in view)
+        self.compare_shown: dict[str, pd.DataFrame] = {}
 
     # tabs ------------------------------------------------------------------------------
     def tabs(self):
@@ -60,6 +68,7 @@ class SidePanels(param.Parameterized):
             (TAB_TITLES["migration"], pn.Column(pn.panel(self.moves_panel), self._moves)),
             (TAB_TITLES["drift"], pn.Column(pn.panel(self.totals_panel), self._totals)),
             (TAB_TITLES["histogram"], pn.panel(self.histogram_panel, loading_indicator=True)),
+            (TAB_TITLES["compare"], pn.Column(pn.panel(self.compare_panel), self._compare)),
             active=SIDE_PANELS.index(s.side), dynamic=True,
             styles={"background": "#ffffff", "border": "1px solid #e4e0d8", "border-radius": "6px"},
             sizing_mode="stretch_width", margin=(8, 4))
@@ -68,18 +77,21 @@ class SidePanels(param.Parameterized):
         return tabs
 
     # census ----------------------------------------------------------------------------
-    def census(self, i: int):
-        """(block table, rank table, imbalance over ranks) of snapshot ``i``, species in view."""
+    def census(self, i: int, served=None):
+        """(block table, rank table, imbalance over ranks) of snapshot ``i`` of the run in view
+        (or of ``served``), species in view."""
         s = self.state
-        key = ("census", _run_key(s), int(i), s.species)
+        served = served if served is not None else s.served
+        key = ("census", _served_key(served), int(i), s.species)
         from ..audit import tables as audit
-        return self.results.cached(key, lambda: audit.snapshot_census(s.served.ctx, int(i), s.species))
+        return self.results.cached(key, lambda: audit.snapshot_census(served.ctx, int(i), s.species))
 
-    def block_counts(self, i: int):
+    def block_counts(self, i: int, served=None):
         """Particles per layout row of snapshot ``i`` (for tinting the block overlay)."""
+        served = served if served is not None else self.state.served
         try:
-            blocks, _, _ = self.census(i)
-            layout = self.state.served.layout(i)
+            blocks, _, _ = self.census(i, served)
+            layout = served.layout(i)
         except (SwarmAuditError, ImportError, AttributeError):
             return None
         per = blocks.groupby("block")["count"].sum()
@@ -234,8 +246,103 @@ class SidePanels(param.Parameterized):
                                 styles={"font-size": "13px"})
         return pn.Column(pick, pn.pane.HoloViews(fig, backend="bokeh", linked_axes=False), note)
 
+    # comparison with a reference run -------------------------------------------------------
+    def pairing(self):
+        """How the reference's snapshots pair with the run in view's (audit.compare.pair_snapshots,
+        the rule of ``swarmaudit compare``), or None without a reference."""
+        s = self.state
+        ref = s.reference_run
+        if ref is None:
+            return None
+        cand = s.served
+        key = ("pairing", _served_key(ref), _served_key(cand), s.pair_by, ref.version, cand.version)
+        from ..audit.compare import pair_snapshots
+        return self.results.cached(key, lambda: pair_snapshots(ref.ctx, cand.ctx, s.pair_by))
+
+    def reference_snapshot(self, j: int) -> int:
+        """The reference snapshot paired with snapshot ``j`` of the run in view.
+
+        Raises SwarmAuditError (worded for the page) when there is no reference, the runs
+        cannot be paired, or snapshot ``j`` has no partner.
+        """
+        s = self.state
+        pairing = self.pairing()
+        if pairing is None:
+            raise SwarmAuditError("no reference run is chosen")
+        for i, jj in pairing.pairs:
+            if jj == int(j):
+                return i
+        raise SwarmAuditError(f"snapshot {j} of {s.run} has no partner in {s.reference} "
+                              f"(paired by {s.pair_by})")
+
+    def reference_frame(self, j: int):
+        """(reference snapshot, its frame of the species in view) paired with snapshot ``j``."""
+        s = self.state
+        i = self.reference_snapshot(j)
+        ref = s.reference_run
+        if s.species != ALL_SPECIES and s.species not in ref.species_names(i):
+            raise SwarmAuditError(f"species '{s.species}' is not in {s.reference}")
+        return i, ref.frame(i, s.species)
+
+    @param.depends("state.run", "state.reference", "state.pair_by", "state.snapshot",
+                   "state.species", "state.run_revision", "state.data_revision")
+    def compare_panel(self):
+        s = self.state
+        if len(s.param.reference.objects) < 2:
+            self._compare.objects = []
+            self.compare_shown = {}
+            return _note("This server shows one run. Serve two (`swarmaudit serve REF CAND`) to "
+                         "compare them here.")
+        if not s.reference:
+            self._compare.objects = []
+            self.compare_shown = {}
+            return _note(f"Choose a reference run under **{LABELS['reference']}** (left) to "
+                         f"compare {s.run} with it.")
+        j = s.snapshot
+        try:
+            i = self.reference_snapshot(j)
+        except SwarmAuditError as exc:
+            self._compare.objects = []
+            self.compare_shown = {}
+            return _note(f"Nothing to compare: {exc}.", "warning")
+        ref, cand = s.reference_run, s.served
+        head = pn.pane.Markdown(
+            f"Reference **{_md(s.reference)}** {_md(ref.describe(i))} against candidate "
+            f"**{_md(s.run)}** {_md(cand.describe(j))}, paired by {s.pair_by}; "
+            f"species {_md(s.species)}.", styles={"font-size": "13px"})
+        key = ("compare", _served_key(ref), _served_key(cand), s.pair_by, i, j)
+        species = s.species
+
+        def work(progress=None):
+            return pair_comparison(ref.ctx, cand.ctx, i, j, s.pair_by, progress=progress)
+        self._start(self._compare, "compare", key, work, lambda comp: self._show_comparison(comp, species),
+                    label=f"Comparing reference snapshot {i} with snapshot {j}…")
+        return head
+
+    def _show_comparison(self, comp, species):
+        from ..audit.compare import finding_lines
+        tables = comparison_rows(comp, species)
+        self.compare_shown = tables
+        lines = finding_lines(comp)
+        parts = [pn.pane.Markdown("\n".join(f"- {_md(t)}" for t in lines) if lines else
+                                  "No particle or distribution finding for this pair.",
+                                  styles={"font-size": "13px"})]
+        for name, title in COMPARE_TABLE_TITLES.items():
+            df = tables[name]
+            parts.append(pn.pane.Markdown(f"**{title}** · `{name}` · {len(df):,} row(s)",
+                                          margin=(8, 8, 0, 8), styles={"font-size": "13px"}))
+            if len(df):
+                # the pair is named above the tables, and the particles' ids have a table of their
+                # own: those columns stay in the table, out of sight
+                hidden = [c for c in df.columns if c in PAIR_COLUMNS or c == "worst_ids"]
+                parts.append(_table(df, hidden))
+        if comp.notes:
+            parts.append(pn.pane.Markdown("\n".join(f"- {_md(n)}" for n in comp.notes[:8]),
+                                          styles={"font-size": "12px", "color": "#5b6473"}))
+        return pn.Column(*parts, sizing_mode="stretch_width")
+
     # background work -------------------------------------------------------------------
-    def _start(self, holder, name, key, work, show):
+    def _start(self, holder, name, key, work, show, label="Working through the run…"):
         """Show ``show(result)`` in ``holder`` when ``work`` is done; a progress bar meanwhile."""
         self._token[name] += 1
         token = self._token[name]
@@ -244,7 +351,7 @@ class SidePanels(param.Parameterized):
             holder.objects = [self._outcome(fut, show)]
             return
         bar = pn.indicators.Progress(value=0, max=100, width=320, bar_color="info")
-        label = pn.pane.Markdown("Working through the run…", margin=(0, 8))
+        label = pn.pane.Markdown(label, margin=(0, 8))
         holder.objects = [pn.Row(pn.indicators.LoadingSpinner(value=True, size=24), label, bar)]
 
         def poll():
@@ -272,6 +379,24 @@ class SidePanels(param.Parameterized):
         if isinstance(exc, SwarmAuditError):
             return _note(str(exc), "warning")
         return _note(f"This could not be computed ({type(exc).__name__}: {exc}).", "danger")
+
+
+def _table(df: pd.DataFrame, hidden=()):
+    """A table of numbers as the page shows it: every row kept, small and large values in
+    scientific notation (a plain number format would print 7e-07 as 0.0)."""
+    from bokeh.models.widgets.tables import ScientificFormatter
+    fmt = ScientificFormatter(precision=TABLE_DIGITS, power_limit_low=-3, power_limit_high=7)
+    floats = {c: fmt for c in df.columns if df[c].dtype.kind == "f"}
+    return pn.widgets.Tabulator(df, disabled=True, show_index=False, hidden_columns=list(hidden),
+                                frozen_columns=["species"] if "species" in df else [],
+                                formatters=floats, pagination="local" if len(df) > 12 else None,
+                                page_size=12, width=2 * SIDE_W, layout="fit_data_table")
+
+
+def _md(text) -> str:
+    """Text from a run (names, notes) shown as markdown: its markup characters taken literally."""
+    import re
+    return re.sub(r"([\\`*_{}\[\]<>#|~])", r"\\\1", str(text))
 
 
 def _imbalance_facts(imb, blocks, layout) -> str:
@@ -335,6 +460,28 @@ def snapshot_migration(ctx, a: int, b: int, species: str, progress=None):
     if progress:
         progress(3, 3)
     return moves, summary, disp, steps
+
+
+def pair_comparison(ref_ctx, cand_ctx, i: int, j: int, pair_by: str, progress=None):
+    """The comparison of reference snapshot ``i`` with candidate snapshot ``j``: what
+    ``swarmaudit compare`` tabulates for that pair (audit.compare.compare_runs, the pair alone)."""
+    from ..audit.compare import compare_runs
+    if progress:
+        progress(0, 1)
+    comp = compare_runs(ref_ctx, cand_ctx, pair=pair_by, only=[(i, j)])
+    if progress:
+        progress(1, 1)
+    return comp
+
+
+def comparison_rows(comp, species: str) -> dict[str, pd.DataFrame]:
+    """The ``compare_*`` tables of a comparison, the rows of ``species`` (every row for ``all``)."""
+    out = {}
+    for name, df in comp.tables().items():
+        if species != ALL_SPECIES and "species" in df:
+            df = df[df["species"].astype(str) == species]
+        out[name] = df.reset_index(drop=True)
+    return out
 
 
 def run_drift(ctx, progress=None):

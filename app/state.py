@@ -24,10 +24,11 @@ from urllib.parse import parse_qsl, urlencode
 
 import param
 
+from ..audit.compare import PAIR_BY
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import concat_frames
 from .view_policy import (BLOCK_MODE_LABELS, CMAPS, COLOR_BY, DEFAULT_CMAP, DEFAULT_SCALING,
-                          PANEL_ALIASES, PANELS, SCALINGS, default_axes, opening_range,
+                          PANEL_ALIASES, PANELS, SCALINGS, SHOW_LABELS, default_axes, opening_range,
                           range_problem, snapshot_label_of)
 
 ALL_SPECIES = "all"
@@ -38,6 +39,8 @@ BLOCK_MODES = tuple(BLOCK_MODE_LABELS)
 #: side panels, in the order of their tabs
 SIDE_PANELS = tuple(PANELS)
 SELECT_VIEWS = ("", "space", "phase")
+#: what the particle views show when a reference run is chosen
+SHOWS = tuple(SHOW_LABELS)
 #: longest value a link may carry for one key; longer ones are dropped unread (a number of
 #: thousands of digits would otherwise meet Python's limit on int parsing)
 MAX_QUERY_VALUE = 256
@@ -48,6 +51,7 @@ RANGE_AXES = {"space_xr": ("space", 0), "space_yr": ("space", 1),
 #: state parameter -> URL query key (short, stable: these are what links carry)
 URL_KEYS = {
     "run": "run",
+    "reference": "ref", "pair_by": "pair", "show": "show",
     "snapshot": "snap",
     "species": "sp",
     "space_x": "sx", "space_y": "sy",
@@ -66,7 +70,7 @@ URL_KEYS = {
 }
 
 # Order in which a query is applied: what decides the choices of later keys first.
-_APPLY_ORDER = ("run", "snapshot", "species", "space_x", "space_y", "phase_x", "phase_y",
+_APPLY_ORDER = ("run", "reference", "pair_by", "show", "snapshot", "species", "space_x", "space_y", "phase_x", "phase_y",
                 "space_xr", "space_yr", "phase_xr", "phase_yr", "color_by", "color_column",
                 "scaling", "cmap", "slab_axis", "slab_range", "blocks", "side", "compare_to",
                 "rtol", "hist_column", "select_view", "select_box")
@@ -384,6 +388,12 @@ class ViewState(param.Parameterized):
     """
 
     run = param.Selector(check_on_set=True, objects=[], doc="name of the run shown (one of the served runs)")
+    reference = param.Selector(check_on_set=True, default="", objects=[""],
+                               doc="served run the run in view is compared with ('': none)")
+    pair_by = param.Selector(check_on_set=True, default="step", objects=list(PAIR_BY),
+                             doc="how the reference's snapshots pair with the run's (audit.compare)")
+    show = param.Selector(check_on_set=True, default="candidate", objects=list(SHOWS),
+                          doc="the particle views draw the run in view, the reference, or their difference")
     snapshot = param.Integer(0, bounds=(0, 0), doc="position of the snapshot in the run")
     species = param.Selector(check_on_set=True, objects=[], doc="species shown, or 'all'")
     space_x = param.Selector(check_on_set=True, objects=[], doc="horizontal axis of the spatial view")
@@ -425,6 +435,7 @@ class ViewState(param.Parameterized):
         super().__init__()
         self.param.run.objects = names     # per instance: sessions of other servers differ
         run = params.pop("run", names[0])
+        self._reference_choices(run)
         self._adjusting = False
         if run == self.run:
             self._refresh_choices(reset_axes=True)
@@ -500,6 +511,7 @@ class ViewState(param.Parameterized):
     # choices that depend on the data ----------------------------------------------
     @param.depends("run", watch=True)
     def _on_run(self):
+        self._reference_choices(self.run)
         self._refresh_choices(reset_axes=True)
         self._seen_version = self.served.version
         self._remember_shown()
@@ -518,6 +530,18 @@ class ViewState(param.Parameterized):
     def _on_phase_axes(self):
         if not self._adjusting:
             self.param.update(phase_xr=None, phase_yr=None, **self._drop_selection("phase"))
+
+    def _reference_choices(self, run: str) -> None:
+        """A reference is any other served run (or none)."""
+        others = [""] + [n for n in self._runs.names if n != run]
+        self.param.reference.objects = others
+        if self.reference not in others:
+            self.reference = ""
+
+    @property
+    def reference_run(self) -> ServedRun | None:
+        """The served run the run in view is compared with, or None."""
+        return self._runs[self.reference] if self.reference else None
 
     def _drop_selection(self, view):
         return {"select_box": None, "select_view": ""} if self.select_view == view else {}

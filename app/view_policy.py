@@ -16,13 +16,16 @@ from __future__ import annotations
 
 import math
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+
+import numpy as np
 
 # ---------------------------------------------------------------------------------------------
 # names: one word per thing, shared by the dashboard, the tables and the report
 
 #: side panels, in tab order: value in a link -> tab title (the CSV and the report use the same words)
-PANELS = {"blocks": "Blocks", "migration": "Migration", "drift": "Drift", "histogram": "Histogram"}
+PANELS = {"blocks": "Blocks", "migration": "Migration", "drift": "Drift", "histogram": "Histogram",
+          "compare": "Compare"}
 #: tab values of links written before the tabs took the names of their tables
 PANEL_ALIASES = {"moves": "migration", "totals": "drift"}
 
@@ -45,11 +48,14 @@ LABELS = {
     "compare_to": "Compare with",
     "rtol": "Tolerance (relative)",
     "hist_column": "Column",
+    "reference": "Reference run",
+    "pair_by": "Pair snapshots by",
+    "show": "Show",
 }
 
 #: section headings of the controls
 SECTIONS = {"axes": "Axes", "colour": "Colour", "blocks": "Blocks on the space view",
-            "selection": "Selection"}
+            "selection": "Selection", "compare": "Compare with another run"}
 
 #: colouring (value in a link -> label on its button)
 COLOR_BY_LABELS = {"count": "count", "weight": "weight", "mean": "mean"}
@@ -58,6 +64,26 @@ SCALING_LABELS = {"eq_hist": "eq. hist", "log": "log", "linear": "linear"}
 #: how the block layout is drawn over the space view (value in a link -> label on its button)
 BLOCK_MODE_LABELS = {"off": "off", "outline": "outline", "tinted": "shade by count",
                      "labelled": "count labels"}
+
+#: run comparison: the run in view is the candidate, a second served run the reference (the words
+#: of ``swarmaudit compare``); what the particle views show (value in a link -> label on its button)
+SHOW_LABELS = {"candidate": "candidate", "reference": "reference", "difference": "difference"}
+#: the reference menu's entry for "no reference"
+NO_REFERENCE = "none"
+#: how snapshots pair (value in a link -> label on its button; audit.compare.PAIR_BY)
+PAIR_LABELS = {"step": "step", "time": "time"}
+#: headings of the Compare tab's tables (the compare_*.csv tables of the same names)
+COMPARE_TABLE_TITLES = {
+    "compare_particles.csv": "Particle by particle",
+    "compare_worst.csv": "The particles that differ most",
+    "compare_distributions.csv": "Distributions",
+    "compare_census.csv": "Block census, both runs in the reference's blocks",
+    "compare_totals.csv": "Totals",
+}
+#: decimals of a number in a dashboard table (scientific notation below 1e-3 and from 1e7)
+TABLE_DIGITS = 4
+#: what the difference view draws, for titles and colour bars
+DIFFERENCE_MEANS = "candidate − reference"
 
 #: words shown for the columns of migration_summary.csv (the label follows the column's name)
 SUMMARY_LABELS = {
@@ -79,9 +105,23 @@ MIGRATED_MEANS = "matched particles that are in another block than before"
 CMAPS = ("viridis", "magma", "cividis", "inferno", "fire", "kbc", "bmy", "gray")
 #: the colour map of every density view, census map and deposit unless one is chosen
 DEFAULT_CMAP = "viridis"
+#: the colour map of a difference of two runs (blue: fewer in the candidate, red: more), always on a
+#: linear scale centred on zero (difference_limits)
+DIFFERENCE_CMAP = "RdBu_r"
 COLOR_BY = ("count", "weight", "mean")
 SCALINGS = ("eq_hist", "log", "linear")
 DEFAULT_SCALING = "eq_hist"
+
+
+
+def difference_limits(diff) -> tuple[float, float]:
+    """Colour limits of a difference: centred on zero, holding every finite value (±1 when none)."""
+    a = np.abs(np.asarray(diff, dtype=np.float64))
+    a = a[np.isfinite(a)]
+    m = float(a.max()) if a.size else 0.0
+    m = m if m > 0 else 1.0
+    return -m, m
+
 
 # ---------------------------------------------------------------------------------------------
 # sizes and grids
@@ -298,6 +338,42 @@ class ParticleView:
         img = render.density_image(agg, cmap=self.cmap, scaling=self.scaling, title=self.title,
                                    xlabel=self.xlabel, ylabel=self.ylabel, clabel=self.clabel)
         return img.opts(aspect="equal" if self.equal else "auto", backend="matplotlib")
+
+    def difference(self, ref_agg, cand_agg):
+        """Candidate minus reference, pixel by pixel, of two aggregates of this view (one grid).
+
+        Counts and sums: an empty pixel counts zero, a pixel empty in both runs is left
+        out (NaN, drawn transparent). Means: NaN where either run has no particle.
+        """
+        a = np.asarray(ref_agg.values, dtype=np.float64)
+        b = np.asarray(cand_agg.values, dtype=np.float64)
+        if a.shape != b.shape:
+            raise ValueError(f"aggregates on different grids: {a.shape} and {b.shape}")
+        if self.reduction == "mean":
+            d = b - a
+        else:
+            a0, b0 = np.nan_to_num(a, nan=0.0), np.nan_to_num(b, nan=0.0)
+            d = np.where((a0 == 0) & (b0 == 0), np.nan, b0 - a0)
+        out = cand_agg.copy(data=d)
+        out.attrs = dict(cand_agg.attrs, reduction="difference",
+                         particles=cand_agg.attrs.get("particles", 0),
+                         ref_particles=ref_agg.attrs.get("particles", 0))
+        return out
+
+    def difference_image(self, diff):
+        """The picture of a difference: DIFFERENCE_CMAP, linear, limits symmetric about zero."""
+        from . import render
+        lo, hi = difference_limits(diff.values)
+        img = render.density_image(diff, cmap=DIFFERENCE_CMAP, scaling="linear",
+                                   title=f"{self.title} · {DIFFERENCE_MEANS}",
+                                   xlabel=self.xlabel, ylabel=self.ylabel,
+                                   clabel=f"{DIFFERENCE_MEANS}: {self.clabel}")
+        return img.opts(clim=(lo, hi), backend="bokeh").opts(
+            clim=(lo, hi), aspect="equal" if self.equal else "auto", backend="matplotlib")
+
+    def of_reference(self, title: str) -> "ParticleView":
+        """This view drawing the reference run (same ranges, grid and colours; its own title)."""
+        return replace(self, title=title)
 
 
 def state_axes(state, which: str) -> tuple[str, str]:

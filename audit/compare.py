@@ -22,7 +22,7 @@ step, or by time within a tolerance), species by name. For each pair:
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import pandas as pd
@@ -248,11 +248,23 @@ def _distribution_rows(ctx, fa, fb, stamp, species):
 
 
 def compare_runs(ref: AuditContext, cand: AuditContext, *, pair: str = "step", time_tol=None,
-                 mode: str = "auto", worst: int = _cmp.WORST) -> Comparison:
-    """Compare the candidate run with the reference run: every ``compare_*`` table."""
+                 mode: str = "auto", worst: int = _cmp.WORST, only=None) -> Comparison:
+    """Compare the candidate run with the reference run: every ``compare_*`` table.
+
+    ``only``: the (reference, candidate) snapshot pairs to compare, each one the pairing
+    makes (the dashboard's Compare tab asks for the pair in view); None: every pair.
+    """
     if mode not in MODES:
         raise OptionError(f"--mode takes one of {', '.join(MODES)}, got '{mode}'")
     pairing = pair_snapshots(ref, cand, pair, time_tol)
+    if only is not None:
+        wanted = [(int(i), int(j)) for i, j in only]
+        stray = [p for p in wanted if p not in pairing.pairs]
+        if stray:
+            i, j = stray[0]
+            raise OptionError(f"reference snapshot {i} and candidate snapshot {j} are not paired by "
+                              f"{pairing.by}")
+        pairing = replace(pairing, pairs=[p for p in pairing.pairs if p in wanted])
     notes: list[str] = []
 
     def note(text):
@@ -530,6 +542,12 @@ def summary_lines(comp: Comparison) -> list[str]:
         out.append(f"reference snapshots without a partner: {_list(pr.only_ref)}")
     if pr.only_cand:
         out.append(f"candidate snapshots without a partner: {_list(pr.only_cand)}")
+    return out + finding_lines(comp)
+
+
+def finding_lines(comp: Comparison) -> list[str]:
+    """The particle and distribution headlines, one line per species and kind."""
+    out = []
     p = comp.particles
     if len(p):
         for s, g in p.groupby("species", sort=False):

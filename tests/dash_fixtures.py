@@ -41,10 +41,12 @@ def two_beam_snapshot(i, n=4000, seed=0, nan=0, bad=False):
     return Snapshot(f"/runs/mem/step_{i:04d}.h5", species, step=10 * i, time=0.1 * i)
 
 
-def memory_context(nsnap=3, n=4000, nan_at=None, bad_at=None, name="mem"):
-    snaps = [two_beam_snapshot(i, n=n, nan=(7 if i == nan_at else 0), bad=(i == bad_at))
+def memory_context(nsnap=3, n=4000, nan_at=None, bad_at=None, name="mem", seed=0, first=0):
+    """A run of ``nsnap`` snapshots, the first at step ``10 * first``; ``seed`` draws other particles."""
+    snaps = [two_beam_snapshot(first + i, n=n, seed=seed, nan=(7 if i == nan_at else 0), bad=(i == bad_at))
              for i in range(nsnap)]
-    refs = [SnapshotRef(f"step_{i:04d}.h5", [f"/runs/{name}/step_{i:04d}.h5"]) for i in range(nsnap)]
+    refs = [SnapshotRef(f"step_{first + i:04d}.h5", [f"/runs/{name}/step_{first + i:04d}.h5"])
+            for i in range(nsnap)]
     run = Run(refs, lambda ref, rm: snaps[refs.index(ref)], source=f"/runs/{name}")
     layout = regular_layout([0, 4, 0, 2], [16, 8], [4, 2], periodic=("x", "y"), ranks=2)
     return AuditContext(run, layout)

@@ -243,6 +243,87 @@ def test_edited_link_values_never_break_the_page(server):
     assert not errors, errors
 
 
+@pytest.fixture(scope="module")
+def two_runs(tmp_path_factory):
+    """``serve REF CAND``: the same beams drawn twice from other seeds (ids match, positions differ)."""
+    root = tmp_path_factory.mktemp("e2e-compare")
+    ref, cand = write_run(str(root / "ref"), seed=3), write_run(str(root / "cand"), seed=5)
+    proc, url = start_server(["serve", ref, cand])
+    yield url, ref, cand
+    proc.terminate()
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+
+
+def _diverging_pixels(page):
+    """(reddish, bluish) pixels of the first plot canvas: a difference is drawn in both."""
+    from PIL import Image
+    img = np.asarray(Image.open(io.BytesIO(page.locator("canvas").first.screenshot())).convert("RGB"),
+                     dtype=np.int64)[40:]          # below the toolbar (its logo is orange)
+    r, g, b = img[..., 0], img[..., 1], img[..., 2]
+    # the two ends of the difference map; no viridis colour (the density views) is either
+    red = (r > 150) & (g < 110) & (b < 110)
+    blue = (b > 150) & (r < 110) & (g < 170) & (b > g + 30)
+    return int(np.count_nonzero(red)), int(np.count_nonzero(blue))
+
+
+def test_comparing_two_served_runs_in_chromium(two_runs):
+    """A link naming a reference opens the comparison; 'difference' redraws both views on a
+    diverging scale; the Compare tab shows the tables ``swarmaudit compare`` makes for the pair."""
+    sync_api = need("playwright.sync_api")
+    from swarmaudit.app.cli import build_parser
+    from swarmaudit.app.options import contexts_from_options
+    from swarmaudit.audit.compare import compare_runs
+    url, ref, cand = two_runs
+    ref_ctx, cand_ctx = contexts_from_options(build_parser().parse_args(["serve", ref, cand]))
+    worst = compare_runs(ref_ctx, cand_ctx, only=[(1, 1)]).worst
+    worst_id = str(worst[worst["species"] == "beam_right"]["id"].iloc[0])
+    errors = []
+    with sync_api.sync_playwright() as p:
+        browser = _browser_or_fail(p)
+        try:
+            page = new_page(browser, errors)
+            page.goto(url + "?run=cand&ref=ref&snap=1&sp=beam_right&tab=compare")
+            text = page_text(page)
+            assert "paired with ref #1" in text and "was left out" not in text
+            red, blue = _diverging_pixels(page)
+            assert red < 20 and blue < 20, ("the candidate's density looks like a difference", red, blue)
+            page.get_by_role("button", name="difference").first.click()
+            deadline = time.time() + 60
+            while time.time() < deadline:
+                text = page_text(page)
+                if text.count("candidate − reference:") >= 2:
+                    break
+                time.sleep(0.25)
+            assert text.count("candidate − reference:") >= 2, "the views did not switch to the difference"
+            assert "show=difference" in page.evaluate("window.location.href")
+            time.sleep(1.0)
+            red, blue = _diverging_pixels(page)
+            assert red > 200 and blue > 200, (red, blue)
+            # the Compare tab: the pair's tables, the worst particle's id among them
+            deadline = time.time() + 90
+            while time.time() < deadline and not ("compare_worst.csv" in text and worst_id in text):
+                time.sleep(0.5)
+                text = page_text(page)
+            assert "Particle by particle" in text and "compare_worst.csv" in text, text[-2000:]
+            assert worst_id in text and "max_position_cells" in text
+            # the link with the comparison reopens it in a fresh page
+            href = page.evaluate("window.location.href")
+            other = new_page(browser, errors)
+            other.goto(href)
+            deadline = time.time() + 60
+            text2 = page_text(other)
+            while text2.count("candidate − reference:") < 2 and time.time() < deadline:
+                time.sleep(0.25)
+                text2 = page_text(other)
+            assert text2.count("candidate − reference:") >= 2
+        finally:
+            browser.close()
+    assert not errors, errors
+
+
 def make_screenshot(path, demo_out):
     """The README picture: the two-stream demo mid-run, all species, blocks tinted by count."""
     from playwright.sync_api import sync_playwright

@@ -170,6 +170,21 @@ def test_pairing_by_time_with_tolerance():
         C.gate(C.compare_runs(ref, ref), ks_p=2)
 
 
+def test_one_pair_alone_gives_that_pairs_rows_of_the_whole_comparison():
+    ref = context(_snaps(steps=(0, 10, 20, 30)), LAY)
+    cand = context(_snaps(steps=(10, 20, 30), shift=0.01, seed=0), LAY)
+    whole = C.compare_runs(ref, cand, mode="both")
+    one = C.compare_runs(ref, cand, mode="both", only=[(2, 1)])
+    assert one.pairing.pairs == [(2, 1)]
+    for name, table in one.tables().items():
+        rows = whole.tables()[name]
+        rows = rows[(rows["ref_snapshot"] == 2) & (rows["cand_snapshot"] == 1)].reset_index(drop=True)
+        assert len(rows), name
+        pd.testing.assert_frame_equal(table.reset_index(drop=True), rows, check_dtype=False)
+    with pytest.raises(OptionError, match="not paired by step"):
+        C.compare_runs(ref, cand, only=[(1, 2)])
+
+
 # the command on the demo's own two-stream generator, small -------------------------------------
 def _two_stream(folder, **kw):
     from swarmaudit.demo_data.two_stream import write_two_stream

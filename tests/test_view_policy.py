@@ -161,3 +161,17 @@ def test_names_are_one_per_thing():
     assert set(cols) == set(policy.SUMMARY_LABELS)
     assert policy.SUMMARY_LABELS["migrated"] == "migrated"
     assert "per step" in policy.SUMMARY_LABELS["over_one_cell"]
+
+
+def test_the_comparison_speaks_the_compare_commands_words():
+    # the run in view is the candidate, the chosen run the reference, as in `swarmaudit compare`;
+    # each compare_*.csv table has its heading on the Compare tab, each pairing rule its button
+    from swarmaudit.app.state import SHOWS
+    from swarmaudit.audit.compare import PAIR_BY, TABLE_NAMES
+    assert set(policy.COMPARE_TABLE_TITLES) == set(TABLE_NAMES)
+    assert set(policy.PAIR_LABELS) == set(PAIR_BY)
+    assert SHOWS == ("candidate", "reference", "difference") == tuple(policy.SHOW_LABELS)
+    assert policy.PANELS["compare"] == "Compare"
+    assert policy.DIFFERENCE_MEANS == "candidate − reference"
+    from swarmaudit.app import compare_figures
+    assert compare_figures.DIFFERENCE_CMAP == policy.DIFFERENCE_CMAP       # one map, screen and files

@@ -365,7 +365,7 @@ class ParticleView:
         from . import render
         lo, hi = difference_limits(diff.values)
         img = render.density_image(diff, cmap=DIFFERENCE_CMAP, scaling="linear",
-                                   title=f"{self.title} · {DIFFERENCE_MEANS}",
+                                   title=f"{self.title} · {SHOW_LABELS['difference']}",
                                    xlabel=self.xlabel, ylabel=self.ylabel,
                                    clabel=f"{DIFFERENCE_MEANS}: {self.clabel}")
         return img.opts(clim=(lo, hi), backend="bokeh").opts(

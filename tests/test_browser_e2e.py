@@ -4,8 +4,9 @@ Needs python Playwright and Chromium at /usr/bin/chromium. Without them the
 test is skipped on a workstation but FAILS under CI (``CI`` set), so a CI
 machine that lost its browser cannot pass silently.
 
-Run by hand to refresh the README screenshot from the demo run:
+Run by hand to refresh the README screenshots from the demo runs:
     python tests/test_browser_e2e.py --screenshot docs/dashboard.png --demo DEMO_OUT
+    python tests/test_browser_e2e.py --compare --screenshot docs/dashboard_compare.png --demo DEMO_OUT
 """
 
 from __future__ import annotations
@@ -324,22 +325,32 @@ def test_comparing_two_served_runs_in_chromium(two_runs):
     assert not errors, errors
 
 
-def make_screenshot(path, demo_out):
-    """The README picture: the two-stream demo mid-run, all species, blocks tinted by count."""
+def make_screenshot(path, demo_out, compare=False):
+    """The README pictures: the two-stream demo mid-run, all species, blocks outlined; with
+    ``compare``, the changed-time-step variant against it (difference, Compare tab)."""
     from playwright.sync_api import sync_playwright
-    if not os.path.isdir(os.path.join(demo_out, "two_stream")):
+    if not os.path.isdir(os.path.join(demo_out, "two_stream_dt")):
         subprocess.run([sys.executable, "-m", "swarmaudit", "demo", "--out", demo_out, "--no-serve"],
                        check=True)
-    proc, url = start_server(["serve", os.path.join(demo_out, "two_stream")])
+    runs = ["two_stream", "two_stream_dt"] if compare else ["two_stream"]
+    query = ("?run=two_stream_dt&ref=two_stream&pair=time&show=difference&snap=5&tab=compare"
+             if compare else "?snap=24&sp=all&blocks=outline&tab=migration")
+    proc, url = start_server(["serve", *(os.path.join(demo_out, r) for r in runs)])
     try:
         with sync_playwright() as p:
             browser = p.chromium.launch(executable_path=CHROMIUM, args=CHROMIUM_ARGS)
             page = browser.new_page(viewport={"width": 1560, "height": 1180})
-            page.goto(url + "?snap=24&sp=all&blocks=outline&tab=migration")
+            page.goto(url + query)
             wait_drawn(page)
+            deadline = time.time() + 300
+            while compare and "compare_worst.csv" not in page_text(page) and time.time() < deadline:
+                time.sleep(1)
             time.sleep(4)
             os.makedirs(os.path.dirname(os.path.abspath(path)), exist_ok=True)
-            page.screenshot(path=path, full_page=True)
+            if compare:     # the views and the first tables of the Compare tab
+                page.screenshot(path=path, clip={"x": 0, "y": 0, "width": 1560, "height": 1180})
+            else:
+                page.screenshot(path=path, full_page=True)
             browser.close()
     finally:
         proc.terminate()
@@ -351,5 +362,7 @@ if __name__ == "__main__":
     ap = argparse.ArgumentParser()
     ap.add_argument("--screenshot", default="docs/dashboard.png")
     ap.add_argument("--demo", default="swarmaudit-demo")
+    ap.add_argument("--compare", action="store_true",
+                    help="the comparison picture (docs/dashboard_compare.png)")
     a = ap.parse_args()
-    make_screenshot(a.screenshot, a.demo)
+    make_screenshot(a.screenshot, a.demo, compare=a.compare)

@@ -310,11 +310,11 @@ class SidePanels(param.Parameterized):
             f"Reference **{_md(s.reference)}** {_md(ref.describe(i))} against candidate "
             f"**{_md(s.run)}** {_md(cand.describe(j))}, paired by {s.pair_by}; "
             f"species {_md(s.species)}.", styles={"font-size": "13px"})
-        key = ("compare", _served_key(ref), _served_key(cand), s.pair_by, i, j)
-        species = s.species
+        by, species = s.pair_by, s.species
+        key = ("compare", _served_key(ref), _served_key(cand), by, i, j)
 
         def work(progress=None):
-            return pair_comparison(ref.ctx, cand.ctx, i, j, s.pair_by, progress=progress)
+            return pair_comparison(ref.ctx, cand.ctx, i, j, by, progress=progress)
         self._start(self._compare, "compare", key, work, lambda comp: self._show_comparison(comp, species),
                     label=f"Comparing reference snapshot {i} with snapshot {j}…")
         return head

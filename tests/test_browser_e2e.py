@@ -111,6 +111,14 @@ def start_server(args):
     raise AssertionError("server did not start:\n" + "".join(out))
 
 
+def stop_server(proc):
+    proc.terminate()
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+
+
 def wait_drawn(page, timeout=60):
     """Until both particle views report their binning (the images are on the page)."""
     deadline = time.time() + timeout
@@ -147,11 +155,7 @@ def server(tmp_path_factory):
     run = write_run(str(tmp_path_factory.mktemp("e2e") / "beams"))
     proc, url = start_server(["serve", run])
     yield url
-    proc.terminate()
-    try:
-        proc.wait(timeout=10)
-    except subprocess.TimeoutExpired:
-        proc.kill()
+    stop_server(proc)
 
 
 def test_dashboard_in_chromium(server):
@@ -251,11 +255,7 @@ def two_runs(tmp_path_factory):
     ref, cand = write_run(str(root / "ref"), seed=3), write_run(str(root / "cand"), seed=5)
     proc, url = start_server(["serve", ref, cand])
     yield url, ref, cand
-    proc.terminate()
-    try:
-        proc.wait(timeout=10)
-    except subprocess.TimeoutExpired:
-        proc.kill()
+    stop_server(proc)
 
 
 def _diverging_pixels(page):

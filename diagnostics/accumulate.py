@@ -33,6 +33,11 @@ Rules an accumulator keeps:
 * ``merge(a, b)`` treats ``a`` as the earlier rows. Integer counts must not
   depend on how rows were cut; float sums are compensated where it matters
   (see ``drift.Totals``) so that a different cut changes them only by rounding.
+* An accumulator whose state is large (an image, a mesh) sets ``task_pieces``:
+  the engine folds up to that many consecutive pieces into one state before
+  merging (the default, ``engine.reduce.PIECES_PER_TASK``, suits small
+  states). Starting and merging a state of a million pixels costs about as
+  much as binning a million rows.
 * An accumulator and its state are plain data (numpy arrays, numbers,
   dicts): they travel to dask workers by pickling.
 """
@@ -119,6 +124,8 @@ class Accumulator:
     #: True when ``add`` keeps none of a piece's arrays: the engine may then hand it rows in
     #: reused buffers
     reads_once: bool = False
+    #: pieces folded into one state before states are merged (None: the engine's default)
+    task_pieces: int | None = None
 
     @property
     def frame_columns(self) -> tuple[tuple[str, ...], ...]:

@@ -9,14 +9,15 @@ Every engine does the same three things and nothing else:
 
 1. cut each frame into pieces (:func:`engine.pieces.frame_pieces`, at most
    ``PIECE_ROWS`` rows, never across per-rank parts) and group consecutive
-   pieces of one part into *tasks* of at most ``PIECES_PER_TASK`` pieces;
+   pieces of one part into *tasks* of at most ``PIECES_PER_TASK`` pieces
+   (``acc.task_pieces`` for an accumulator whose state is large);
 2. run each task where the engine runs things: ``state = acc.start()``, then
    ``acc.add(state, piece)`` for its pieces in row order;
 3. merge the task states with ``acc.merge`` in row order (frame by frame)
    and ``acc.finish`` the result.
 
-The cut into pieces and tasks depends only on the frames, never on the
-engine or the number of workers, so the serial, threaded and dask runs of
+The cut into pieces and tasks depends only on the frames and the
+accumulator, never on the engine or the number of workers, so the serial, threaded and dask runs of
 one accumulator on the same frames give the same result, bit for bit.
 
 Where (``where=``, else from the context): ``"serial"`` (this thread),
@@ -54,13 +55,17 @@ class Task:
     pieces: list
 
 
-def tasks_of(frames, columns, job: int = 0) -> list[Task]:
-    """The tasks covering every row of ``frames`` (input order), ``columns[k]`` read of frame k."""
+def tasks_of(frames, columns, job: int = 0, per_task: int | None = None) -> list[Task]:
+    """The tasks covering every row of ``frames`` (input order), ``columns[k]`` read of frame k.
+
+    ``per_task``: pieces of one task at most (default ``PIECES_PER_TASK``).
+    """
+    per_task = max(1, int(per_task or PIECES_PER_TASK))
     out = []
     for k, frame in enumerate(frames):
         run: list[Piece] = []
         for p in frame_pieces(frame, columns[k] if k < len(columns) else None):
-            if run and (run[-1].part != p.part or len(run) == PIECES_PER_TASK):
+            if run and (run[-1].part != p.part or len(run) == per_task):
                 out.append(Task(job, k, run))
                 run = []
             run.append(p)
@@ -120,7 +125,7 @@ def reduce_many(jobs, ctx=None, *, where: str | None = None) -> list:
     jobs = [(acc, _as_frames(frames)) for acc, frames in jobs]
     tasks: list[Task] = []
     for j, (acc, frames) in enumerate(jobs):
-        tasks += tasks_of(frames, acc.frame_columns, j)
+        tasks += tasks_of(frames, acc.frame_columns, j, getattr(acc, "task_pieces", None))
     place = where or choose(ctx, jobs)
     if place not in PLACES:
         raise ValueError(f"where takes one of {', '.join(PLACES)}, got '{place}'")

@@ -655,7 +655,8 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
 # per-snapshot pieces the figures need (compositions of core.audit and diagnostics) ----------
 def snapshot_deposit(ctx, i: int, species) -> np.ndarray:
     """Cloud-in-cell deposit of weight of every species on the level-0 cells, indexed [ix, iy(, iz)]."""
-    from ..diagnostics.deposit import deposit
+    from ..diagnostics.deposit import Deposit
+    from ..engine.reduce import reduce
     snap = ctx.run[i]
     layout = ctx.layout(i)
     total = np.zeros(tuple(int(c) for c in layout.cells))
@@ -664,7 +665,7 @@ def snapshot_deposit(ctx, i: int, species) -> np.ndarray:
         if f is None or f.ndim != layout.ndim or not f.length:
             continue
         with transient_columns([f]):
-            total += deposit(f.positions(), f.per_particle("weight", 1.0), layout, order="cic")
+            total += reduce(Deposit.of_frame(f, layout, order="cic"), f, ctx)
     return total
 
 

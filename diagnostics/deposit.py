@@ -7,6 +7,10 @@ particle outside the domain is clamped onto the edge), so the deposited total
 always equals the sum of the values; ``outside="drop"`` leaves those parts
 out instead. Particles with a non-finite position or value are never
 deposited.
+
+:class:`Deposit` is the one definition: an accumulator (see :mod:`.accumulate`)
+whose state is the flat mesh; a piece's particles are spread onto it and the
+meshes of two row ranges add. :func:`deposit` runs it on whole arrays.
 """
 
 from __future__ import annotations
@@ -16,6 +20,7 @@ import itertools
 import numpy as np
 
 from ..core.layout import BlockLayout, _as_columns
+from .accumulate import Accumulator, one_piece
 
 ORDERS = {"ngp": 0, "cic": 1, "tsc": 2}
 
@@ -58,28 +63,99 @@ def shape_weights(frac, order):
     return np.broadcast_to(np.asarray(shift, dtype=np.int64), f.shape).copy(), np.stack(w, axis=-1)
 
 
+class Deposit(Accumulator):
+    """Sum of a value spread over the layout's level-0 cells with an NGP, CIC or TSC shape.
+
+    ``positions`` names the position columns (one per layout axis); ``value``
+    is a column name, one number for every particle, or None (1).
+    ``periodic`` overrides the layout's periodic axes; ``outside`` is
+    ``clamp`` or ``drop`` (see the module). ``finish`` gives the mesh, shape
+    ``tuple(layout.cells)`` indexed ``[ix, iy, iz]`` like ``numpy.histogramdd``.
+    """
+
+    reads_once = True
+
+    def __init__(self, layout: BlockLayout, positions, value=None, *, order="cic", periodic=None,
+                 outside: str = "clamp"):
+        if outside not in ("clamp", "drop"):
+            raise ValueError("outside must be 'clamp' or 'drop'")
+        self.layout = layout
+        self.positions = tuple(positions)
+        d = layout.ndim
+        if len(self.positions) != d:
+            raise ValueError(f"{len(self.positions)} position axes for a {d}-D layout")
+        self.order = _order(order)
+        self.periodic = (tuple(layout.periodic) if periodic is None
+                         else tuple(bool(x) for x in periodic) + (False,) * d)[:d]
+        self.outside = outside
+        if value is None or isinstance(value, str):
+            self.value, self.scale = value, 1.0
+        else:
+            self.value, self.scale = None, float(value)
+        self.columns = tuple(dict.fromkeys(self.positions + ((self.value,) if self.value else ())))
+
+    @classmethod
+    def of_frame(cls, frame, layout: BlockLayout, order="cic"):
+        """The deposit of a frame's weight (its weight role, else the species attribute, else 1)."""
+        weight = frame.column_for("weight")
+        if weight is None:
+            weight = frame.per_particle("weight", 1.0)
+        return cls(layout, frame.position_names, weight, order=order)
+
+    def start(self):
+        return np.zeros(int(np.prod([int(c) for c in self.layout.cells])), dtype=np.float64)
+
+    def add(self, state, piece):
+        if len(piece):
+            values = piece[self.value] if self.value else None
+            _spread(state, [piece[c] for c in self.positions], values, self.layout, self.order,
+                    self.periodic, self.outside)
+        return state
+
+    def merge(self, a, b):
+        a += b
+        return a
+
+    def finish(self, state):
+        # a common value multiplies the mesh once, at the end
+        grid = state * self.scale if self.scale != 1.0 else state
+        return grid.reshape([int(c) for c in self.layout.cells])
+
+
 def deposit(positions, values, layout: BlockLayout, order="cic", periodic=None, outside: str = "clamp") -> np.ndarray:
     """Sum of ``values`` spread over the layout's level-0 cells with the given shape.
 
     Returns an array of shape ``tuple(layout.cells)`` indexed ``[ix, iy, iz]``
     (like ``numpy.histogramdd``). ``values`` is a per-particle array or a
-    scalar; ``periodic`` overrides the layout's periodic axes.
+    scalar; ``periodic`` overrides the layout's periodic axes. :class:`Deposit`
+    run on the arrays as one piece.
     """
-    if outside not in ("clamp", "drop"):
-        raise ValueError("outside must be 'clamp' or 'drop'")
-    p = _order(order)
     cols = _as_columns(positions)
     d = layout.ndim
     if len(cols) != d:
         raise ValueError(f"{len(cols)} position axes for a {d}-D layout")
-    per = layout.periodic if periodic is None else tuple(bool(x) for x in periodic) + (False,) * d
+    n = cols[0].shape[0] if cols else 0
+    arrays = {f"_p{a}": np.asarray(c) for a, c in enumerate(cols)}
+    v = np.asarray(values, dtype=np.float64)
+    if v.ndim == 0:
+        value = float(v)
+    else:
+        if v.shape != (n,):
+            raise ValueError(f"values have shape {v.shape}, expected ({n},)")
+        arrays["_v"] = v
+        value = "_v"
+    acc = Deposit(layout, list(arrays)[:d], value, order=order, periodic=periodic, outside=outside)
+    return one_piece(acc, arrays)
+
+
+def _spread(grid, cols, v, layout: BlockLayout, p: int, per, outside: str) -> None:
+    """Add the stencils of one piece's particles (value ``v`` each, or 1 when None) to ``grid``."""
+    d = layout.ndim
     cells = [int(c) for c in layout.cells]
     n = cols[0].shape[0] if cols else 0
-    v = np.asarray(values, dtype=np.float64)
-    scalar = float(v) if v.ndim == 0 else None   # a common value multiplies the grid once, at the end
-    if scalar is None and v.shape != (n,):
-        raise ValueError(f"values have shape {v.shape}, expected ({n},)")
-    good = np.isfinite(v) if scalar is None else np.ones(n, dtype=bool)
+    if v is not None:
+        v = np.asarray(v, dtype=np.float64)
+    good = np.isfinite(v) if v is not None else np.ones(n, dtype=bool)
     k = p + 1
     strides = np.cumprod([1] + cells[::-1][:-1])[::-1]   # C order [ix, iy, iz]: z fastest
     # per axis and stencil point: the (wrapped or clamped) cell times its stride, and the weight;
@@ -120,14 +196,10 @@ def deposit(positions, values, layout: BlockLayout, order="cic", periodic=None, 
         offsets.append(off_a)
         weights.append(w_a)
         keeps.append(keep_a)
-    if scalar is None:
+    if v is not None:
         v = np.where(good, v, 0.0) if not good.all() else v
     elif not good.all():
         v = good.astype(np.float64)   # non-finite positions: weight 0
-    else:
-        v = None
-    flat_size = int(np.prod(cells))
-    grid = np.zeros(flat_size, dtype=np.float64)
     flat = np.empty(n, dtype=np.int64) if d > 1 else None
     wt = np.empty(n, dtype=np.float64)
     # a loop over the K**d stencil points, each one vectorised over all particles
@@ -150,7 +222,6 @@ def deposit(positions, values, layout: BlockLayout, order="cic", periodic=None, 
                 keep = keeps[a][combo[a]] if keep is None else keep & keeps[a][combo[a]]
         if keep is not None:
             wt[~keep] = 0.0
-        grid += np.bincount(index, weights=wt, minlength=flat_size)
-    if scalar is not None:
-        grid *= scalar
-    return grid.reshape(cells)
+        # added in place, in particle order: no mesh-sized temporary per piece (a bincount's
+        # would cost more than the piece when the mesh is large), and faster than one anyway
+        np.add.at(grid, index, wt)

@@ -1,10 +1,11 @@
 """The one aggregation path shared by the dashboard and the headless export.
 
 Aggregate, then shade: :func:`aggregate_points` bins particles onto a pixel
-grid with datashader (count, summed value, or mean of a column);
-:func:`density_image` turns that grid into a holoviews element that the
-bokeh dashboard and the matplotlib export draw the same way. A figure in a
-report is therefore the figure on the screen.
+grid (count, summed value, or mean of a column) with the image accumulator
+:class:`diagnostics.image.Image`, run by the one runner
+(:func:`engine.reduce.reduce`); :func:`density_image` turns that grid into a
+holoviews element that the bokeh dashboard and the matplotlib export draw the
+same way. A figure in a report is therefore the figure on the screen.
 """
 
 from __future__ import annotations
@@ -16,13 +17,12 @@ import numpy as np
 import pandas as pd
 import xarray as xr
 
-import datashader as ds
-
-from ..engine import dask_backend
-from ..diagnostics._colstats import finite_stats
 from ..core.errors import OptionError
+from ..diagnostics.image import REDUCTIONS, ColumnRanges, Image
+from ..engine import dask_backend
+from ..engine.pieces import column_dtype
+from ..engine.reduce import reduce
 
-REDUCTIONS = ("count", "sum", "mean")
 SCALINGS = ("linear", "log", "eq_hist")
 
 _BACKENDS = ("bokeh", "matplotlib")
@@ -40,34 +40,54 @@ def _ensure_backends():
 
 
 # ---------------------------------------------------------------------------
-# per-frame caches (ranges, non-finite counts): a frame dies, its entries go
+# per-frame caches (data ranges): a frame dies, its entries go
 _cache_lock = threading.Lock()
 _frame_cache: "weakref.WeakKeyDictionary[object, dict]" = weakref.WeakKeyDictionary()
 
 
-def _cached(frame, key, compute):
+def _lookup(frame, key):
     try:
         with _cache_lock:
-            store = _frame_cache.setdefault(frame, {})
-            if key in store:
-                return store[key]
-    except TypeError:          # not weak-referenceable: compute every time
-        return compute()
-    value = compute()
-    with _cache_lock:
-        store[key] = value
-    return value
+            return _frame_cache.get(frame, {}).get(key)
+    except TypeError:          # not weak-referenceable: nothing is kept
+        return None
+
+
+def _keep(frame, key, value) -> None:
+    try:
+        with _cache_lock:
+            _frame_cache.setdefault(frame, {})[key] = value
+    except TypeError:
+        pass
 
 
 def _column(frame, col: str) -> np.ndarray:
-    """A numeric column, kept in its own dtype (float32 stays float32)."""
+    """A numeric column, read whole and kept on the frame, in its own dtype (float32 stays float32)."""
     arr = frame[col]
     if arr.dtype.kind not in "fiub":
         raise OptionError(f"column '{col}' of species '{getattr(frame, 'species', '?')}' is not "
                           f"numeric and cannot be drawn")
-    if arr.dtype.kind == "b":
-        return arr.astype(np.uint8)
     return arr
+
+
+def _where(frame, cols) -> str:
+    """Where a drawing reduction over ``cols`` runs (:func:`engine.reduce.reduce`'s ``where``).
+
+    A frame the partitioned engine takes (too big for memory, or ``--engine
+    dask``) is read piece by piece on dask; any other has its columns read
+    whole once and kept on the frame, so a re-render (a zoom, a pan) reads
+    nothing again, and its pieces run on the piece pool.
+    """
+    cols = [c for c in cols if c]
+    if dask_backend.partitioned(frame, cols):
+        for c in cols:
+            dt = column_dtype(frame, c)
+            if dt is not None and np.dtype(dt).kind not in "fiub":
+                _column(frame, c)          # the one error naming the column
+        return "dask"
+    for c in cols:
+        _column(frame, c)
+    return "threads"
 
 
 def data_range(frame, col: str) -> tuple[float, float]:
@@ -75,17 +95,21 @@ def data_range(frame, col: str) -> tuple[float, float]:
 
     Cached per frame and column, so moving between views costs one pass.
     """
-    def compute():
-        if dask_backend.partitioned(frame, [col]):
-            return dask_backend.column_range(frame, col)
-        lo, hi, _ = _stats(frame, col)
-        return (0.0, 1.0) if lo is None else (lo, hi)
-    return _cached(frame, ("range", col), compute)
+    return data_ranges(frame, [col])[col]
 
 
-def _stats(frame, col: str):
-    """(finite min, finite max, non-finite count) of a column: one pass, cached per frame."""
-    return _cached(frame, ("stats", col), lambda: finite_stats(_column(frame, col)))
+def data_ranges(frame, cols) -> dict:
+    """:func:`data_range` of several columns: those not cached yet in one pass over the frame."""
+    out = {c: _lookup(frame, ("range", c)) for c in dict.fromkeys(cols)}
+    missing = [c for c, r in out.items() if r is None]
+    if missing:
+        got = reduce(ColumnRanges(missing), frame, dask_backend.drawing_context(),
+                     where=_where(frame, missing))
+        for c in missing:
+            lo, hi, _ = got[c]
+            out[c] = (0.0, 1.0) if lo is None else (lo, hi)
+            _keep(frame, ("range", c), out[c])
+    return out
 
 
 def padded_range(lo: float, hi: float, margin: float = 0.0) -> tuple[float, float]:
@@ -101,21 +125,6 @@ def padded_range(lo: float, hi: float, margin: float = 0.0) -> tuple[float, floa
     return (lo - pad, hi + pad)
 
 
-def _nonfinite(frame, cols) -> np.ndarray | None:
-    """Boolean mask of rows with a non-finite value in ``cols`` (None when there are none)."""
-    def compute():
-        bad = None
-        for c in cols:
-            arr = _column(frame, c)
-            if arr.dtype.kind != "f" or not _stats(frame, c)[2]:
-                continue   # the one-pass count says there is nothing to mask
-            b = ~np.isfinite(arr)
-            if b.any():
-                bad = b if bad is None else (bad | b)
-        return bad
-    return _cached(frame, ("nonfinite", tuple(cols)), compute)
-
-
 def axis_label(frame, col: str) -> str:
     """Column name with its unit, as written in the file: ``x [m]``."""
     unit = ""
@@ -125,14 +134,11 @@ def axis_label(frame, col: str) -> str:
     return f"{col} [{unit}]" if unit else col
 
 
-def _reduction(reduction: str, value: str | None):
-    if reduction == "count":
-        return ds.count()
+def _check_reduction(reduction: str, value: str | None) -> None:
     if reduction not in REDUCTIONS:
         raise OptionError(f"colour-by takes one of {', '.join(REDUCTIONS)}, got '{reduction}'")
-    if not value:
+    if reduction != "count" and not value:
         raise OptionError(f"colour-by '{reduction}' needs a column to {reduction}")
-    return ds.sum("_v") if reduction == "sum" else ds.mean("_v")
 
 
 def aggregate_points(frame, xcol: str, ycol: str, *, width: int = 800, height: int = 600,
@@ -144,68 +150,28 @@ def aggregate_points(frame, xcol: str, ycol: str, *, width: int = 800, height: i
     ``value``, e.g. weight) or ``mean`` (of any column). ``mask`` is a boolean
     array keeping a subset (a selection); ``slab=(col, lo, hi)`` keeps
     ``lo <= col < hi``. Rows with a non-finite coordinate are dropped; how
-    many is in ``agg.attrs["nonfinite"]``. Bins follow datashader: the range
-    is closed, the top edge falls in the last bin (as numpy.histogram2d).
+    many is in ``agg.attrs["nonfinite"]``. Bins follow
+    :class:`diagnostics.image.Image` (datashader's rule): the range is
+    closed, the top edge falls in the last bin (as numpy.histogram2d).
     """
     width, height = int(width), int(height)
     if width < 1 or height < 1:
         raise OptionError("an image needs at least one pixel each way")
-    needed = [xcol, ycol, value if reduction != "count" else None, slab[0] if slab else None]
-    if mask is None and dask_backend.partitioned(frame, needed):
-        # too big for memory (or --engine dask): datashader over a dask frame, piece by piece
-        agg = dask_backend.aggregate_dask(frame, xcol, ycol, width=width, height=height,
-                                          x_range=x_range, y_range=y_range, reduction=reduction,
-                                          value=value, slab=slab, engine=dask_backend.drawing_engine())
-        return _labelled(agg, frame, xcol, ycol, reduction, value)
-    x = _column(frame, xcol)
-    y = _column(frame, ycol)
-    v = _column(frame, value) if (reduction != "count" and value) else None
-    agg_fn = _reduction(reduction, value)
-
-    keep = None
+    _check_reduction(reduction, value)
+    value = value if reduction != "count" else None
+    where = _where(frame, [xcol, ycol, value, slab[0] if slab else None])
     if mask is not None:
-        keep = np.asarray(mask, dtype=bool)
-        if keep.shape != x.shape:
-            raise OptionError(f"selection mask has {keep.size} entries for {x.size} particles")
-    if slab is not None:
-        scol, slo, shi = slab
-        s = _column(frame, scol)
-        with np.errstate(invalid="ignore"):
-            inside = (s >= slo) & (s < shi)
-        keep = inside if keep is None else (keep & inside)
-
-    bad = _nonfinite(frame, (xcol, ycol))
-    if bad is None:
-        nonfinite = 0
-    elif keep is None:
-        nonfinite = int(np.count_nonzero(bad))
-    else:
-        nonfinite = int(np.count_nonzero(bad & keep))
-
-    if keep is not None:
-        x, y = x[keep], y[keep]
-        v = v[keep] if v is not None else None
-    cols = {"_x": x, "_y": y}
-    if v is not None:
-        cols["_v"] = v
-    # copy=False keeps each column its own block: no copy of the particle arrays
-    df = pd.DataFrame(cols, copy=False)
-
-    if x_range is None:
-        x_range = data_range(frame, xcol)
-    if y_range is None:
-        y_range = data_range(frame, ycol)
-    x_range = padded_range(*x_range)
-    y_range = padded_range(*y_range)
-    cv = ds.Canvas(plot_width=width, plot_height=height, x_range=x_range, y_range=y_range)
-    agg = cv.points(df, "_x", "_y", agg=agg_fn)
-    agg = agg.rename({"_x": xcol, "_y": ycol}) if xcol != ycol else agg
-    agg.attrs.update({
-        "nonfinite": nonfinite,
-        "particles": int(x.size) - nonfinite,
-        "x_range": tuple(x_range),
-        "y_range": tuple(y_range),
-    })
+        mask = np.asarray(mask, dtype=bool)
+        if mask.shape != (len(frame),):
+            raise OptionError(f"selection mask has {mask.size} entries for {len(frame)} particles")
+        where = "threads"          # the selection is an array of this process
+    wanted = [c for c, r in ((xcol, x_range), (ycol, y_range)) if r is None]
+    ranges = data_ranges(frame, wanted) if wanted else {}
+    x_range = padded_range(*(x_range if x_range is not None else ranges[xcol]))
+    y_range = padded_range(*(y_range if y_range is not None else ranges[ycol]))
+    acc = Image(xcol, ycol, width=width, height=height, x_range=x_range, y_range=y_range,
+                reduction=reduction, value=value, slab=slab, mask=mask)
+    agg = reduce(acc, frame, dask_backend.drawing_context(), where=where)
     return _labelled(agg, frame, xcol, ycol, reduction, value)
 
 

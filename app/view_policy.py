@@ -325,7 +325,7 @@ class ParticleView:
     notes: tuple[str, ...] = field(default=())
 
     def aggregate(self, frame, mask=None):
-        """The aggregate behind the picture (datashader through render.aggregate_points)."""
+        """The aggregate behind the picture (the image accumulator, through render.aggregate_points)."""
         from . import render
         return render.aggregate_points(frame, self.xcol, self.ycol, width=self.grid[0],
                                        height=self.grid[1], x_range=self.x_range,

@@ -22,7 +22,7 @@ import threading
 #: below this many particles the numpy path is fast enough and avoids a compile
 MIN_PARTICLES = 200_000
 
-# numba comes with datashader; still, never require it, and import it only when
+# numba is declared; still, never require it, and import it only when
 # a large input needs it (it adds half a second to every command's start)
 available = importlib.util.find_spec("numba") is not None
 _kernels: dict = {}

@@ -1,6 +1,6 @@
 """Compiled loops for the migration and drift diagnostics, where numpy would need several passes.
 
-Optional: numba comes with datashader; when it is missing, or an input is
+Optional: numba is declared, but when it is missing, or an input is
 small, callers use their numpy path (same answers; tests compare both).
 Kernels compile on first use and numba caches them on disk.
 

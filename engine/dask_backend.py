@@ -1,10 +1,10 @@
-"""The partitioned engine: dask frames, a scheduler, and per-piece reductions.
+"""The partitioned engine: which engine, the scheduler it runs on, and dask frames.
 
-A frame is read piece by piece (:mod:`core.partitions`): one piece per
-per-rank file, and row ranges of a huge file. Images go through datashader,
-which aggregates a dask frame natively. Census, totals and migration reduce
-each piece to a few small arrays and combine those; the combined answer is the
-one the in-memory diagnostics give for the whole frame (tests compare them).
+A frame is read piece by piece (:mod:`engine.pieces`): one piece per
+per-rank file, and row ranges of a huge file. Every reduction, images
+included, is an accumulator that :func:`engine.reduce.reduce` runs on these
+pieces; this module decides whether a frame goes that way (:func:`use_dask`,
+:func:`partitioned` for the drawing code) and on what (:func:`client_for`).
 
 Which engine: ``--engine memory`` or ``dask``, or ``auto`` (default), which
 goes partitioned when a scheduler address is given or when the columns a
@@ -14,9 +14,10 @@ fit in half of the memory available now (psutil).
 Where: ``--scheduler ADDRESS`` connects to a running dask.distributed
 scheduler (the workers must see the same files at the same paths). Without
 one a local pool runs in this process: threads by default, since the
-compiled kernels (datashader's, block assignment) release the GIL and
+compiled kernels (binning, block assignment, the totals) release the GIL and
 threads need no copies between processes; ``SWARMAUDIT_DASK_LOCAL=processes``
 starts a LocalCluster of one single-threaded worker process per core.
+:func:`frame_to_dask` gives a frame as a dask DataFrame (the notebook API).
 """
 
 from __future__ import annotations
@@ -25,19 +26,14 @@ import atexit
 import os
 import threading
 import time
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 
-from ..core import interrupt
 from ..core.errors import OptionError
-from ..diagnostics._colstats import finite_stats
 from ..core.frame import Frame
-from ..core.layout import BlockLayout, assign_blocks
-from .pieces import (Piece, piece_pool, column_bytes, column_dtype, frame_pieces,
-                     frame_template, piece_frame, read_column)
+from .pieces import Piece, column_bytes, column_dtype, frame_pieces, read_column
 
 ENGINES = ("auto", "memory", "dask")
 
@@ -92,42 +88,8 @@ class DaskEngine:
     client: object | None = None
     address: str | None = None
 
-    @property
-    def scheduler(self):
-        """What ``dask.compute(scheduler=...)`` and ``dask.config.set(scheduler=...)`` take."""
-        return self.client if self.client is not None else "threads"
-
-    def active(self):
-        """Context in which dask collections (and datashader) compute on this engine."""
-        import dask
-        cfg = {"scheduler": self.scheduler}
-        if self.client is None:
-            cfg["num_workers"] = self.workers
-        return dask.config.set(cfg)
-
-    def map(self, fn, items, *args):
-        """``[fn(item, *args) for item in items]`` in parallel; results should be small."""
-        items = list(items)
-        if not items:
-            return []
-        if self.client is not None:
-            futures = self.client.map(fn, items, *[[a] * len(items) for a in args], pure=False)
-            return self.client.gather(futures)
-        if self.workers <= 1 or len(items) == 1:
-            return [_checked(fn, it, *args) for it in items]
-        return list(self._threads().map(lambda it: _checked(fn, it, *args), items))
-
-    def _threads(self) -> ThreadPoolExecutor:
-        return piece_pool()   # the one piece pool of this process (engine.pieces)
-
     def close(self) -> None:
         """Nothing of its own to let go: the piece pool is shared by every engine of the process."""
-
-
-def _checked(fn, item, *args):
-    """One piece, unless Ctrl-C came: a pool then drains in one piece's time."""
-    interrupt.check()
-    return fn(item, *args)
 
 
 _engines: dict[str, DaskEngine] = {}
@@ -300,81 +262,6 @@ def frame_to_dask(frame: Frame, columns, *, names=None, target_bytes: int | None
                        label="swarmaudit-read", enforce_metadata=False)
 
 
-# images --------------------------------------------------------------------------------
-def _stats_piece(piece: Piece, xcol, ycol, slab):
-    x, y = read_column(piece, xcol), read_column(piece, ycol)
-    keep = None
-    if slab is not None:
-        s = read_column(piece, slab[0])
-        with np.errstate(invalid="ignore"):
-            keep = (s >= slab[1]) & (s < slab[2])
-    sx, sy = finite_stats(x), finite_stats(y)
-    bad = 0
-    if sx[2] or sy[2]:   # only then is a row mask worth building
-        mask = ~np.isfinite(x) if sx[2] else np.zeros(x.shape, bool)
-        if sy[2]:
-            mask |= ~np.isfinite(y)
-        bad = int(np.count_nonzero(mask if keep is None else mask & keep))
-    return {"x": None if sx[0] is None else sx[:2], "y": None if sy[0] is None else sy[:2],
-            "bad": bad, "kept": piece.length if keep is None else int(np.count_nonzero(keep))}
-
-
-def column_stats(frame: Frame, xcol: str, ycol: str, *, slab=None, engine: DaskEngine | None = None):
-    """Finite (min, max) of two columns over all rows, and rows with a non-finite one (in the slab)."""
-    engine = engine or client_for()
-    res = engine.map(_stats_piece, frame_pieces(frame, [xcol, ycol]), xcol, ycol, slab)
-
-    def span(key):
-        got = [r[key] for r in res if r[key] is not None]
-        return (min(g[0] for g in got), max(g[1] for g in got)) if got else (0.0, 1.0)
-    return {"x_range": span("x"), "y_range": span("y"), "nonfinite": sum(r["bad"] for r in res),
-            "kept": sum(r["kept"] for r in res)}
-
-
-def aggregate_dask(frame: Frame, xcol: str, ycol: str, *, width: int = 800, height: int = 600,
-                   x_range=None, y_range=None, reduction: str = "count", value=None, slab=None,
-                   engine: DaskEngine | None = None):
-    """Bin ``frame`` onto a pixel grid piece by piece (datashader over a dask frame).
-
-    Returns the datashader aggregate with dims named after the columns and
-    ``attrs`` ``nonfinite``, ``particles``, ``x_range``, ``y_range``: the
-    same grid as the in-memory aggregation of the whole frame.
-    """
-    import datashader as ds
-    engine = engine or client_for()
-    if reduction not in ("count", "sum", "mean"):
-        raise OptionError(f"colour-by takes one of count, sum, mean, got '{reduction}'")
-    if reduction != "count" and not value:
-        raise OptionError(f"colour-by '{reduction}' needs a column to {reduction}")
-    stats = column_stats(frame, xcol, ycol, slab=slab, engine=engine)
-    x_range = _padded(x_range if x_range is not None else stats["x_range"])
-    y_range = _padded(y_range if y_range is not None else stats["y_range"])
-    names = {"_x": xcol, "_y": ycol}
-    if reduction != "count":
-        names["_v"] = value
-    if slab is not None:
-        names["_s"] = slab[0]
-    ddf = frame_to_dask(frame, list(names.values()), names=names)
-    if slab is not None:
-        ddf = ddf[(ddf["_s"] >= slab[1]) & (ddf["_s"] < slab[2])]
-    agg_fn = {"count": ds.count(), "sum": ds.sum("_v"), "mean": ds.mean("_v")}[reduction]
-    cv = ds.Canvas(plot_width=int(width), plot_height=int(height), x_range=x_range, y_range=y_range)
-    with engine.active():
-        agg = cv.points(ddf, "_x", "_y", agg=agg_fn)
-    agg = agg.rename({"_x": xcol, "_y": ycol}) if xcol != ycol else agg
-    agg.attrs.update({"nonfinite": stats["nonfinite"], "particles": stats["kept"] - stats["nonfinite"],
-                      "x_range": tuple(x_range), "y_range": tuple(y_range)})
-    return agg
-
-
-def _padded(r):
-    lo, hi = float(r[0]), float(r[1])
-    if hi > lo:
-        return (lo, hi)
-    pad = abs(lo) * 1e-6 if lo != 0 else 0.5
-    return (lo - pad, hi + pad)
-
-
 # the process-wide choice the drawing code follows --------------------------------------------
 @dataclass
 class _Policy:
@@ -403,17 +290,9 @@ def partitioned(frame: Frame, columns) -> bool:
     return use_dask(_policy, frame, [c for c in columns if c])
 
 
-def column_range(frame: Frame, col: str) -> tuple[float, float]:
-    """Finite (min, max) of one column piece by piece; (0, 1) when it has no finite value."""
-    engine = client_for(address=_policy.scheduler)
-    res = engine.map(_range_piece, frame_pieces(frame, [col]), col)
-    got = [r for r in res if r is not None]
-    return (min(g[0] for g in got), max(g[1] for g in got)) if got else (0.0, 1.0)
-
-
-def _range_piece(piece: Piece, col: str):
-    lo, hi, _ = finite_stats(read_column(piece, col))
-    return None if lo is None else (lo, hi)
+def drawing_context() -> _Policy:
+    """The process-wide choice as a context :func:`engine.reduce.reduce` takes (``engine``, ``scheduler``)."""
+    return _policy
 
 
 def drawing_engine() -> DaskEngine:

@@ -13,12 +13,12 @@ import threading
 import time
 import weakref
 
+import numpy as np
 import pytest
 
 from _need import need_that
 
 from swarmaudit.core import interrupt
-from swarmaudit.engine.dask_backend import DaskEngine
 
 need_that(threading.current_thread() is threading.main_thread(),
           "signal handlers can only be installed from the main thread", module_level=True)
@@ -65,22 +65,36 @@ def test_the_handler_raises_at_once_where_it_can(handler):
     assert interrupt.requested()
 
 
-def test_a_thread_pool_drains_in_one_piece_once_the_flag_is_set(handler):
-    engine = DaskEngine("threads", 2)
+@pytest.mark.parametrize("where", ["threads", "dask"])
+def test_a_thread_pool_drains_in_one_piece_once_the_flag_is_set(handler, monkeypatch, where):
+    from swarmaudit.core.frame import Frame
+    from swarmaudit.diagnostics.accumulate import Accumulator
+    from swarmaudit.engine import pieces
+    from swarmaudit.engine.reduce import reduce
+    monkeypatch.setattr(pieces, "PIECE_ROWS", 1)      # 200 pieces of one row
     started = []
 
-    def piece(i):
-        started.append(i)
-        if i == 3:
-            interrupt.request()
-        time.sleep(0.01)
-        return i
+    class Slow(Accumulator):
+        columns = ("x",)
 
-    try:
-        with pytest.raises(interrupt.Interrupted):
-            engine.map(piece, range(200))
-    finally:
-        engine.close()
+        def start(self):
+            return 0
+
+        def add(self, state, piece):
+            started.append(piece.start)
+            if len(started) == 4:                 # the fourth piece to start, wherever it is
+                interrupt.request()
+            time.sleep(0.01)
+            return state + 1
+
+        def merge(self, a, b):
+            return a + b
+
+    x = np.arange(200.0)
+    frame = Frame("p", 200, {"x": lambda: x})
+    frame["x"]                                  # held in memory: cut into pieces of one row
+    with pytest.raises(interrupt.Interrupted):
+        reduce(Slow(), frame, where=where)
     # the pieces queued after the interrupt never ran (two threads: a few were already running)
     assert len(started) < 20, started
 

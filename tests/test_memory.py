@@ -76,9 +76,12 @@ PROBE = textwrap.dedent("""
                 if line.startswith(key):
                     return int(line.split()[1]) * 1024
 
-    # compile datashader's kernels first: their one-off memory is not the view's
-    warm = {"x": np.random.rand(1000), "y": np.random.rand(1000)}
-    aggregate_points(Frame("w", 1000, {k: (lambda v=v: v) for k, v in warm.items()}), "x", "y")
+    # compile the binning loop first (float64 and float32 columns, a piece long enough to take
+    # it): its one-off memory is not the view's
+    from swarmaudit.diagnostics.image import MIN_VALUES
+    for dt in (np.float64, np.float32):
+        warm = {"x": np.random.rand(MIN_VALUES).astype(dt), "y": np.random.rand(MIN_VALUES).astype(dt)}
+        aggregate_points(Frame("w", MIN_VALUES, {k: (lambda v=v: v) for k, v in warm.items()}), "x", "y")
     out = {}
     tracemalloc.start()
     for name in sys.argv[1:]:

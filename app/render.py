@@ -3,9 +3,10 @@
 Aggregate, then shade: :func:`aggregate_points` bins particles onto a pixel
 grid (count, summed value, or mean of a column) with the image accumulator
 :class:`diagnostics.image.Image`, run by the one runner
-(:func:`engine.reduce.reduce`); :func:`density_image` turns that grid into a
-holoviews element that the bokeh dashboard and the matplotlib export draw the
-same way. A figure in a report is therefore the figure on the screen.
+(:func:`engine.reduce.reduce`); :func:`density_image` turns that grid into the
+dashboard's holoviews element, and the export draws the same grid with
+matplotlib (:mod:`app.mpl_figures`). A figure in a report is therefore the
+figure on the screen.
 """
 
 from __future__ import annotations

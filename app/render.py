@@ -96,20 +96,23 @@ def data_range(frame, col: str) -> tuple[float, float]:
 
     Cached per frame and column, so moving between views costs one pass.
     """
-    return data_ranges(frame, [col])[col]
+    lo, hi, _ = column_stats(frame, [col])[col]
+    return (0.0, 1.0) if lo is None else (lo, hi)
 
 
-def data_ranges(frame, cols) -> dict:
-    """:func:`data_range` of several columns: those not cached yet in one pass over the frame."""
-    out = {c: _lookup(frame, ("range", c)) for c in dict.fromkeys(cols)}
+def column_stats(frame, cols) -> dict:
+    """``{column: (finite min, finite max, non-finite count)}`` (:class:`diagnostics.image.ColumnRanges`).
+
+    Cached per frame and column; the columns not cached yet are reduced in one pass.
+    """
+    out = {c: _lookup(frame, ("stats", c)) for c in dict.fromkeys(cols)}
     missing = [c for c, r in out.items() if r is None]
     if missing:
         got = reduce(ColumnRanges(missing), frame, dask_backend.drawing_context(),
                      where=_where(frame, missing))
         for c in missing:
-            lo, hi, _ = got[c]
-            out[c] = (0.0, 1.0) if lo is None else (lo, hi)
-            _keep(frame, ("range", c), out[c])
+            out[c] = got[c]
+            _keep(frame, ("stats", c), got[c])
     return out
 
 
@@ -166,12 +169,14 @@ def aggregate_points(frame, xcol: str, ycol: str, *, width: int = 800, height: i
         if mask.shape != (len(frame),):
             raise OptionError(f"selection mask has {mask.size} entries for {len(frame)} particles")
         where = "threads"          # the selection is an array of this process
-    wanted = [c for c, r in ((xcol, x_range), (ycol, y_range)) if r is None]
-    ranges = data_ranges(frame, wanted) if wanted else {}
-    x_range = padded_range(*(x_range if x_range is not None else ranges[xcol]))
-    y_range = padded_range(*(y_range if y_range is not None else ranges[ycol]))
+    # the columns' ranges and non-finite counts, one cached pass: the default canvas, and whether
+    # the binning has any non-finite coordinate to count
+    stats = column_stats(frame, [xcol, ycol])
+    x_range = padded_range(*(x_range if x_range is not None else data_range(frame, xcol)))
+    y_range = padded_range(*(y_range if y_range is not None else data_range(frame, ycol)))
     acc = Image(xcol, ycol, width=width, height=height, x_range=x_range, y_range=y_range,
-                reduction=reduction, value=value, slab=slab, mask=mask)
+                reduction=reduction, value=value, slab=slab, mask=mask,
+                finite=not (stats[xcol][2] or stats[ycol][2]))
     agg = reduce(acc, frame, dask_backend.drawing_context(), where=where)
     return _labelled(agg, frame, xcol, ycol, reduction, value)
 

@@ -43,8 +43,10 @@ available = importlib.util.find_spec("numba") is not None
 _loops: dict = {}
 
 
-def _make_loop(reduction: str, slab: bool, mask: bool):
+def _make_loop(reduction: str, slab: bool, mask: bool, count_bad: bool = True):
     """The row loop of one reduction, with or without a slab and a mask (fixed when numba compiles).
+
+    ``count_bad`` False: the coordinates are known to be finite, nothing to count.
 
     datashader's points rule and its sum and mean: a count adds 1; a sum's
     pixel starts NaN, takes its first non-NaN value and adds the next ones; a
@@ -69,7 +71,8 @@ def _make_loop(reduction: str, slab: bool, mask: bool):
             b = y[i]
             # a - a is 0 for a finite value, NaN for NaN or infinity: counted without a branch
             # (a branch on the points off the canvas costs a third of the loop)
-            bad += not ((a - a) + (b - b) == 0)
+            if count_bad:
+                bad += not ((a - a) + (b - b) == 0)
             if x0 <= a <= x1 and y0 <= b <= y1:
                 xx = int(a * sx + tx)
                 yy = int(b * sy + ty)
@@ -95,12 +98,12 @@ def _make_loop(reduction: str, slab: bool, mask: bool):
     return loop
 
 
-def _loop(reduction: str, slab: bool, mask: bool, compiled: bool):
+def _loop(reduction: str, slab: bool, mask: bool, count_bad: bool, compiled: bool):
     """The loop for these options, compiled with numba (``compiled``) or as plain Python."""
-    key = (reduction, slab, mask, compiled)
+    key = (reduction, slab, mask, count_bad, compiled)
     fn = _loops.get(key)
     if fn is None:
-        fn = _make_loop(reduction, slab, mask)
+        fn = _make_loop(reduction, slab, mask, count_bad)
         if compiled:
             import numba
             fn = numba.njit(cache=True, nogil=True)(fn)
@@ -108,8 +111,8 @@ def _loop(reduction: str, slab: bool, mask: bool, compiled: bool):
     return fn
 
 
-def _points_numpy(reduction, x, y, v, s, m, sx, tx, sy, ty, x0, x1, y0, y1, slo, shi, h, w,
-                  counts, sums):
+def _points_numpy(reduction, count_bad, x, y, v, s, m, sx, tx, sy, ty, x0, x1, y0, y1, slo, shi,
+                  h, w, counts, sums):
     """What the loop does, in numpy passes: same bins, the same sums added in the same order.
 
     None when a sum meets an infinite value: +inf and -inf in one pixel make
@@ -132,7 +135,7 @@ def _points_numpy(reduction, x, y, v, s, m, sx, tx, sy, ty, x0, x1, y0, y1, slo,
     y = y.astype(np.float64, copy=False)
     with np.errstate(invalid="ignore"):
         on = (x0 <= x) & (x <= x1) & (y0 <= y) & (y <= y1)
-    bad = int(np.count_nonzero(~(np.isfinite(x) & np.isfinite(y))))
+    bad = int(np.count_nonzero(~(np.isfinite(x) & np.isfinite(y)))) if count_bad else 0
     xx = (x[on] * sx + tx).astype(np.int64)
     yy = (y[on] * sy + ty).astype(np.int64)
     np.minimum(xx, w - 1, out=xx)
@@ -190,7 +193,10 @@ class Image(Accumulator):
     ``_x`` when both axes are one column) with pixel-centre coordinates and
     ``attrs`` ``nonfinite`` (kept rows with a non-finite coordinate),
     ``particles`` (kept rows with finite coordinates, inside the canvas or
-    not), ``x_range`` and ``y_range``.
+    not), ``x_range`` and ``y_range``. ``finite=True`` says the caller knows
+    both columns hold no NaN or infinite value (from their
+    :class:`ColumnRanges`): the loop then has nothing to count (an eighth
+    of its time).
     """
 
     reads_once = True
@@ -199,7 +205,8 @@ class Image(Accumulator):
     task_pieces = 64
 
     def __init__(self, x: str, y: str, *, width: int, height: int, x_range, y_range,
-                 reduction: str = "count", value: str | None = None, slab=None, mask=None):
+                 reduction: str = "count", value: str | None = None, slab=None, mask=None,
+                 finite: bool = False):
         if reduction not in REDUCTIONS:
             raise ValueError(f"reduction takes one of {', '.join(REDUCTIONS)}, got '{reduction}'")
         if reduction != "count" and not value:
@@ -217,6 +224,7 @@ class Image(Accumulator):
         self.value = value if reduction != "count" else None
         self.slab = None if slab is None else (slab[0], float(slab[1]), float(slab[2]))
         self.mask = None if mask is None else np.asarray(mask, dtype=bool)
+        self.finite = bool(finite)
         cols = [x, y, self.value, self.slab[0] if self.slab else None]
         self.columns = tuple(dict.fromkeys(c for c in cols if c))
 
@@ -252,11 +260,11 @@ class Image(Accumulator):
         args = (sx, tx, sy, ty, self.x_range[0], self.x_range[1], self.y_range[0], self.y_range[1],
                 slo, shi, self.height, self.width, counts, sums)
         got = None
-        key = (self.reduction, s is not None, m is not None, available)
+        key = (self.reduction, s is not None, m is not None, not self.finite, available)
         if not available or (n < MIN_VALUES and key not in _loops):
             # a small piece is not worth numba's import and compile; once compiled, the loop
             # takes every piece (both give the same numbers)
-            got = _points_numpy(self.reduction, x, y, v, s, m, *args)
+            got = _points_numpy(self.reduction, not self.finite, x, y, v, s, m, *args)
         if got is None:
             loop = _loop(*key)
             with np.errstate(invalid="ignore", over="ignore"):   # plain Python: inf - inf, as numba

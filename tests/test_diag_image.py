@@ -126,6 +126,19 @@ def _near_edges(cols, canvas):
     return {c: np.concatenate([cols[c], extra[c].astype(cols[c].dtype)]) for c in cols}
 
 
+@pytest.mark.parametrize("reduction", ["count", "sum", "mean"])
+def test_columns_known_finite_give_the_same_image(reduction, path):
+    # finite=True (the caller's ColumnRanges found no NaN or infinity) skips the count, nothing else
+    cols = _points()
+    ok = np.isfinite(cols["x"]) & np.isfinite(cols["y"])
+    cols = {c: a[ok] for c, a in cols.items()}
+    value = None if reduction == "count" else ("w" if reduction == "sum" else "v")
+    got = _image(cols, reduction, value, (5000,), finite=True)
+    _same_array(got, _datashader(cols, reduction, value))
+    assert got.attrs == _image(cols, reduction, value, (5000,)).attrs
+    assert got.attrs["nonfinite"] == 0 and got.attrs["particles"] == int(ok.sum())
+
+
 def test_count_equals_numpy_histogram2d_with_the_edge_rules(path):
     cols = _points()
     got = _image(cols, "count")

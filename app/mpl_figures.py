@@ -82,7 +82,8 @@ def _bar_axes(fig, ax):
 
 # colour bars ------------------------------------------------------------------------------------
 def _whole(lo: float, hi: float) -> bool:
-    return hi >= 10 or (float(lo).is_integer() and float(hi).is_integer())
+    """Counts (whole ends) are labelled as whole numbers; anything else keeps its decimals."""
+    return float(lo).is_integer() and float(hi).is_integer()
 
 
 def _nice(v: float) -> float:

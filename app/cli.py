@@ -181,6 +181,10 @@ def _dispatch(args) -> int:
     if args.command == "compare":
         from .compare_cmd import run_compare
         return run_compare(args)
+    if args.command == "export":
+        # the process that draws the figures starts now: its start-up overlaps opening the run
+        from .figure_writer import prestart
+        prestart()
     from .options import context_from_options
     if args.command == "serve":
         from .options import contexts_from_options

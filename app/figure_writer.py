@@ -3,9 +3,10 @@
 Drawing with matplotlib is most of what an export does once the numbers are
 made, and it holds the GIL, so a second *process* draws. It is started when
 the export begins (``python -m swarmaudit.app.figure_writer``: a plain child
-process, so nothing of the caller's script runs again in it), and its start-up
+process, so nothing of the caller's script runs again in it; the command line
+starts it before it opens the run, :func:`prestart`), and its start-up
 (matplotlib, the figure code, a first small figure to load the fonts) runs
-while this process reduces the tables. Each figure is a job
+while this process opens the run and reduces the tables. Each figure is a job
 (``mpl_figures.draw_job``: a ``figure_data`` record, or a density view's
 values), handed over the moment its numbers are known; the drawing process
 keeps its laid-out image figures, so the snapshots of a view are swapped into
@@ -25,6 +26,7 @@ runs in a session of its own, ignores it, and is stopped with the export.
 
 from __future__ import annotations
 
+import atexit
 import os
 import pickle
 import struct
@@ -38,6 +40,8 @@ from ..core import interrupt
 #: fewer figures than this are drawn here: starting a process costs more than they do
 LEAST_FIGURES = 4
 _HEADER = struct.Struct("<Q")
+#: a drawing process started before the export knew its figures (``prestart``), not yet taken
+_EARLY: list = []
 
 
 def spare_core() -> bool:
@@ -46,6 +50,49 @@ def spare_core() -> bool:
         return len(os.sched_getaffinity(0)) >= 2
     except AttributeError:
         return (os.cpu_count() or 1) >= 2
+
+
+def _spawn():
+    """A drawing process (``python -m swarmaudit.app.figure_writer``), or None when none starts."""
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in sys.path if p))
+    try:
+        return subprocess.Popen([sys.executable, "-m", __name__], stdin=subprocess.PIPE,
+                                stdout=subprocess.PIPE, env=env, start_new_session=True)
+    except (OSError, ValueError):
+        return None
+
+
+def prestart() -> None:
+    """Start the drawing process now, when a core is spare: its start-up then overlaps the
+    export's own (opening the run). The next FigureWriter takes it, or closes it."""
+    if not _EARLY and spare_core():
+        child = _spawn()
+        if child is not None:
+            _EARLY.append(child)
+
+
+def _close(child) -> None:
+    try:
+        child.stdin.close()
+    except OSError:
+        pass
+    try:
+        child.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        child.kill()
+        child.wait()
+
+
+def _drop(child) -> None:
+    """End a drawing process that drew nothing (no need to let it finish starting)."""
+    child.kill()
+    _close(child)
+
+
+@atexit.register
+def _close_early() -> None:
+    while _EARLY:
+        _drop(_EARLY.pop())
 
 
 def _send(stream, obj) -> None:
@@ -80,21 +127,22 @@ class FigureWriter:
         self._closed = False
         self._child = None
         self._thread = None
+        early = _EARLY.pop() if _EARLY else None
         if process is None:
             process = figures >= LEAST_FIGURES and spare_core()
-        if process:
-            self._open()
-
-    def _open(self) -> None:
-        env = dict(os.environ, PYTHONPATH=os.pathsep.join(p for p in sys.path if p))
-        try:
-            self._child = subprocess.Popen(
-                [sys.executable, "-m", __name__], stdin=subprocess.PIPE, stdout=subprocess.PIPE,
-                env=env, start_new_session=True)
-            _send(self._child.stdin, self.size)
-        except (OSError, ValueError):
-            self._child = None
+        if not process:
+            if early is not None:
+                _drop(early)
             return
+        child = early if early is not None and early.poll() is None else _spawn()
+        if child is None:
+            return
+        try:
+            _send(child.stdin, self.size)
+        except (OSError, ValueError):
+            child.kill()
+            return
+        self._child = child
         self._thread = threading.Thread(target=self._feed, name="figure-writer", daemon=True)
         self._thread.start()
 
@@ -165,17 +213,9 @@ class FigureWriter:
         child, self._child = self._child, None
         if child is None:
             return
-        try:
-            child.stdin.close()
-        except OSError:
-            pass
         if kill:
             child.kill()
-        try:
-            child.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            child.kill()
-            child.wait()
+        _close(child)
         if self._thread is not None:
             self._thread.join(timeout=10)
 
@@ -217,8 +257,8 @@ def _serve() -> None:
     os.dup2(sys.stderr.fileno(), sys.stdout.fileno())
     inp = sys.stdin.buffer
     from . import mpl_figures
-    size = _receive(inp)
     mpl_figures.warm_up()
+    size = _receive(inp)
     laid_out: dict = {}
     while (job := _receive(inp)) is not None:
         try:

@@ -340,3 +340,24 @@ def test_jobs_of_a_second_process_that_died_are_drawn_here(tmp_path):
     for _, _, path in _jobs(tmp_path):
         with Image.open(path) as im:
             assert im.size == (300, 240)
+
+
+def test_a_drawing_process_started_early_is_taken_by_the_writer_or_ended(tmp_path):
+    from _need import need_that
+    from swarmaudit.app import figure_writer as W
+    need_that(W.spare_core(), "a second core for the drawing process")
+    size = M.FigureSize(300, 240, 100)
+    W.prestart()
+    early = W._EARLY[0]
+    writer = W.FigureWriter(size, 10)
+    assert not W._EARLY and writer._child is early
+    for job in _jobs(tmp_path):
+        writer.submit(*job)
+    writer.finish()
+    assert early.poll() == 0                      # ended when the export was done with it
+    for _, _, path in _jobs(tmp_path):
+        assert Image.open(path).size == (300, 240)
+    W.prestart()
+    early = W._EARLY[0]
+    few = W.FigureWriter(size, 1)                 # too few figures: drawn here, the process ended
+    assert not few.in_process and not W._EARLY and early.poll() is not None

@@ -40,26 +40,6 @@ def _wider(m, t):
     return m if (m > t or m != m) else t
 
 
-def _put(rec, k, at, d, x, y, z, j):
-    # row j of up to three component arrays into fields at, at+1, at+2 of record k
-    if d > 0:
-        rec[k, at] = x[j]
-    if d > 1:
-        rec[k, at + 1] = y[j]
-    if d > 2:
-        rec[k, at + 2] = z[j]
-
-
-def _record_cells(rec, k, i, d, xa, ya, za, h0, h1, h2, p0, p1, p2, n0, n1, n2):
-    # the displacement in cells of particle i of a from the coordinates in fields 1.. of record k
-    w = _axis_cells(xa[i], rec[k, 1], h0, p0, n0)
-    if d > 1:
-        w = _wider(w, _axis_cells(ya[i], rec[k, 2], h1, p1, n1))
-    if d > 2:
-        w = _wider(w, _axis_cells(za[i], rec[k, 3], h2, p2, n2))
-    return w
-
-
 def _dense(ka, kb, span, pos_b, ia, ib, lost, created):
     # pos_b[key]: row of b (>= 0), -1 never seen, -2 matched by a, -3 seen only in a
     nb = kb.shape[0]
@@ -128,7 +108,12 @@ def _dense_summary(ka, kb, rec, block_a, block_b, blo, diag, d, xa, ya, za, xb, 
     for j in range(nb):
         k = kb[j]
         rec[k, 0] = 1.0 + (block_b[j] - blo)
-        _put(rec, k, 1, d, xb, yb, zb, j)
+        if d > 0:
+            rec[k, 1] = xb[j]
+        if d > 1:
+            rec[k, 2] = yb[j]
+        if d > 2:
+            rec[k, 3] = zb[j]
     h0, h1, h2, p0, p1, p2, n0, n1, n2 = h[0], h[1], h[2], per[0], per[1], per[2], n[0], n[1], n[2]
     m = 0
     nl = 0
@@ -150,7 +135,11 @@ def _dense_summary(ka, kb, rec, block_a, block_b, blo, diag, d, xa, ya, za, xb, 
                 mt[moved] = tb
                 moved += 1
             if d > 0:
-                w = _record_cells(rec, k, i, d, xa, ya, za, h0, h1, h2, p0, p1, p2, n0, n1, n2)
+                w = _axis_cells(xa[i], rec[k, 1], h0, p0, n0)
+                if d > 1:
+                    w = _wider(w, _axis_cells(ya[i], rec[k, 2], h1, p1, n1))
+                if d > 2:
+                    w = _wider(w, _axis_cells(za[i], rec[k, 3], h2, p2, n2))
                 if abs(w) < np.inf:
                     if w > widest:
                         widest = w
@@ -202,8 +191,18 @@ def _dense_pairs(ka, kb, rec, d, dm, xa, ya, za, xb, yb, zb, ua0, ua1, ua2, ub0,
         # the line is fetched for the write anyway; the test adds no stall between iterations
         dup_b += rec[k, 0] != 0.0
         rec[k, 0] = j + 1.0
-        _put(rec, k, 1, d, xb, yb, zb, j)
-        _put(rec, k, 1 + d, dm, ub0, ub1, ub2, j)
+        if d > 0:
+            rec[k, 1] = xb[j]
+        if d > 1:
+            rec[k, 2] = yb[j]
+        if d > 2:
+            rec[k, 3] = zb[j]
+        if dm > 0:
+            rec[k, 1 + d] = ub0[j]
+        if dm > 1:
+            rec[k, 2 + d] = ub1[j]
+        if dm > 2:
+            rec[k, 3 + d] = ub2[j]
     h0, h1, h2, p0, p1, p2, n0, n1, n2 = h[0], h[1], h[2], per[0], per[1], per[2], n[0], n[1], n[2]
     m = 0
     nl = 0
@@ -221,7 +220,11 @@ def _dense_pairs(ka, kb, rec, d, dm, xa, ya, za, xb, yb, zb, ua0, ua1, ua2, ub0,
         if r >= 1.0:
             ib[m] = np.int64(r) - 1
             if d > 0:
-                w = _record_cells(rec, k, i, d, xa, ya, za, h0, h1, h2, p0, p1, p2, n0, n1, n2)
+                w = _axis_cells(xa[i], rec[k, 1], h0, p0, n0)
+                if d > 1:
+                    w = _wider(w, _axis_cells(ya[i], rec[k, 2], h1, p1, n1))
+                if d > 2:
+                    w = _wider(w, _axis_cells(za[i], rec[k, 3], h2, p2, n2))
                 disp[m] = w
                 if abs(w) < np.inf:
                     if w > pmax:
@@ -321,7 +324,7 @@ def _get(name):
         if name not in _compiled:
             import numba
             g = globals()
-            for helper in ("_axis_cells", "_wider", "_fin", "_terms", "_fill", "_kahan", "_put", "_record_cells"):
+            for helper in ("_axis_cells", "_wider", "_fin", "_terms", "_fill", "_kahan"):
                 if not hasattr(g[helper], "py_func"):
                     g[helper] = numba.njit(nogil=True, inline="always")(g[helper])
             if name == "totals_file":

@@ -273,7 +273,8 @@ def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True, scan
 
     The snapshots are opened in the order of their names. ``scan_map(fn, items)``
     (see :func:`_scanned`) reads their files' metadata elsewhere; ``on_open(k, total,
-    ref, snapshot)`` hears of each snapshot as it opens (``k``: its place in that order).
+    ref, snapshot)`` hears of each snapshot as it opens (``k``: its place in that order;
+    ``snapshot`` None for one left out for now).
     """
     role_map = role_map or RoleMap()
     skipped: list[str] = []
@@ -290,6 +291,8 @@ def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True, scan
         snap, note = _try_open(ref, role_map, usual, follow, now, scans)
         if note is not None:
             skipped.append(note)
+            if on_open is not None:
+                on_open(k, len(refs), ref, None)
             continue
         ref.stamp = stamps[id(ref)]
         short = _missing_ranks(ref, usual)

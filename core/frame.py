@@ -73,6 +73,12 @@ class Frame:
             self._cache[name] = arr
         return arr
 
+    def peek(self, name: str) -> np.ndarray:
+        """The column from memory when the frame holds it, else read without keeping it (a pass
+        that looks at each column once then holds one column at a time, not all it has read)."""
+        got = self._cache.get(name)
+        return got if got is not None else self.read_uncached(name)
+
     def read_uncached(self, name: str) -> np.ndarray:
         """Read a column from its file, checked, without keeping it (counts in ``reads``)."""
         try:

@@ -33,19 +33,20 @@ from .pieces import piece_workers
 MIN_FILES = 64
 
 
-def scan_map_for(scheduler: str | None = None):
+def scan_map_for(scheduler: str | None = None, engine: str = "auto"):
     """The ``scan_map`` for :func:`readers.discover.open_run`: ``scan_map(fn, items)`` yields
-    ``fn(item)`` of every item in order, computed on a cluster or on worker processes (see the
-    module's words); None leaves the scans in this process."""
-    if scheduler:
+    ``fn(item)`` of every item in order, computed on the ``scheduler``'s workers (unless the
+    engine is ``memory``: everything in this process) or on worker processes (see the module's
+    words)."""
+    if scheduler and engine != "memory":
         return lambda fn, items: _on_cluster(scheduler, fn, items)
     return _on_processes
 
 
 def _on_cluster(scheduler: str, fn, items):
-    from .dask_backend import client_for
+    from .dask_backend import client_for, scheduler_address
     items = list(items)
-    client = client_for(None, scheduler).client
+    client = client_for(address=scheduler_address(scheduler)).client
     futures = client.map(fn, items, pure=False)
     try:
         for fut in futures:

@@ -6,6 +6,8 @@ position, momentum and key columns, so ``inspect`` asks for them explicitly.
 
 from __future__ import annotations
 
+from contextlib import ExitStack
+
 import numpy as np
 
 from ..core.layout import nonfinite_rows as _nonfinite_rows
@@ -35,6 +37,15 @@ def frame_health(frame, layout=None) -> dict:
     key columns (no id). The positions, the momenta and the key are read (and let go) in turn,
     and only what the frame already held stays in memory (``Frame.peek``).
     """
+    with ExitStack() as stack:
+        # every file the counts read stays open until they are done (one open per file, not per column)
+        for c in dict.fromkeys(list(frame.position_names) + frame.momentum_names()
+                               + list(frame.key_columns() or ())):
+            stack.enter_context(frame.loader(c).hold())
+        return _health(frame, layout)
+
+
+def _health(frame, layout) -> dict:
     n = frame.length
     pos_names = frame.position_names
     pos = [np.asarray(frame.peek(c)) for c in pos_names]

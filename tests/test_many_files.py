@@ -331,3 +331,51 @@ def test_inspect_json_is_the_same_on_worker_processes(tmp_path, monkeypatch, cap
     assert got["serial"] == got["processes"]
     assert [s["step"] for s in got["serial"]["snapshots"]] == [0, 10, 20, 30]
     assert [s["count"]["electrons"] for s in got["serial"]["snapshots"]] == [800] * 4
+
+
+SLOW_INSPECT = """
+import os, sys, time
+from swarmaudit.app import cli
+from swarmaudit.engine import scan
+from swarmaudit.readers import discover
+
+marks = sys.argv[2]
+plain = discover.scan_paths
+
+def slow(paths):     # a slow disk: each snapshot's scan takes a while
+    with open(marks, "a") as fh:
+        fh.write(f"{os.getpid()}\\n")
+    time.sleep(0.2)
+    return plain(paths)
+
+slow.__module__, slow.__qualname__ = "__main__", "slow"
+discover.scan_paths = slow
+scan.MIN_FILES = 1
+sys.exit(cli.main(["inspect", sys.argv[1], "--health", "none"]))
+"""
+
+
+def test_ctrl_c_while_worker_processes_scan_stops_them_all(tmp_path):
+    import signal
+    import subprocess
+    import sys
+
+    import psutil
+    write_ranks(tmp_path / "run", snapshots=40, ranks=2, n=10)
+    marks = tmp_path / "marks"
+    env = dict(os.environ, SWARMAUDIT_CACHE="off")
+    proc = subprocess.Popen([sys.executable, "-c", SLOW_INSPECT, str(tmp_path / "run"), str(marks)],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env,
+                            start_new_session=True)
+    deadline = time.time() + 60
+    while not (marks.exists() and len(set(marks.read_text().split())) >= 2) and time.time() < deadline:
+        time.sleep(0.05)
+    os.killpg(proc.pid, signal.SIGINT)          # what a terminal's Ctrl-C does: the whole group
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 130, err
+    assert "interrupted" in err and "Traceback" not in err
+    workers = {int(p) for p in marks.read_text().split()}
+    assert proc.pid not in workers              # the scans ran in worker processes
+    time.sleep(0.2)
+    alive = [p for p in workers if psutil.pid_exists(p) and psutil.Process(p).status() != psutil.STATUS_ZOMBIE]
+    assert alive == []

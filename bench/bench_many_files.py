@@ -13,7 +13,10 @@ in turn, each as its own process (what a user waits for, start-up included):
 * ``swarmaudit inspect RUN --health none`` (opens every snapshot: the
   metadata of every file);
 * ``swarmaudit check RUN --no-cache`` (the totals of every snapshot, and the
-  clean-read check of its position and id columns).
+  clean-read check of its position and id columns);
+
+and the processor seconds each took (with its worker processes): what a busy
+machine charges, where the wall-clock ratios depend on free cores.
 
 Then, in this process, the scan of every file's metadata (what opening a run
 costs) on one thread against the piece pool's threads and against forked
@@ -31,7 +34,9 @@ from __future__ import annotations
 import argparse
 import glob
 import os
+import resource
 import shutil
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -62,10 +67,15 @@ def _command(args, pythonpath=None):
         env["PYTHONPATH"] = os.pathsep.join([pythonpath] + [p for p in [env.get("PYTHONPATH")] if p])
 
     def go():
+        before = resource.getrusage(resource.RUSAGE_CHILDREN)
         res = subprocess.run([sys.executable, *args], env=env, stdout=subprocess.DEVNULL,
                              stderr=subprocess.PIPE, text=True)
+        after = resource.getrusage(resource.RUSAGE_CHILDREN)
         if res.returncode not in (0, 1):     # check exits 1 when a total leaves the band
             raise RuntimeError(f"{' '.join(args)}: exit {res.returncode}: {res.stderr[-500:]}")
+        # processor seconds of the command and every process it waited for (its scan workers)
+        go.cpu.append((after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime))
+    go.cpu = []
     return go
 
 
@@ -115,6 +125,12 @@ def run(snapshots: int = 200, files: int = 16, per_file: int = 1000, repeat: int
         t_c, t_loop2 = in_turn(check, loop, repeat)
         rows.append(row(f"check --no-cache, {what}", t_c, "sequential h5py loop, 3 columns",
                         t_loop2, "<= 0.5"))
+        cpu = {k: statistics.median(f.cpu[1:] or f.cpu) for k, f in
+               (("inspect", inspect), ("check", check), ("loop", loop))}   # the warm-up left out
+        rows.append(row("  inspect, processor seconds (all its processes)", cpu["inspect"],
+                        "the loop's", cpu["loop"]))
+        rows.append(row("  check, processor seconds (all its processes)", cpu["check"],
+                        "the loop's", cpu["loop"]))
         if before:
             b_inspect = _command(["-m", "swarmaudit", "inspect", folder, "--health", "none"], before)
             b_check = _command(["-m", "swarmaudit", "check", folder, "--no-cache", "--rtol", "0.5"],

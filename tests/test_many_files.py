@@ -117,6 +117,7 @@ def _processes(monkeypatch):
     monkeypatch.setattr(engine_scan, "MIN_FILES", 1)
     monkeypatch.setattr(engine_scan, "forkable", lambda: True)
     monkeypatch.setattr(engine_scan, "piece_workers", lambda: 2)
+    monkeypatch.setattr(engine_scan, "free_cores", lambda: 2)
 
 
 @pytest.mark.parametrize("where", ["this process", "worker processes"])
@@ -351,6 +352,7 @@ def slow(paths):     # a slow disk: each snapshot's scan takes a while
 slow.__module__, slow.__qualname__ = "__main__", "slow"
 discover.scan_paths = slow
 scan.MIN_FILES = 1
+scan.free_cores = lambda: 2      # however busy the machine running the tests is
 sys.exit(cli.main(["inspect", sys.argv[1], "--health", "none"]))
 """
 

@@ -619,10 +619,8 @@ def validate_snapshots(ctx: AuditContext, allow_empty: bool = False) -> None:
 
 def _read_cleanly(frames) -> bool:
     for f in frames:
-        names = list(dict.fromkeys(list(f.position_names) + list(f.key_columns() or ())))
-        with _held_open(f.select(names)):     # each file opened once for all of them
-            for c in names:
-                f.read_uncached(c)
+        for c in dict.fromkeys(list(f.position_names) + list(f.key_columns() or ())):
+            f.read_uncached(c)
     return True
 
 

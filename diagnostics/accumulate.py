@@ -175,6 +175,12 @@ class KeepRows(Accumulator):
             return {c: np.zeros(0) for c in cols}
         return {c: np.concatenate([ch[c] for _, ch in chunks]) for c in cols}
 
+    @staticmethod
+    def key_of(cols: dict, names) -> np.ndarray | tuple:
+        """A particle key as the matchers take it from joined columns: the one key column, or a
+        tuple of them for a composite key."""
+        return cols[names[0]] if len(names) == 1 else tuple(cols[n] for n in names)
+
 
 def fold(acc: Accumulator, pieces: Iterable[Piece]):
     """The state of ``pieces`` (consecutive rows, in order) folded from ``acc.start()``."""

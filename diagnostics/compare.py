@@ -507,11 +507,8 @@ class ParticleComparison(KeepRows):
     def finish(self, state) -> PairStats:
         a, b = self.joined(state, 0), self.joined(state, 1)
 
-        def key(cols, k):
-            names = self.keys[k]
-            return cols[names[0]] if len(names) == 1 else tuple(cols[n] for n in names)
-
-        return compare_particles(key(a, 0), key(b, 1), [a[c] for c in self.positions[0]],
+        return compare_particles(self.key_of(a, self.keys[0]), self.key_of(b, self.keys[1]),
+                                 [a[c] for c in self.positions[0]],
                                  [b[c] for c in self.positions[1]], [a[c] for c in self.momenta[0]],
                                  [b[c] for c in self.momenta[1]], self.layout,
                                  [a[c] for c in self.extras[0]], [b[c] for c in self.extras[1]], self.worst)

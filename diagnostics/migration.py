@@ -351,11 +351,7 @@ class Displacements(KeepRows):
     def finish(self, state) -> np.ndarray:
         a, b = self.joined(state, 0), self.joined(state, 1)
 
-        def key(cols, k):
-            names = self.keys[k]
-            return cols[names[0]] if len(names) == 1 else tuple(cols[n] for n in names)
-
-        m = match_keys(key(a, 0), key(b, 1))
+        m = match_keys(self.key_of(a, self.keys[0]), self.key_of(b, self.keys[1]))
         return matched_displacement([a[c] for c in self.positions[0]], [b[c] for c in self.positions[1]],
                                     m.ia, m.ib, self.layout)
 

@@ -63,13 +63,17 @@ class SidePanels(param.Parameterized):
     # tabs ------------------------------------------------------------------------------
     def tabs(self):
         s = self.state
+        # every tab is built with the page (dynamic=False): a tab built only when first shown
+        # drops content that arrives later (a result filled in from the periodic callback of
+        # ``_start`` sometimes never reaches the browser); the panels compute the same either
+        # way, since their functions run when the page is built
         tabs = pn.Tabs(
             (TAB_TITLES["blocks"], pn.panel(self.blocks_panel, loading_indicator=True)),
             (TAB_TITLES["migration"], pn.Column(pn.panel(self.moves_panel), self._moves)),
             (TAB_TITLES["drift"], pn.Column(pn.panel(self.totals_panel), self._totals)),
             (TAB_TITLES["histogram"], pn.panel(self.histogram_panel, loading_indicator=True)),
             (TAB_TITLES["compare"], pn.Column(pn.panel(self.compare_panel), self._compare)),
-            active=SIDE_PANELS.index(s.side), dynamic=True,
+            active=SIDE_PANELS.index(s.side), dynamic=False,
             styles={"background": "#ffffff", "border": "1px solid #e4e0d8", "border-radius": "6px"},
             sizing_mode="stretch_width", margin=(8, 4))
         tabs.param.watch(lambda e: s.param.update(side=SIDE_PANELS[e.new]), "active")

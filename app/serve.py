@@ -139,8 +139,8 @@ def _build_session_page(server: ServerState):
     import panel as pn
 
     from .dashboard import build_page
-    # the table widget's script must be on the page from the start: a tab opened later (the
-    # tabs are built when first shown) brings a table the browser could not draw otherwise
+    # the table widget's script must be on the page from the start: a table that arrives later
+    # (a side panel's result filled in after the page opened) could not be drawn otherwise
     pn.extension("tabulator")
     query = _take_query()
     loc = pn.state.location

@@ -248,6 +248,41 @@ def test_edited_link_values_never_break_the_page(server):
     assert not errors, errors
 
 
+def test_background_panels_arrive_in_the_browser(server):
+    """The Migration and Drift tabs are filled in when their work is done (after the page
+    opened): a link opening either tab shows the result, and so does switching to the other."""
+    sync_api = need("playwright.sync_api")
+
+    def wait_for(page, words, seconds=90):
+        deadline = time.time() + seconds
+        text = page_text(page)
+        while time.time() < deadline and not all(w in text for w in words):
+            time.sleep(0.5)
+            text = page_text(page)
+        return text
+
+    moved = ("matched", "over one cell per step")
+    drift = ("of the first snapshot",)
+    errors = []
+    with sync_api.sync_playwright() as p:
+        browser = _browser_or_fail(p)
+        try:
+            page = new_page(browser, errors)
+            page.goto(server + "?snap=2&tab=migration")
+            text = wait_for(page, moved)
+            assert all(w in text for w in moved), text[-1500:]
+            page.locator(".bk-tab").filter(has_text="Drift").first.click()
+            text = wait_for(page, drift)
+            assert all(w in text for w in drift), text[-1500:]
+            other = new_page(browser, errors)
+            other.goto(server + "?snap=1&tab=drift")
+            text = wait_for(other, drift)
+            assert all(w in text for w in drift), text[-1500:]
+        finally:
+            browser.close()
+    assert not errors, errors
+
+
 @pytest.fixture(scope="module")
 def two_runs(tmp_path_factory):
     """``serve REF CAND``: the same beams drawn twice from other seeds (ids match, positions differ)."""

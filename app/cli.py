@@ -190,10 +190,10 @@ def _dispatch(args) -> int:
         from .options import contexts_from_options
         from .serve import run_serve
         return run_serve(contexts_from_options(args), args)
-    ctx = context_from_options(args)
     if args.command == "inspect":
-        from .inspect_cmd import run_inspect
-        return run_inspect(ctx, as_json=args.json, health=args.health)
+        from .inspect_cmd import inspect_command
+        return inspect_command(args)
+    ctx = context_from_options(args)
     if args.command == "export":
         from .export import run_export
         from .movie import write_movie

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import sys
 
 from ..core.context import AuditContext
 from ..core.errors import OptionError
@@ -176,13 +177,15 @@ def _option_values(args, keywords: dict):
     return SimpleNamespace(**values)
 
 
-def context_from_options(args=None, follow: bool = True, **keywords) -> AuditContext:
+def context_from_options(args=None, follow: bool = True, on_open=None, **keywords) -> AuditContext:
     """The AuditContext of a command's run options: the one place options become a context.
 
     ``args`` is an argparse namespace (the CLI); ``keywords`` are the same
     options by name (``swarmaudit.open_run``). Bad values raise the
-    OptionError/InputError the command line prints.
+    OptionError/InputError the command line prints. ``on_open(k, total, ref, snapshot)``
+    hears of each snapshot as the run is opened (``readers.discover.open_run``).
     """
+    from ..engine.scan import scan_map_for
     from ..readers.discover import open_run, split_runs
     opts = _option_values(args, keywords)
     runs = split_runs(opts.run)
@@ -191,16 +194,21 @@ def context_from_options(args=None, follow: bool = True, **keywords) -> AuditCon
                           "takes one run (swarmaudit serve shows several)")
     role_map = RoleMap.from_options(opts.role, opts.roles_file, opts.id)
     fixed = layout_from_options(opts)
-    run = open_run(runs[0], role_map, follow=follow)
+    run = open_run(runs[0], role_map, follow=follow, scan_map=scan_map_for(opts.scheduler, opts.engine),
+                   on_open=on_open)
     species = [s.strip() for s in opts.species.split(",")] if opts.species else None
     ctx = AuditContext(run, fixed, species=species, engine=opts.engine, scheduler=opts.scheduler,
                        relativistic=bool(opts.relativistic), c=opts.c,
                        use_cache=not opts.no_cache, steps_per_snapshot=opts.steps_per_snapshot)
     ctx.notes.extend(run.skipped)
     check_role_columns(role_map, run)
-    from ..engine.dask_backend import configure, connect_scheduler
-    connect_scheduler(ctx)                 # an unreachable --scheduler stops here, with one line
-    configure(ctx.engine, ctx.scheduler)   # images follow the same engine as the tables
+    # images follow the same engine as the tables; the drawing engine starts at the defaults, so
+    # a command that keeps them need not import it (it brings pandas and dask: a third of a second)
+    drawing = sys.modules.get(__name__.rsplit(".", 2)[0] + ".engine.dask_backend")
+    if drawing is not None or ctx.engine != "auto" or ctx.scheduler:
+        from ..engine.dask_backend import configure, connect_scheduler
+        connect_scheduler(ctx)                 # an unreachable --scheduler stops here, with one line
+        configure(ctx.engine, ctx.scheduler)
     return ctx
 
 

@@ -619,8 +619,10 @@ def validate_snapshots(ctx: AuditContext, allow_empty: bool = False) -> None:
 
 def _read_cleanly(frames) -> bool:
     for f in frames:
-        for c in dict.fromkeys(list(f.position_names) + list(f.key_columns() or ())):
-            f.read_uncached(c)
+        names = list(dict.fromkeys(list(f.position_names) + list(f.key_columns() or ())))
+        with _held_open(f.select(names)):     # each file opened once for all of them
+            for c in names:
+                f.read_uncached(c)
     return True
 
 

@@ -1,6 +1,7 @@
 """Every benchmark in one command, one table of ratios measured side by side, written to RESULTS.md.
 
-    python bench/run_all.py [--n N] [--scale-particles N] [--repeat R] [--skip-scale] [--quick]
+    python bench/run_all.py [--n N] [--scale-particles N] [--repeat R] [--skip-scale] [--skip-many]
+                            [--many-snapshots S] [--quick]
                             [--out bench/RESULTS.md]
 
 Gathers the rows of
@@ -16,6 +17,9 @@ Gathers the rows of
 * ``bench_export.py``: ``export`` of the small demo run (3 s budget) and of one
   10 M-particle snapshot, each a fresh process, against a bare pipeline writing
   the same outputs;
+* ``bench_many_files.py``: inspect and check of 200 snapshots of 16 per-rank
+  files against a sequential h5py loop, and the scan of their metadata on
+  threads and on worker processes;
 * ``bench_scale.py``: 100 M particles over 16 files through dask against ten
   times 10 M in memory, and the peak resident memory of each;
 
@@ -116,6 +120,10 @@ def gather(args) -> tuple[list[tuple[str, list[dict]]], list[str], list[str]]:
     import bench_export
     section("export (bench_export.py)",
             lambda: bench_export.run(repeat=args.repeat, big_n=args.n))
+    if not args.skip_many:
+        import bench_many_files
+        section("many files (bench_many_files.py)",
+                lambda: bench_many_files.run(args.many_snapshots, args.files, repeat=args.repeat))
     if not args.skip_scale:
         import bench_scale
         holder = {}
@@ -171,12 +179,16 @@ def main(argv=None) -> int:
     ap.add_argument("--scale-dir", default="/tmp/swarmaudit-big", help="where the scale runs are written")
     ap.add_argument("--local", choices=("threads", "processes", "both"), default="both")
     ap.add_argument("--skip-scale", action="store_true", help="leave out the 100 M run")
+    ap.add_argument("--many-snapshots", type=int, default=200,
+                    help="snapshots of the many-files run (each --files files of 1,000 particles)")
+    ap.add_argument("--skip-many", action="store_true", help="leave out the many-files run")
     ap.add_argument("--quick", action="store_true", help="small sizes: a smoke run, not a result")
     ap.add_argument("--out", default=os.path.join(HERE, "RESULTS.md"))
     args = ap.parse_args(argv)
     if args.quick:
         args.n, args.repeat, args.snapshots, args.drift_n = 500_000, 1, 4, 100_000
         args.scale_particles = 2_000_000
+        args.many_snapshots = 10
     os.environ.setdefault("SWARMAUDIT_CACHE", "off")   # measure computing, not the cache
     facts = machine_facts()
     t = time.perf_counter()

@@ -25,6 +25,10 @@ class InputError(SwarmAuditError):
             text += f" ({hint})"
         super().__init__(text)
 
+    def __reduce__(self):
+        # what another process (a worker that opened the file) sends back: rebuilt from its parts
+        return (type(self), (self.path, self.problem, self.hint))
+
 
 class OptionError(SwarmAuditError):
     """A command-line option or setting that does not make sense."""

@@ -8,7 +8,7 @@ a view of ``x`` against ``ux`` never touches the other columns.
 
 from __future__ import annotations
 
-from contextlib import contextmanager
+from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass, field
 from typing import Mapping
 
@@ -72,6 +72,12 @@ class Frame:
         if self._cache_enabled:
             self._cache[name] = arr
         return arr
+
+    def peek(self, name: str) -> np.ndarray:
+        """The column from memory when the frame holds it, else read without keeping it (a pass
+        that looks at each column once then holds one column at a time, not all it has read)."""
+        got = self._cache.get(name)
+        return got if got is not None else self.read_uncached(name)
 
     def read_uncached(self, name: str) -> np.ndarray:
         """Read a column from its file, checked, without keeping it (counts in ``reads``)."""
@@ -206,7 +212,8 @@ def concat_frames(parts: list[Frame], *, species: str, rank_values=None, source=
     for c in common:
         dts = [p.loader(c).dtype for p in parts]
         loaders[c] = Column(lambda c=c: _join_column(parts, c), length=total,
-                            dtype=np.result_type(*dts) if all(d is not None for d in dts) else None)
+                            dtype=np.result_type(*dts) if all(d is not None for d in dts) else None,
+                            hold=lambda c=c: _hold_parts(parts, c))
     rank_named = any("rank" in p.roles for p in parts)
     if not rank_named and rank_values is not None and "rank" not in loaders:
         rv = np.asarray(rank_values, dtype=np.int32)
@@ -224,6 +231,18 @@ def concat_frames(parts: list[Frame], *, species: str, rank_values=None, source=
     joined.parts = list(parts)
     joined.part_ranks = None if rank_values is None else [int(r) for r in rank_values]
     return joined
+
+
+def _hold_parts(parts: list[Frame], name: str) -> ExitStack:
+    """Every part's file of column ``name`` held open (``Column.hold``), until the stack closes."""
+    stack = ExitStack()
+    try:
+        for p in parts:
+            stack.enter_context(p.loader(name).hold())
+    except BaseException:
+        stack.close()
+        raise
+    return stack
 
 
 def _join_column(parts: list[Frame], name: str) -> np.ndarray:

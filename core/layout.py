@@ -53,6 +53,12 @@ class BlockLayout:
         if self.upper.shape != (n, d):
             raise OptionError("block lower and upper corners have different shapes")
 
+    def __getstate__(self):
+        # the lookup grids are a cache, rebuilt on first use: another process gets the blocks only
+        state = dict(self.__dict__)
+        state["_lookup"] = {}
+        return state
+
     # shape facts ---------------------------------------------------------
     @property
     def ndim(self) -> int:

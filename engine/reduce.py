@@ -37,13 +37,18 @@ from dataclasses import dataclass
 from ..core import interrupt
 from ..core.frame import Frame
 from ..diagnostics import accumulate
-from .pieces import Piece, frame_pieces, piece_pool, piece_workers, read_column
+from .pieces import PIECE_ROWS, Piece, frame_pieces, piece_pool, piece_workers, read_column
 
 #: pieces of one part run as one task at most: a task's state is folded piece by piece, so a few
 #: tasks per frame keep every worker busy without a state per piece to send back
 PIECES_PER_TASK = 4
 
 PLACES = ("serial", "threads", "dask")
+
+#: rows of all the tasks together below which ``threads`` runs them in this thread: such pieces
+#: (the small per-rank files of a run of many) are too small for their numpy or compiled passes
+#: to let other threads run, so the pool only adds its hand-overs (measured: bench_many_files.py)
+THREADS_FROM_ROWS = PIECE_ROWS
 
 
 @dataclass
@@ -162,11 +167,16 @@ def choose(ctx, jobs) -> str:
     return "threads"
 
 
+def _rows(work) -> int:
+    return sum(p.length for _, t in work for p in t.pieces)
+
+
 def _run(place: str, work, ctx) -> tuple[list, bool]:
     """The task states, and whether they were computed in this process."""
     if not work:
         return [], True
-    if place == "serial" or (place == "threads" and (len(work) == 1 or piece_workers() == 1)):
+    if place == "serial" or (place == "threads" and (len(work) == 1 or piece_workers() == 1
+                                                    or _rows(work) < THREADS_FROM_ROWS)):
         return [run_task(acc, t) for acc, t in work], True
     if place == "threads":
         return list(piece_pool().map(lambda w: run_task(*w), work)), True

@@ -9,6 +9,7 @@ import time
 from collections import defaultdict
 from dataclasses import dataclass, field
 
+from ..core import interrupt
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot, concat_frames
 from ..core.outputs import only_our_output
@@ -139,10 +140,26 @@ def split_runs(spec) -> list:
     return folders
 
 
-def open_ref(ref: SnapshotRef, role_map: RoleMap | None = None, columns=None) -> Snapshot:
-    """Open the file(s) of one snapshot into one Snapshot (per-rank parts joined)."""
+def scan_paths(paths) -> list | SwarmAuditError:
+    """The scans (:func:`registry.scan_file`) of one snapshot's files, or the error that stopped
+    them. Plain data in and out, so the opening of a run can be spread over processes or machines
+    (``open_run``'s ``scan_map``); only the first part's stored layout is read (it is the snapshot's)."""
+    try:
+        return [registry.scan_file(p, layout=k == 0) for k, p in enumerate(paths)]
+    except SwarmAuditError as exc:
+        return exc
+
+
+def open_ref(ref: SnapshotRef, role_map: RoleMap | None = None, columns=None, scans=None) -> Snapshot:
+    """Open the file(s) of one snapshot into one Snapshot (per-rank parts joined).
+
+    ``scans``: what :func:`scan_paths` gave for ``ref.paths`` (else they are scanned here).
+    """
     role_map = role_map or RoleMap()
-    snaps = [registry.open_snapshot(p, columns=columns) for p in ref.paths]
+    scans = scan_paths(ref.paths) if scans is None else scans
+    if isinstance(scans, SwarmAuditError):
+        raise scans
+    snaps = [registry.from_scan(sc, columns) for sc in scans]
     first = snaps[0]
     if len(snaps) == 1:
         return first.with_role_map(role_map)
@@ -155,16 +172,16 @@ def open_ref(ref: SnapshotRef, role_map: RoleMap | None = None, columns=None) ->
     warnings = []
     for s in snaps:
         warnings.extend(s.warnings)
+    steps = {s.step for s in snaps}
+    if len(steps) > 1:
+        raise InputError(ref.path, f"the per-rank files of this snapshot carry different steps "
+                         f"{sorted(x for x in steps if x is not None)}")
     for name in names:
         parts, ranks = [], []
         for i, s in enumerate(snaps):
             if name in s.species:
                 parts.append(s.species[name].with_role_map(role_map))
                 ranks.append(ref.ranks[i] if ref.ranks else i)
-        steps = {s.step for s in snaps}
-        if len(steps) > 1:
-            raise InputError(ref.path, f"the per-rank files of this snapshot carry different steps "
-                             f"{sorted(x for x in steps if x is not None)}")
         species[name] = concat_frames(parts, species=name, rank_values=ranks, source=ref.path)
     return Snapshot(ref.path, species, first.step, first.time, dict(first.meta), first.layout,
                     warnings, list(ref.paths), first.time_unit)
@@ -189,19 +206,44 @@ def _missing_ranks(ref: SnapshotRef, usual: int) -> str | None:
     return f"has {len(ref.paths)} of the {usual} per-rank files the other snapshots have"
 
 
-def _try_open(ref, role_map, usual, follow, now) -> tuple[Snapshot | None, str | None]:
-    """(snapshot, None), or (None, note) for a snapshot left out for now; raises when not following."""
+def _try_open(ref, role_map, usual, follow, now, scans=None) -> tuple[Snapshot | None, str | None]:
+    """(snapshot, None), or (None, note) for a snapshot left out for now; raises when not following.
+
+    ``scans``: the snapshot's :func:`scan_paths` when they were made already (elsewhere)."""
     short = _missing_ranks(ref, usual)
     if short is not None and follow and _is_fresh(ref, now):
         return None, f"{ref.label}: skipped for now, it looks like it is still being written ({short})"
     try:
-        snap = open_ref(ref, role_map)
+        snap = open_ref(ref, role_map, scans=scans)
     except SwarmAuditError as exc:
         if follow and _is_fresh(ref, now):
             return None, (f"{ref.label}: skipped for now, it looks like it is still being "
                           f"written ({_why(exc)})")
         raise
     return snap, None
+
+
+def _scanned(refs, usual, follow, now, scan_map):
+    """Each ref with its :func:`scan_paths` (None where it is skipped before opening), in order.
+
+    ``scan_map(fn, items)`` gives ``fn(item)`` of every item, in order, as they are done (a pool
+    of processes, a cluster); without one the files are scanned here, one ref at a time.
+    """
+    if scan_map is None:
+        for ref in refs:
+            yield ref, None
+        return
+    todo = [ref for ref in refs
+            if not (follow and _missing_ranks(ref, usual) is not None and _is_fresh(ref, now))]
+    wanted = {id(ref) for ref in todo}
+    got = iter(scan_map(scan_paths, [ref.paths for ref in todo]))
+    try:
+        for ref in refs:
+            yield ref, (next(got) if id(ref) in wanted else None)
+    finally:
+        close = getattr(got, "close", None)
+        if close is not None:
+            close()
 
 
 def _why(exc: SwarmAuditError) -> str:
@@ -219,7 +261,8 @@ def _order_key(ref: SnapshotRef, snap: Snapshot, by_step: bool) -> tuple:
     return (1, n if n is not None else -1, ref.label)
 
 
-def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True) -> Run:
+def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True, scan_map=None,
+             on_open=None) -> Run:
     """Find, order and (lazily) open the snapshots of a run.
 
     Snapshots are ordered by their ``step``, else by the last integer in the
@@ -227,25 +270,38 @@ def open_run(spec, role_map: RoleMap | None = None, *, follow: bool = True) -> R
     per-rank snapshot with fewer files than the others, written in the last
     ``FRESH_SECONDS`` is left out with a note: the simulation is most likely
     still writing it (:func:`rescan_run` picks it up later).
+
+    The snapshots are opened in the order of their names. ``scan_map(fn, items)``
+    (see :func:`_scanned`) reads their files' metadata elsewhere; ``on_open(k, total,
+    ref, snapshot)`` hears of each snapshot as it opens (``k``: its place in that order;
+    ``snapshot`` None for one left out for now).
     """
     role_map = role_map or RoleMap()
     skipped: list[str] = []
     refs, source = find_snapshots(spec, skipped)
+    # opened in name order: the first snapshots are known first (the run's order is by step,
+    # when every snapshot stores one, which is nearly always the same order)
+    refs.sort(key=lambda r: _order_key(r, None, False))
     opened: list[tuple[SnapshotRef, Snapshot]] = []
     now = time.time()
     usual = _usual_parts(refs)
-    for ref in refs:
-        stamp = ref.signature()      # before opening: a write meanwhile shows as a change later
-        snap, note = _try_open(ref, role_map, usual, follow, now)
+    stamps = {id(ref): ref.signature() for ref in refs}   # before opening: a write meanwhile shows later
+    for k, (ref, scans) in enumerate(_scanned(refs, usual, follow, now, scan_map)):
+        interrupt.check()
+        snap, note = _try_open(ref, role_map, usual, follow, now, scans)
         if note is not None:
             skipped.append(note)
+            if on_open is not None:
+                on_open(k, len(refs), ref, None)
             continue
-        ref.stamp = stamp
+        ref.stamp = stamps[id(ref)]
         short = _missing_ranks(ref, usual)
         if short is not None:
             skipped.append(f"{ref.label}: {short} (kept: it was last written more than "
                            f"{FRESH_SECONDS:.0f} s ago)")
         opened.append((ref, snap))
+        if on_open is not None:
+            on_open(k, len(refs), ref, snap)
     if not opened:
         if skipped:
             # nothing opens at all: a file being written is the less likely story, so say what

@@ -22,16 +22,18 @@ How a file becomes columns:
 
 from __future__ import annotations
 
+import copy
 import math
 import os
 import threading
 from contextlib import contextmanager
+from dataclasses import dataclass
 
 import numpy as np
 
 from ..core.errors import InputError, SwarmAuditError
 from ..core.frame import Snapshot
-from ..core.column import Column, read_fully
+from ..core.column import Column, native_dtype, read_fully
 from ..core.roles import _VECTOR_STEMS
 from ._columns import (MAX_COMPONENTS, Table, check_fits_memory, component_names, flatten_fields,
                        make_snapshot, native, reject_non_numeric, scalar_value, short_species_names,
@@ -67,6 +69,11 @@ def _text(name) -> str:
 
 def _units(obj) -> str | None:
     import h5py
+    try:
+        if not h5py.h5a.get_num_attrs(obj.id):
+            return None
+    except H5_ERRORS:
+        return None
     # a failed attribute lookup costs HDF5 an error stack: ask whether the name exists first
     for key in ("units", "unit"):
         try:
@@ -120,8 +127,9 @@ class _Node:
 class _Scan:
     """One walk over an open file, collecting tables (nothing but metadata is read)."""
 
-    def __init__(self, path: str):
+    def __init__(self, path: str, layout: bool = True):
         self.path = path
+        self.want_layout = layout     # False: a stored ``blocks`` group is left unread
         self.tables: dict[str, Table] = {}
         self.warnings: list[str] = []
         self.layout = None
@@ -168,7 +176,7 @@ class _Scan:
             return
         try:
             tid = ds.id.get_type()     # the stored type, once: its numpy dtype and its size
-            dtype = tid.dtype
+            dtype = _dtype_of(tid)
         except H5_ERRORS:
             reject_non_numeric(self.path, name, np.dtype("V1"), where + " (a type numpy has no match for)",
                                self.warnings)
@@ -185,8 +193,8 @@ class _Scan:
                     continue
                 label = col if col not in table.loaders else f"{name}/{col}"
                 if reject_non_numeric(self.path, label, fdt, f"field '{col}' of {where}", self.warnings):
-                    table.add(label, shape[0], _loader(self.path, dsname, field=(fpath, comp), dtype=fdt,
-                                                       length=shape[0]), dsname, unit)
+                    table.add(label, shape[0], (dsname, None, (fpath, comp), fdt, None, shape[0]),
+                              dsname, unit)
             return
         if len(shape) > 2 or (len(shape) == 2 and not 1 <= shape[1] <= MAX_COMPONENTS):
             self.warnings.append(f"{where} has shape {shape}, not (N,) or (N, d); left out")
@@ -196,9 +204,8 @@ class _Scan:
             return
         extent = self._check_stored(ds, dsname, dtype, shape, tid)
         for k, col in enumerate(names):
-            table.add(col, shape[0], _loader(self.path, dsname, comp=None if len(shape) == 1 else k,
-                                                  dtype=dtype, extent=extent, length=shape[0]),
-                      dsname, unit)
+            table.add(col, shape[0], (dsname, None if len(shape) == 1 else k, None, dtype, extent,
+                                      shape[0]), dsname, unit)
 
     # groups -> tables ---------------------------------------------------------
     def _members(self, group):
@@ -259,7 +266,7 @@ class _Scan:
             if obj.is_dataset:
                 continue
             if n == "blocks":
-                if self.layout is None:
+                if self.layout is None and self.want_layout:
                     from .layout_files import layout_from_h5group
                     self.layout = layout_from_h5group(obj.hl(), self.path)
                 continue
@@ -516,6 +523,22 @@ class _Extent:
 
 
 _h5_types: dict = {}
+#: stored types met lately, as (HDF5 type, numpy dtype), newest first: comparing a dataset's type
+#: with these costs a fraction of converting it again, and a run's files share a few types
+_recent_types: list = []
+_RECENT_TYPES = 6
+
+
+def _dtype_of(tid):
+    """The numpy dtype of the HDF5 type ``tid`` (plain numeric types looked up among recent ones)."""
+    for known, dt in _recent_types:
+        if tid == known:
+            return dt
+    dt = tid.dtype
+    if dt.kind in "biuf" and dt.names is None and dt.subdtype is None:
+        _recent_types.insert(0, (_h5_type(dt), dt))
+        del _recent_types[_RECENT_TYPES:]
+    return dt
 
 
 def _h5_type(dt):
@@ -536,22 +559,71 @@ _NO_EXTENT = object()
 
 def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=None, extent=None,
             length: int | None = None) -> Column:
-    """Read one column: the whole 1-D dataset, one column slice, or one compound field.
+    """Read one column: the whole 1-D dataset, one column slice, or one compound field
+    (:class:`_DatasetColumn`)."""
+    return _DatasetColumn(path, dsname, comp, field, dtype, extent, length)
 
-    The loader can also read rows ``[start, stop)`` alone (a hyperslab), for
+
+class _DatasetColumn(Column):
+    """One column of an HDF5 dataset: the whole 1-D dataset, one column slice, or one compound field.
+
+    It can also read rows ``[start, stop)`` alone (a hyperslab), for
     partitioned engines that split one big file into row ranges and for
     reductions that stream a column in pieces. A plain 1-D dataset stored
     contiguously is read straight from the file (:class:`_Extent`; the scan
-    gives it as ``extent``, else it is looked up on the first read).
+    gives it as ``extent``, else it is looked up on the first read). A class
+    rather than closures: a run of many files makes one per column of every file.
     """
-    extent = [extent if comp is None and field is None else _NO_EXTENT]
 
-    def load(rows=None, into=None) -> np.ndarray:
+    __slots__ = ("path", "dsname", "comp", "field", "ext")
+
+    def __init__(self, path, dsname, comp, field, dtype, extent, length):
+        self.path, self.dsname, self.comp, self.field = path, dsname, comp, field
+        self.ext = extent if comp is None and field is None else _NO_EXTENT
+        self._read = self._rows = self._rows_into = self._hold = self._direct = self._extent = None
+        self.dtype = None if dtype is None else native_dtype(dtype)
+        self.length = None if length is None else int(length)
+
+    def read(self) -> np.ndarray:
+        return self._load()
+
+    def __call__(self) -> np.ndarray:
+        return self._load()
+
+    @property
+    def can_read_rows(self) -> bool:
+        return True
+
+    def rows(self, start: int, stop: int) -> np.ndarray:
+        return self._load((start, stop))
+
+    def rows_into(self, start: int, stop: int, out: np.ndarray) -> np.ndarray:
+        return self._load((start, stop), out)
+
+    def hold(self):
+        return _hold_fd(self.path) if self.direct() else _hold(self.path)
+
+    def direct(self) -> bool:
+        """True while reads go straight to the file: they need no shared handle and let other threads run."""
+        return isinstance(self.ext, _Extent)
+
+    def file_extent(self):
+        """``(descriptor, offset of row 0, dtype)`` while a hold keeps this unchanged file open."""
+        ext = self.ext
+        if not isinstance(ext, _Extent) or not ext.dtype.isnative:
+            return None
+        held = _fds.get(self.path)
+        if held is None or held[2] != ext.stamp:
+            return None
+        return held[0], ext.offset, ext.dtype
+
+    def _load(self, rows=None, into=None) -> np.ndarray:
+        path, dsname, comp, field = self.path, self.dsname, self.comp, self.field
         try:
-            ext = extent[0]
+            ext = self.ext
             if ext is None:     # first read: look the storage up (metadata only)
                 with _dataset(path, dsname) as ds:
-                    ext = extent[0] = _Extent.of(ds, path) or _NO_EXTENT
+                    ext = self.ext = _Extent.of(ds, path) or _NO_EXTENT
             if ext is not _NO_EXTENT:
                 start, stop, _ = (slice(None) if rows is None else slice(*rows)).indices(ext.length)
                 count = max(0, stop - start)
@@ -566,7 +638,7 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
                     arr = native(arr)
                     arr.flags.writeable = False
                     return arr
-                extent[0] = None    # the file changed: h5py reads it, and the storage is looked up again
+                self.ext = None    # the file changed: h5py reads it, and the storage is looked up again
             with _dataset(path, dsname) as ds:
                 sl = slice(None) if rows is None else slice(*rows)
                 n = len(range(*sl.indices(int(ds.shape[0]))))
@@ -598,25 +670,6 @@ def _loader(path: str, dsname: str, comp: int | None = None, field=None, dtype=N
         arr = native(np.ascontiguousarray(arr))
         arr.flags.writeable = False     # like the other readers' columns: the frame's cache is shared
         return arr
-    def direct() -> bool:
-        """True while reads go straight to the file: they need no shared handle and let other threads run."""
-        return isinstance(extent[0], _Extent)
-
-    def file_extent():
-        """``(descriptor, offset of row 0, dtype)`` while a hold keeps this unchanged file open."""
-        ext = extent[0]
-        if not isinstance(ext, _Extent) or not ext.dtype.isnative:
-            return None
-        held = _fds.get(path)
-        if held is None or held[2] != ext.stamp:
-            return None
-        return held[0], ext.offset, ext.dtype
-
-    return Column(lambda: load(), dtype=dtype,
-                  length=length, rows=lambda start, stop: load((start, stop)),
-                  rows_into=lambda start, stop, into: load((start, stop), into),
-                  hold=lambda: _hold_fd(path) if direct() else _hold(path),
-                  direct=direct, file_extent=file_extent)
 
 
 def _has_signature(path: str) -> bool:
@@ -643,17 +696,23 @@ class HDF5Reader:
         return _has_signature(os.fspath(path))
 
     def open(self, path, columns=None) -> Snapshot:
+        return self.from_scan(self.scan(path), columns)
+
+    def scan(self, path, layout: bool = True) -> "FileScan":
+        """What :meth:`open` learns from the file's metadata, as plain data (it pickles, so
+        another process can scan); :meth:`from_scan` makes the Snapshot of it. ``layout=False``
+        leaves a stored ``blocks`` group unread (a per-rank part whose first part gives the layout)."""
         import h5py
         path = os.fspath(path)
         try:
-            fh = h5py.File(path, "r")
+            fid = h5py.h5f.open(os.fsencode(path), h5py.h5f.ACC_RDONLY, _fapl())
         except H5_ERRORS as exc:
             raise InputError(path, _problem(exc)) from None
-        scan = None
+        scan = root = obj = None
         try:
             try:
-                scan = _Scan(path)
-                root = _Node(h5py.h5o.open(fh.id, b"/"), "/", False)
+                scan = _Scan(path, layout)
+                root = _Node(h5py.h5o.open(fid, b"/"), "/", False)
                 items = _attr_items(root)
                 for n, obj in scan._members(root):
                     if obj.is_dataset and obj.shape is not None and len(obj.shape) == 0:
@@ -665,21 +724,65 @@ class HDF5Reader:
                         # a single-species file may keep its species attributes at the root
                         t.attrs.update(species_constants(meta))
             finally:
-                # the scan's objects go first, then the file (without h5py's sweep over every
-                # object still open in it: the scan holds the only ones)
+                # the scan's objects go first, then the file (opened without h5py's File, so
+                # without its sweep over every object still open in it: the scan holds the only ones)
                 if scan is not None:
                     scan._seen.clear()
                 obj = root = None
                 try:
-                    fh.id.close()
+                    fid.close()
                 except H5_ERRORS:
-                    fh.close()
+                    pass
         except SwarmAuditError:
             raise
         except MemoryError:
             raise InputError(path, "its metadata does not fit in memory (the file may be damaged)") from None
         except H5_ERRORS as exc:
             raise InputError(path, _problem(exc)) from None
-        return make_snapshot(path, short_species_names(scan.tables), columns=columns, step=step,
-                             time=time, meta=meta,
-                             layout=scan.layout, warnings=scan.warnings, time_unit=time_unit)
+        return FileScan(path, short_species_names(scan.tables), step, time, meta, time_unit,
+                        scan.layout, scan.warnings)
+
+    def from_scan(self, scan: "FileScan", columns=None) -> Snapshot:
+        """The Snapshot of a :meth:`scan`: a Column per dataset column (nothing is read)."""
+        tables = {}
+        for label, t in scan.tables.items():
+            built = copy.copy(t)
+            built.loaders = {name: _loader(scan.path, *spec) for name, spec in t.loaders.items()}
+            tables[label] = built
+        layout = scan.layout
+        if layout is not None:   # one object per distinct layout, also when scanned in another process
+            from .layout_files import checked_layout
+            layout = checked_layout(layout)
+        return make_snapshot(scan.path, tables, columns=columns, step=scan.step, time=scan.time,
+                             meta=scan.meta, layout=layout, warnings=scan.warnings,
+                             time_unit=scan.time_unit)
+
+
+@dataclass
+class FileScan:
+    """One HDF5 file's metadata: its tables (each column as the arguments of :func:`_loader`),
+    scalars, stored layout and warnings. Plain data, so it can come back from another process."""
+
+    path: str
+    tables: dict
+    step: int | None
+    time: float | None
+    meta: dict
+    time_unit: str
+    layout: object
+    warnings: list
+
+
+_fapl_made = None
+
+
+def _fapl():
+    """File access properties as h5py's ``File`` sets them by default (made once)."""
+    global _fapl_made
+    if _fapl_made is None:
+        import h5py
+        plist = h5py.h5p.create(h5py.h5p.FILE_ACCESS)
+        plist.set_libver_bounds(h5py.h5f.LIBVER_EARLIEST, h5py.h5f.LIBVER_LATEST)
+        plist.set_alignment(1, 1)
+        _fapl_made = plist
+    return _fapl_made

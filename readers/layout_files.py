@@ -12,7 +12,10 @@ attributes ``domain_lower``, ``domain_upper``, ``cells``, ``periodic``.
 
 from __future__ import annotations
 
+import copy
+import hashlib
 import os
+import threading
 
 import numpy as np
 
@@ -92,12 +95,14 @@ def read_layout_csv(path: str) -> BlockLayout:
     return _build(path, lower, upper, level, rank, dlo, dhi, cells, periodic, block)
 
 
-def _build(path, lower, upper, level, rank, dlo, dhi, cells, periodic, block=None) -> BlockLayout:
+def _build(path, lower, upper, level, rank, dlo, dhi, cells, periodic, block=None,
+           check=True) -> BlockLayout:
     d = lower.shape[1]
     per = tuple(a in periodic for a in AXES[:d])
     try:
         lay = BlockLayout(lower, upper, level, rank, dlo, dhi, cells, per, block_id=block, source=path)
-        lay.validate()
+        if check:
+            lay.validate()
     except SwarmAuditError as exc:
         raise InputError(path, str(exc)) from None
     except ValueError as exc:
@@ -105,28 +110,112 @@ def _build(path, lower, upper, level, rank, dlo, dhi, cells, periodic, block=Non
     return lay
 
 
+#: what h5py and the HDF5 library raise on a damaged or unusual ``blocks`` group
+_H5_ERRORS = (OSError, KeyError, ValueError, TypeError, RuntimeError, IndexError, AttributeError)
+
+#: layouts already built and checked, by their stored content (every per-rank file of a run
+#: usually stores the same one): the checks and lookup grids are made once per distinct layout
+_SEEN_MAX = 64
+_seen: dict = {}
+_seen_lock = threading.Lock()
+
+
+def _h5_read(gid, name: str, dtype, kind: str):
+    """Dataset or attribute ``name`` of the object ``gid`` (low-level id) read whole and converted by
+    HDF5 to ``dtype``, or None when there is none. h5py's high-level objects cost several times
+    more per call, and a run reads one ``blocks`` group per file."""
+    import h5py
+    key = name.encode()
+    if kind == "dataset":
+        if not gid.links.exists(key):
+            return None
+        obj = h5py.h5d.open(gid, key)
+    else:
+        if not h5py.h5a.exists(gid, key):
+            return None
+        obj = h5py.h5a.open(gid, key)
+    out = np.empty(obj.shape, dtype)
+    mtype = h5py.h5t.py_create(out.dtype)
+    if kind == "dataset":
+        obj.read(h5py.h5s.ALL, h5py.h5s.ALL, out, mtype=mtype)
+    else:
+        obj.read(out, mtype=mtype)
+    return out
+
+
 def layout_from_h5group(group, path: str) -> BlockLayout:
     """A layout from an open h5py group named ``blocks``."""
+    gid = group.id
     try:
-        lower = np.asarray(group["lower"][()], dtype=np.float64)
-        upper = np.asarray(group["upper"][()], dtype=np.float64)
-        n = lower.shape[0]
-        level = np.asarray(group["level"][()], dtype=np.int64) if "level" in group else np.zeros(n, np.int64)
-        rank = np.asarray(group["rank"][()], dtype=np.int64) if "rank" in group else np.zeros(n, np.int64)
-        block = np.asarray(group["id"][()], dtype=np.int64) if "id" in group else None
+        lower = _h5_read(gid, "lower", np.float64, "dataset")
+        upper = _h5_read(gid, "upper", np.float64, "dataset")
+        if lower is None or upper is None:
+            raise KeyError(f"no dataset '{'lower' if lower is None else 'upper'}'")
+        n = lower.shape[0] if lower.ndim else 0
+        level = _h5_read(gid, "level", np.int64, "dataset")
+        rank = _h5_read(gid, "rank", np.int64, "dataset")
+        level = np.zeros(n, np.int64) if level is None else level
+        rank = np.zeros(n, np.int64) if rank is None else rank
+        block = _h5_read(gid, "id", np.int64, "dataset")
     except KeyError as exc:
         raise InputError(path, f"the 'blocks' group lacks a dataset: {exc}") from None
-    except (TypeError, ValueError, OSError) as exc:
+    except _H5_ERRORS as exc:
         raise InputError(path, f"the 'blocks' group cannot be read: {exc}") from None
     if lower.ndim != 2 or upper.shape != lower.shape or level.shape != (n,) or rank.shape != (n,):
         raise InputError(path, "the 'blocks' group needs lower/upper of shape (n, d) and level/rank of shape (n,)")
-    attrs = group.attrs
-    dlo = np.asarray(attrs["domain_lower"], dtype=np.float64) if "domain_lower" in attrs else lower.min(axis=0)
-    dhi = np.asarray(attrs["domain_upper"], dtype=np.float64) if "domain_upper" in attrs else upper.max(axis=0)
-    cells = (np.asarray(attrs["cells"], dtype=np.int64) if "cells" in attrs
-             else _infer_cells(lower, upper, level, dlo, dhi))
-    periodic = _parse_periodic(attrs.get("periodic"))
-    return _build(path, lower, upper, level, rank, dlo, dhi, cells, periodic, block)
+    try:
+        dlo = _h5_read(gid, "domain_lower", np.float64, "attribute")
+        dhi = _h5_read(gid, "domain_upper", np.float64, "attribute")
+        cells = _h5_read(gid, "cells", np.int64, "attribute")
+        periodic = _parse_periodic(group.attrs["periodic"]) if "periodic" in group.attrs else ()
+    except _H5_ERRORS as exc:
+        raise InputError(path, f"the attributes of the 'blocks' group cannot be read: {exc}") from None
+    dlo = lower.min(axis=0) if dlo is None else dlo
+    dhi = upper.max(axis=0) if dhi is None else dhi
+    cells = _infer_cells(lower, upper, level, dlo, dhi) if cells is None else cells
+    return checked_layout(_build(path, lower, upper, level, rank, dlo, dhi, cells, periodic, block,
+                                 check=False))
+
+
+def checked_layout(lay: BlockLayout) -> BlockLayout:
+    """``lay`` validated, or a copy of the same layout met before (its checks and lookup grids
+    shared), with ``lay``'s source. Every per-rank file of a run usually stores one layout, and a
+    layout scanned in another process arrives without its lookup grids: each distinct layout is
+    checked, and its grids built, once."""
+    key = _content_key(lay)
+    with _seen_lock:
+        known = _seen.get(key)
+    if known is None:
+        try:
+            lay.validate()
+        except SwarmAuditError as exc:
+            raise InputError(lay.source, str(exc)) from None
+        except ValueError as exc:
+            raise InputError(lay.source, f"the layout's arrays do not fit together: {exc}") from None
+        known = copy.copy(lay)
+        for name in _ARRAYS:
+            getattr(known, name).flags.writeable = False   # shared from now on: never written
+        with _seen_lock:
+            if len(_seen) >= _SEEN_MAX:
+                _seen.pop(next(iter(_seen)))
+            known = _seen.setdefault(key, known)
+    out = copy.copy(known)
+    out.source = lay.source
+    return out
+
+
+_ARRAYS = ("lower", "upper", "level", "rank", "block_id", "domain_lower", "domain_upper", "cells")
+
+
+def _content_key(lay: BlockLayout) -> bytes:
+    """What a layout is, as one digest: its arrays (dtype, shape and bytes) and settings."""
+    h = hashlib.sha256()
+    for name in _ARRAYS:
+        a = getattr(lay, name)
+        h.update(f"{name}{a.dtype.str}{a.shape}".encode())
+        h.update(np.ascontiguousarray(a).tobytes())
+    h.update(repr((lay.periodic, lay.ratio, lay.regular)).encode())
+    return h.digest()
 
 
 def read_layout(path: str) -> BlockLayout:

@@ -7,6 +7,14 @@ A reader is a class with
 * ``can_open(path) -> bool`` — a cheap look at the file (magic bytes, header),
 * ``open(path, columns=None) -> Snapshot`` — metadata now, columns on demand.
 
+A reader may also split ``open`` in two, so that the metadata of many files can be
+read elsewhere (another process or machine) and the snapshots made here:
+
+* ``scan(path, layout=True)`` — the metadata as plain data that pickles; with
+  ``layout=False`` a stored block layout may be left unread (the other per-rank
+  parts of a snapshot whose first part gives its layout);
+* ``from_scan(scan, columns=None) -> Snapshot`` — what ``open`` would have given.
+
 The built-in readers register exactly as a third party's would, in
 ``pyproject.toml``; nothing here names them.
 """
@@ -90,5 +98,25 @@ def reader_for(path: str):
                      "known endings: " + ", ".join(sorted(suffixes())))
 
 
-def open_snapshot(path: str, columns=None) -> Snapshot:
-    return reader_for(path).open(path, columns=columns)
+def open_snapshot(path: str, columns=None, layout: bool = True) -> Snapshot:
+    """The snapshot in ``path``; ``layout=False``: its stored layout is not needed (a reader that
+    scans may leave it unread, the others read it as usual)."""
+    return from_scan(scan_file(path, layout), columns)
+
+
+def scan_file(path: str, layout: bool = True) -> tuple:
+    """``(reader name, scan)`` of a reader that scans, else ``(reader name, path)`` for
+    :func:`from_scan` to open. Plain data either way (it pickles)."""
+    reader = reader_for(path)
+    if callable(getattr(reader, "scan", None)):
+        return reader.name, reader.scan(path, layout=layout)
+    return reader.name, path
+
+
+def from_scan(scanned: tuple, columns=None) -> Snapshot:
+    """The Snapshot of :func:`scan_file`'s answer."""
+    name, got = scanned
+    reader = next(r for r in readers() if r.name == name)
+    if isinstance(got, (str, os.PathLike)):
+        return reader.open(got, columns=columns)
+    return reader.from_scan(got, columns=columns)

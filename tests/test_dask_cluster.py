@@ -153,6 +153,7 @@ def test_inspect_check_and_export_on_the_cluster_equal_the_in_memory_run(cluster
         assert ref[0] == got[0] == 0, got[2]
         assert got[1:] == ref[1:]                    # stdout and stderr
     assert json.loads(got[1])["snapshots"]
+    assert "scan_paths" in _prefixes(client)         # the files' metadata was read on the workers
 
     # check: the run loses and gains particles, so counts leave a tight band (exit 1)
     before = _executed(client)

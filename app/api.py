@@ -27,7 +27,7 @@ from .view_policy import DEFAULT_CMAP, DEFAULT_SCALING
 __all__ = ["open_run", "AuditedRun", "CheckOutcome", "CompareOutcome"]
 
 #: ``view(which)``: the whole dashboard, one particle view, or one side panel
-VIEWS = ("dashboard", "space", "phase", "blocks", "migration", "drift", "histogram")
+VIEWS = ("dashboard", "space", "phase", "blocks", "migration", "drift", "histogram", "compare")
 
 
 def open_run(path, **options) -> "AuditedRun":
@@ -146,6 +146,7 @@ class AuditedRun:
         self._inputs = dict(input_options or {})
         self._migration = None
         self._server = None
+        self._last_dashboard = None
 
     # what is in it ------------------------------------------------------------------
     @property
@@ -352,11 +353,14 @@ class AuditedRun:
         """The dashboard, or one of its views, as a Panel object for a notebook.
 
         ``which`` is ``dashboard``, ``space``, ``phase`` or a side panel
-        (``blocks``, ``migration``, ``drift``, ``histogram``; the tabs' names). ``state`` sets the
+        (``blocks``, ``migration``, ``drift``, ``histogram``, ``compare``; the tabs' names). ``state`` sets the
         view as a shared link does, by the state's names or the link's keys:
         ``snapshot=3`` (or ``snap=3``), ``species="all"``, ``space_x="x"``,
         ``phase_y="ux"``, ``scaling="log"``, ``cmap="viridis"``,
         ``blocks="tinted"``, ``space_xr=(0, 0.5)``, ``rtol=1e-3`` ...
+        ``reference=`` another run (an AuditedRun, or a path opened with this run's
+        options) compares with it as the dashboard does: ``show="reference"`` or
+        ``"difference"``, ``pair_by="time"``, and the Compare tab (``which="compare"``).
         A value that is not a choice is an OptionError.
         """
         import panel as pn
@@ -370,9 +374,17 @@ class AuditedRun:
         if self._server is None:      # this run's own server state, shared by its views
             self._server = ServerState()
             self._server.add(self.name, self.ctx)
+        query = {}
+        ref = state.pop("reference", state.pop("ref", None))
+        if ref not in (None, ""):
+            other = ref if isinstance(ref, AuditedRun) else open_run(ref, **self._inputs)
+            runs = self._server.runs
+            served = next((runs[n] for n in runs.names if runs[n].ctx is other.ctx), None)
+            if served is None:
+                served = self._server.add(other.name, other.ctx)
+            query["ref"] = served.name
         view_state = ViewState(self._server.runs)
         inverse = {v: k for k, v in URL_KEYS.items()}
-        query = {}
         for key, value in state.items():
             name = inverse.get(key, key)
             if name not in URL_KEYS:
@@ -393,6 +405,7 @@ class AuditedRun:
             raise OptionError(f"view(): {bad}={state.get(bad, state.get(refused[0]))!r} is not one "
                               f"of the choices for this run{choices}")
         dash = Dashboard(view_state, self._server)
+        self._last_dashboard = dash          # the dashboard behind the last view (its state, its views)
         if which == "dashboard":
             return dash.page()
         if which in ("space", "phase"):
@@ -401,7 +414,8 @@ class AuditedRun:
         panel = {"blocks": dash.side.blocks_panel,
                  "migration": lambda: pn.Column(pn.panel(dash.side.moves_panel), dash.side._moves),
                  "drift": lambda: pn.Column(pn.panel(dash.side.totals_panel), dash.side._totals),
-                 "histogram": dash.side.histogram_panel}[which]
+                 "histogram": dash.side.histogram_panel,
+                 "compare": lambda: pn.Column(pn.panel(dash.side.compare_panel), dash.side._compare)}[which]
         return pn.Column(pn.panel(panel) if which in ("blocks", "histogram") else panel(),
                          sizing_mode="stretch_width")
 

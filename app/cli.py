@@ -81,6 +81,10 @@ def build_parser() -> argparse.ArgumentParser:
     e.add_argument("--view", metavar="LINK",
                    help="a dashboard link (or its query): also draw the two views of that state, "
                         "as the screen shows them")
+    e.add_argument("--reference", metavar="RUN",
+                   help="the run a --view link compares with (its reference): the link's views then "
+                        "show the reference or the difference as the screen does; the run options "
+                        "apply to it too")
     e.add_argument("--space", metavar="A,B", help="columns of the spatial view (default: first two position axes)")
     e.add_argument("--phase", metavar="A,B", help="columns of the phase-space view (default: x against its momentum)")
     e.add_argument("--range", action="append", default=[], metavar="COL=LO,HI",

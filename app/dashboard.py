@@ -236,7 +236,10 @@ class Dashboard(param.Parameterized):
             if show != "candidate" and ref_frame is None:
                 status.object = f"⚠ {ref_problem}"
                 return self._empty_overlay(which, view.x_range, view.y_range, ref_problem)
-            agg = view.aggregate(frame if show != "reference" else ref_frame)
+            ref_title = (view_policy.view_title(which, s.species,
+                                                f"{s.reference} {s.reference_run.describe(ref_i)}")
+                         if show == "reference" else "")
+            view, agg = view.shown(show, frame, ref_frame, ref_title)
         except SwarmAuditError as exc:
             status.object = f"⚠ {exc}"
             self.problem.object = f"**Snapshot {j} cannot be shown.** {exc}"
@@ -244,16 +247,7 @@ class Dashboard(param.Parameterized):
             xr_ = tuple(x_range) if x_range and not view_policy.range_problem(x_range) else (0, 1)
             yr_ = tuple(y_range) if y_range and not view_policy.range_problem(y_range) else (0, 1)
             return self._empty_overlay(which, xr_, yr_, str(exc))
-        if show == "reference":
-            view = view.of_reference(view_policy.view_title(
-                which, s.species, f"{s.reference} {s.reference_run.describe(ref_i)}"))
-            img = view.image(agg)
-        elif show == "difference":
-            ref_agg = view.aggregate(ref_frame)
-            agg = view.difference(ref_agg, agg)
-            img = view.difference_image(agg)
-        else:
-            img = view.image(agg)
+        img = view.difference_image(agg) if show == "difference" else view.image(agg)
         self.shown[which] = (view, agg)
         img = img.opts(backend="bokeh", width=VIEW_W, height=VIEW_H,
                        tools=["hover", "box_select"], active_tools=["wheel_zoom"],

@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..core import interrupt
-from ..core.errors import InputError, OptionError
+from ..core.errors import InputError, OptionError, SwarmAuditError
 from ..core.frame import transient_columns
 from ..core.outputs import FIGURE_DIR, REPORT_NAME, TABLE_NAMES
 from . import view_policy as policy
@@ -281,7 +281,7 @@ def _caption(view, agg, frame, prefix=""):
            f"{view.grid[0]} × {view.grid[1]} grid, {view.scaling} colour scale, colour map {view.cmap}"]
     if nonfinite:
         cap.append(f"{nonfinite:,} with NaN/inf coordinates left out")
-    if view.reduction == "count":
+    if view.reduction == "count" and not view.diverging:
         outside = frame.length - nonfinite - int(np.nansum(agg.values))
         if view.slab is None and outside > 0:
             cap.append(f"{outside:,} outside the drawn range")
@@ -353,8 +353,12 @@ class _Plan:
 
 
 def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = False,
-               stream=None, movie_writer=None) -> ExportResult:
-    """Write figures, tables and report.html into ``opts.out``; return what was written."""
+               stream=None, movie_writer=None, reference=None) -> ExportResult:
+    """Write figures, tables and report.html into ``opts.out``; return what was written.
+
+    ``reference`` is the context of the run a ``--view`` link compares with (its ``ref=``):
+    with it the link's views show what the screen shows (reference, or candidate minus
+    reference); without it such a link draws this run, with a note."""
     t0 = time.perf_counter()
     out = os.path.abspath(opts.out)
     if os.path.exists(out) and not os.path.isdir(out):
@@ -416,13 +420,16 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
                                                                 f"{kind}_{_safe(sp)}.{opts.movie}"))))
     report_path = plan.file(REPORT_NAME)
     ctx.layout(chosen[0])   # finds a layout file beside the run, which is an input too
-    guard_outputs(plan.paths, input_files(ctx, args))
+    guard_outputs(plan.paths, input_files(ctx, args)
+                  | (input_files(reference, args) if reference is not None else set()))
     guard_run_folder(out, ctx)
+    if reference is not None:
+        guard_run_folder(out, reference)
     plan.begin()
     try:
         _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
                        migration_figs, drift_fig, deposit_figs, table_paths, report_path,
-                       keep_aggregates, stream, link_figs, movies, args, movie_writer)
+                       keep_aggregates, stream, link_figs, movies, args, movie_writer, reference)
     except BaseException:
         plan.abort()
         raise
@@ -440,7 +447,7 @@ def export_run(ctx, opts: ExportOptions, args=None, *, keep_aggregates: bool = F
 def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_figs,
                    migration_figs, drift_fig, deposit_figs, table_paths, report_path,
                    keep_aggregates, stream, link_figs=(), movies=(), args=None,
-                   movie_writer=None) -> None:
+                   movie_writer=None, reference=None) -> None:
     """Draw and write everything into the plan's staging folder."""
     from . import figure_data as D
     from .figure_writer import FigureWriter
@@ -515,22 +522,38 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
                 add_density(rec, view, agg)
                 bar.step(f"{kind} view {i} {sp}")
         if link_figs:
-            state = export_state(runs, opts, 0, runs[runs.names[0]].species_names(0)[-1])
             from .state import link_query
-            state.apply_query(link_query(opts.view.split("?", 1)[-1]))
+            query = link_query(opts.view.split("?", 1)[-1])
+            wanted = query.get("ref")
+            if wanted and reference is not None:      # the reference under the name the link gives it
+                query["ref"] = runs.add(wanted, reference).name
+            elif wanted:
+                notes.append(f"--view: the link compares with the run '{wanted}'; give "
+                             "--reference RUN to draw it (these views show this run alone)")
+                query.pop("ref")
+            state = export_state(runs, opts, 0, runs[runs.names[0]].species_names(0)[-1])
+            state.apply_query(query)
             for note in state.link_notes:
                 notes.append(f"--view: {note}")
+            show = state.show if state.reference else "candidate"
             for kind, path in link_figs:
                 try:
                     frame = state.frame()
-                    view = policy.particle_view(state, kind, frame=frame)   # the screen's grid
-                    with transient_columns([frame]):
-                        agg = view.aggregate(frame)
-                except (InputError, OptionError) as exc:
+                    ref_i, ref_frame, ref_title = None, None, ""
+                    if state.reference:
+                        ref_i, ref_frame = state.reference_frame(state.snapshot)
+                        ref_title = policy.view_title(kind, state.species, f"{state.reference} "
+                                                      f"{state.reference_run.describe(ref_i)}")
+                    frames = [frame] + ([ref_frame] if ref_frame is not None else [])
+                    view = policy.particle_view(state, kind, frame=frame, frames=frames)  # the screen's
+                    with transient_columns(frames):
+                        view, agg = view.shown(show, frame, ref_frame, ref_title)
+                except (InputError, OptionError, SwarmAuditError) as exc:
                     notes.append(f"--view: the {kind} view of the link cannot be drawn: {exc}")
                     bar.step()
                     continue
-                add_density(_view_record(kind, path, view, agg, frame, state.snapshot,
+                drawn = ref_frame if show == "reference" else frame
+                add_density(_view_record(kind, path, view, agg, drawn, state.snapshot,
                                          state.species, keep_aggregates, prefix="the link's "),
                             view, agg)
                 bar.step(f"link {kind} view")
@@ -808,7 +831,16 @@ def run_export(ctx, args, movie_writer=None) -> int:
     ``movie_writer`` is ``movie.write_movie`` (passed in: the movie module builds on this one).
     """
     opts = ExportOptions.from_args(args)
-    res = export_run(ctx, opts, args, movie_writer=movie_writer)
+    reference = None
+    if getattr(args, "reference", None):
+        if not opts.view:
+            raise OptionError("--reference is the run a --view link compares with; give --view LINK too")
+        import copy
+        from .options import context_from_options
+        one = copy.copy(args)
+        one.run = [args.reference]
+        reference = context_from_options(one)
+    res = export_run(ctx, opts, args, movie_writer=movie_writer, reference=reference)
     nfig = len(res.figures)
     print(f"swarmaudit export: wrote {nfig} figure{'s' if nfig != 1 else ''}, "
           f"{len(res.tables)} tables and {REPORT_NAME} to {res.out} in {res.seconds:.1f} s")

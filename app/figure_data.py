@@ -65,7 +65,10 @@ def density_data(view, agg) -> tuple[np.ndarray, tuple]:
     """(values drawn, extent x0, x1, y0, y1) of a particle view's aggregate: blank bins NaN,
     rows from the lowest y up."""
     from .colours import shown_values
-    data = shown_values(agg.values, view.reduction, view.scaling)
+    if view.diverging:       # a difference: zero is a value, NaN is blank
+        data = np.asarray(agg.values, dtype=np.float64)
+    else:
+        data = shown_values(agg.values, view.reduction, view.scaling)
     ydim, xdim = agg.dims[:2]
     xs = agg.attrs.get("x_range") or (float(agg.coords[xdim][0]), float(agg.coords[xdim][-1]))
     ys = agg.attrs.get("y_range") or (float(agg.coords[ydim][0]), float(agg.coords[ydim][-1]))

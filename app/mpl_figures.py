@@ -264,7 +264,10 @@ def show_density(figure: ImageFigure, view, agg, *, title=None, norm=None) -> Im
 
 def show_values(figure: ImageFigure, view, data, extent, *, title=None, norm=None) -> ImageFigure:
     """Draw the values of a density view (``figure_data.density_data``) into ``figure``."""
-    if norm is None:
+    if norm is None and view.diverging:       # a difference: limits symmetric about zero
+        from .view_policy import difference_limits
+        norm, _ = colours.scale_norm([data], "linear", vrange=difference_limits(data))
+    elif norm is None:
         norm, _ = colours.scale_norm([data], view.scaling)
     return figure.show(data, norm, view.title if title is None else title, extent=extent)
 
@@ -425,7 +428,7 @@ def _image_key(kind, payload):
     if kind == "density":
         v = payload[0]
         return (kind, v.xcol, v.ycol, v.grid, v.x_range, v.y_range, v.xlabel, v.ylabel, v.clabel,
-                v.cmap, v.scaling, v.equal)
+                v.cmap, v.scaling, v.equal, v.diverging)
     m = payload
     return (kind, m.grid.shape, m.bounds, m.xlabel, m.ylabel, m.value_label, m.cmap)
 

@@ -252,41 +252,22 @@ class SidePanels(param.Parameterized):
 
     # comparison with a reference run -------------------------------------------------------
     def pairing(self):
-        """How the reference's snapshots pair with the run in view's (audit.compare.pair_snapshots,
-        the rule of ``swarmaudit compare``), or None without a reference."""
+        """``ViewState.reference_pairing``, kept in the server's shared results."""
         s = self.state
         ref = s.reference_run
         if ref is None:
             return None
         cand = s.served
         key = ("pairing", _served_key(ref), _served_key(cand), s.pair_by, ref.version, cand.version)
-        from ..audit.compare import pair_snapshots
-        return self.results.cached(key, lambda: pair_snapshots(ref.ctx, cand.ctx, s.pair_by))
+        return self.results.cached(key, s.reference_pairing)
 
     def reference_snapshot(self, j: int) -> int:
-        """The reference snapshot paired with snapshot ``j`` of the run in view.
-
-        Raises SwarmAuditError (worded for the page) when there is no reference, the runs
-        cannot be paired, or snapshot ``j`` has no partner.
-        """
-        s = self.state
-        pairing = self.pairing()
-        if pairing is None:
-            raise SwarmAuditError("no reference run is chosen")
-        for i, jj in pairing.pairs:
-            if jj == int(j):
-                return i
-        raise SwarmAuditError(f"snapshot {j} of {s.run} has no partner in {s.reference} "
-                              f"(paired by {s.pair_by})")
+        """``ViewState.reference_snapshot`` with the shared pairing."""
+        return self.state.reference_snapshot(j, self.pairing())
 
     def reference_frame(self, j: int):
-        """(reference snapshot, its frame of the species in view) paired with snapshot ``j``."""
-        s = self.state
-        i = self.reference_snapshot(j)
-        ref = s.reference_run
-        if s.species != ALL_SPECIES and s.species not in ref.species_names(i):
-            raise SwarmAuditError(f"species '{s.species}' is not in {s.reference}")
-        return i, ref.frame(i, s.species)
+        """``ViewState.reference_frame`` with the shared pairing."""
+        return self.state.reference_frame(j, self.pairing())
 
     @param.depends("state.run", "state.reference", "state.pair_by", "state.snapshot",
                    "state.species", "state.run_revision", "state.data_revision")

@@ -543,6 +543,40 @@ class ViewState(param.Parameterized):
         """The served run the run in view is compared with, or None."""
         return self._runs[self.reference] if self.reference else None
 
+    def reference_pairing(self):
+        """How the reference's snapshots pair with the run in view's (audit.compare.pair_snapshots,
+        the rule of ``swarmaudit compare``), or None without a reference."""
+        ref = self.reference_run
+        if ref is None:
+            return None
+        from ..audit.compare import pair_snapshots
+        return pair_snapshots(ref.ctx, self.served.ctx, self.pair_by)
+
+    def reference_snapshot(self, j: int, pairing=None) -> int:
+        """The reference snapshot paired with snapshot ``j`` of the run in view.
+
+        ``pairing`` is ``reference_pairing()`` when the caller keeps one. Raises
+        SwarmAuditError (worded for the page) when there is no reference, the runs cannot
+        be paired, or snapshot ``j`` has no partner.
+        """
+        pairing = self.reference_pairing() if pairing is None else pairing
+        if pairing is None:
+            raise SwarmAuditError("no reference run is chosen")
+        for i, jj in pairing.pairs:
+            if jj == int(j):
+                return i
+        raise SwarmAuditError(f"snapshot {j} of {self.run} has no partner in {self.reference} "
+                              f"(paired by {self.pair_by})")
+
+    def reference_frame(self, j: int, pairing=None):
+        """(reference snapshot, its frame of the species in view) paired with snapshot ``j``
+        (``reference_snapshot``; SwarmAuditError also when the reference lacks the species)."""
+        i = self.reference_snapshot(j, pairing)
+        ref = self.reference_run
+        if self.species != ALL_SPECIES and self.species not in ref.species_names(i):
+            raise SwarmAuditError(f"species '{self.species}' is not in {self.reference}")
+        return i, ref.frame(i, self.species)
+
     def _drop_selection(self, view):
         return {"select_box": None, "select_view": ""} if self.select_view == view else {}
 

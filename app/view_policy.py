@@ -323,6 +323,7 @@ class ParticleView:
     ylabel: str
     clabel: str
     notes: tuple[str, ...] = field(default=())
+    diverging: bool = False        # draws a difference of two runs (of_difference)
 
     def aggregate(self, frame, mask=None):
         """The aggregate behind the picture (the image accumulator, through render.aggregate_points)."""
@@ -360,20 +361,42 @@ class ParticleView:
                          ref_particles=ref_agg.attrs.get("particles", 0))
         return out
 
+    def of_difference(self) -> "ParticleView":
+        """This view drawing a difference (``difference``): DIFFERENCE_CMAP, a linear scale
+        centred on zero (``difference_limits``), a zero difference drawn, not left blank."""
+        return replace(self, cmap=DIFFERENCE_CMAP, scaling="linear", diverging=True,
+                       title=f"{self.title} · {SHOW_LABELS['difference']}",
+                       clabel=f"{DIFFERENCE_MEANS}: {self.clabel}")
+
     def difference_image(self, diff):
         """The picture of a difference: DIFFERENCE_CMAP, linear, limits symmetric about zero."""
         from . import render
+        v = self if self.diverging else self.of_difference()
         lo, hi = difference_limits(diff.values)
-        img = render.density_image(diff, cmap=DIFFERENCE_CMAP, scaling="linear",
-                                   title=f"{self.title} · {SHOW_LABELS['difference']}",
-                                   xlabel=self.xlabel, ylabel=self.ylabel,
-                                   clabel=f"{DIFFERENCE_MEANS}: {self.clabel}")
+        img = render.density_image(diff, cmap=v.cmap, scaling="linear", title=v.title,
+                                   xlabel=v.xlabel, ylabel=v.ylabel, clabel=v.clabel)
         return img.opts(clim=(lo, hi), backend="bokeh").opts(
-            clim=(lo, hi), aspect="equal" if self.equal else "auto", backend="matplotlib")
+            clim=(lo, hi), aspect="equal" if v.equal else "auto", backend="matplotlib")
 
     def of_reference(self, title: str) -> "ParticleView":
         """This view drawing the reference run (same ranges, grid and colours; its own title)."""
         return replace(self, title=title)
+
+    def shown(self, show: str, frame, ref_frame=None, ref_title: str = ""):
+        """(view, aggregate) of what a state shows: ``candidate`` (the run in view),
+        ``reference`` (the paired reference snapshot, this view's ranges and grid) or
+        ``difference`` (candidate minus reference, ``of_difference``). The dashboard and
+        ``export --view`` both draw what this returns."""
+        if show == "candidate":
+            return self, self.aggregate(frame)
+        if ref_frame is None:
+            raise ValueError(f"'{show}' needs the reference's frame")
+        if show == "reference":
+            return self.of_reference(ref_title or self.title), self.aggregate(ref_frame)
+        if show == "difference":
+            return self.of_difference(), self.difference(self.aggregate(ref_frame),
+                                                         self.aggregate(frame))
+        raise ValueError(f"show is one of {', '.join(SHOW_LABELS)}, not '{show}'")
 
 
 def state_axes(state, which: str) -> tuple[str, str]:

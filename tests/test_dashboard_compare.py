@@ -133,6 +133,72 @@ def test_reference_and_candidate_share_the_canvas(server):
     assert "ref #1" in dash._status["phase"].object
 
 
+@pytest.mark.parametrize("show", ["difference", "reference"])
+def test_a_comparing_link_exports_the_screens_picture(server, show, tmp_path):
+    from swarmaudit.app.export import ExportOptions, export_run
+    from swarmaudit.app.mpl_figures import FigureSize, draw_job
+    from swarmaudit.app import figure_data as D
+    link = ("http://127.0.0.1:5006/?" + urlencode({"run": "cand", "ref": "ref", "show": show,
+                                                    "snap": 1, "sp": "beam_right"}))
+    dash, _ = build_page(server, link_query(link.split("?", 1)[1]))
+    assert dash.state.link_notes == []
+    for which in ("space", "phase"):
+        dash.render_view(which)
+    cand, ref = server.runs["cand"].ctx, server.runs["ref"].ctx
+    res = export_run(cand, ExportOptions(out=str(tmp_path / "out"), snapshots="1", view=link,
+                                         quiet=True), keep_aggregates=True, reference=ref)
+    linked = {r.kind: r for r in res.figures if r.path.endswith(("link_space.png", "link_phase.png"))}
+    assert set(linked) == {"space", "phase"}
+    for which in ("space", "phase"):
+        view, agg = dash.shown[which]
+        rec = linked[which]
+        np.testing.assert_array_equal(np.asarray(rec.aggregate.values), np.asarray(agg.values))
+        assert (rec.view["x_range"], rec.view["y_range"]) == (view.x_range, view.y_range)
+        assert rec.title == view.title
+        assert rec.view["cmap"] == (policy.DIFFERENCE_CMAP if show == "difference" else policy.DEFAULT_CMAP)
+    # the outside reference: numpy.histogram2d of the paired snapshots (candidate 1, reference 2)
+    view, agg = dash.shown["space"]
+    c = cand.run[1].species["beam_right"]
+    r = ref.run[2].species["beam_right"]
+    expected = _hist(r, view.xcol, view.ycol, view)
+    if show == "difference":
+        expected = _hist(c, view.xcol, view.ycol, view) - expected
+    np.testing.assert_allclose(np.nan_to_num(np.asarray(linked["space"].aggregate.values)), expected)
+    if show == "difference":     # drawn centred on zero: a zero difference is the map's middle
+        data, extent = D.density_data(view, agg)
+        assert np.isfinite(data).any() and (data[np.isfinite(data)] == 0).any()
+        path = str(tmp_path / "d.png")
+        laid_out = {}
+        draw_job(("density", (view, data, extent), path), FigureSize(400, 300, 100), laid_out)
+        fig = next(iter(laid_out.values()))
+        assert fig.im.norm.vmin == -fig.im.norm.vmax == -float(np.nanmax(np.abs(data)))
+
+
+def test_a_comparing_link_without_the_reference_says_what_it_drew(server, tmp_path):
+    from swarmaudit.app.export import ExportOptions, export_run
+    link = "?" + urlencode({"run": "cand", "ref": "ref", "show": "difference", "snap": 1})
+    res = export_run(server.runs["cand"].ctx, ExportOptions(out=str(tmp_path / "o"), snapshots="1",
+                                                            view=link, quiet=True))
+    assert any("give --reference RUN" in n and "'ref'" in n for n in res.notes), res.notes
+    assert any(r.path.endswith("link_space.png") for r in res.figures)
+
+
+def test_the_notebook_view_takes_a_reference_run(server):
+    from swarmaudit.app.api import AuditedRun
+    cand = AuditedRun(server.runs["cand"].ctx)
+    ref = AuditedRun(server.runs["ref"].ctx)
+    col = cand.view("space", reference=ref, show="difference", snapshot=1, species="beam_right")
+    dash = cand._last_dashboard
+    assert (dash.state.reference, dash.state.show) == (ref.name, "difference")
+    dash.render_view("space")
+    view, agg = dash.shown["space"]
+    c = server.runs["cand"].ctx.run[1].species["beam_right"]
+    r = server.runs["ref"].ctx.run[2].species["beam_right"]
+    np.testing.assert_allclose(np.nan_to_num(np.asarray(agg.values)),
+                               _hist(c, view.xcol, view.ycol, view) - _hist(r, view.xcol, view.ycol, view))
+    assert col is not None
+
+
 def test_a_snapshot_without_a_partner_says_so(server):
     s = ViewState(server.runs, run="ref")
     s.param.update(reference="cand", show="difference", snapshot=0)   # step 0: not in cand

@@ -8,7 +8,6 @@ of particle counts.
 
 from __future__ import annotations
 
-import math
 import os
 
 import numpy as np
@@ -30,17 +29,6 @@ def density_pair(frame_ref, frame_cand, xcol_ref, ycol_ref, xcol_cand, ycol_cand
     b = render.aggregate_points(frame_cand, xcol_cand, ycol_cand, width=width, height=height,
                                 x_range=x_range, y_range=y_range)
     return render.histogram_counts(a), render.histogram_counts(b), a
-
-
-def _range_union(frames, cols):
-    from .render import data_range, padded_range
-    from .view_policy import DATA_MARGIN
-    lo, hi = math.inf, -math.inf
-    for f, c in zip(frames, cols):
-        if f.length:
-            a, b = data_range(f, c)
-            lo, hi = min(lo, a), max(hi, b)
-    return padded_range(lo, hi, margin=DATA_MARGIN) if hi >= lo else (0.0, 1.0)
 
 
 def _figure(width, height, dpi):
@@ -96,14 +84,8 @@ def _views(fa, fb, layout):
         pa, pb = pick(fa, kind), pick(fb, kind)
         if pa is None or pb is None:
             continue
-        ranges = []
-        for k, (ca, cb) in enumerate(zip(pa, pb)):
-            if ca in fa.position_names and layout is not None:
-                a = fa.position_names.index(ca)
-                if a < layout.ndim:
-                    ranges.append((float(layout.domain_lower[a]), float(layout.domain_upper[a])))
-                    continue
-            ranges.append(_range_union([fa, fb], [ca, cb]))
+        # the opening ranges of the view policy, over both runs: a domain axis, else the data
+        ranges = [policy.opening_range([fa, fb], ca, layout, cols=[ca, cb]) for ca, cb in zip(pa, pb)]
         out.append((kind, pa[0], pa[1], pb[0], pb[1], ranges[0], ranges[1]))
     return out
 

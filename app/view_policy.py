@@ -204,25 +204,27 @@ def equal_aspect(frames, xcol: str, ycol: str) -> bool:
     return all(xcol in f.position_names and ycol in f.position_names for f in frames)
 
 
-def opening_range(frames, col: str, layout=None) -> tuple[float, float]:
+def opening_range(frames, col: str, layout=None, cols=None) -> tuple[float, float]:
     """The range a view of ``col`` opens on, shared by every frame in ``frames``.
 
     A position axis of the layout opens on the domain; any other column on
     the union of the frames' finite data ranges, widened by DATA_MARGIN.
+    ``cols`` names the column in each frame when runs call it differently
+    (two runs compared side by side); by default it is ``col`` in all.
     """
     from .render import data_range, padded_range
-    frames = [f for f in frames if f is not None and col in f]
-    f0 = frames[0] if frames else None
-    if f0 is not None and layout is not None and col in f0.position_names:
-        a = f0.position_names.index(col)
+    cols = [col] * len(frames) if cols is None else list(cols)
+    pairs = [(f, c) for f, c in zip(frames, cols) if f is not None and c in f]
+    if pairs and layout is not None and pairs[0][1] in pairs[0][0].position_names:
+        a = pairs[0][0].position_names.index(pairs[0][1])
         if a < layout.ndim:
             lo, hi = float(layout.domain_lower[a]), float(layout.domain_upper[a])
             if math.isfinite(lo) and math.isfinite(hi) and hi > lo:
                 return (lo, hi)
     lo, hi = math.inf, -math.inf
-    for f in frames:
+    for f, c in pairs:
         if f.length:
-            a, b = data_range(f, col)
+            a, b = data_range(f, c)
             lo, hi = min(lo, a), max(hi, b)
     if not hi >= lo:
         return (0.0, 1.0)

@@ -58,3 +58,17 @@ def server_of(*named):
     for name, ctx in named:
         server.add(name, ctx)
     return server
+
+
+def link_figures_of(dash, res) -> dict:
+    """The two figures ``export --view LINK`` wrote (by view), checked against the dashboard
+    ``dash`` showing the same link: the same aggregate array, ranges, title and colour map."""
+    linked = {r.kind: r for r in res.figures if r.path.endswith(("link_space.png", "link_phase.png"))}
+    assert set(linked) == {"space", "phase"}
+    for which, rec in linked.items():
+        view, agg = dash.shown[which]
+        np.testing.assert_array_equal(np.asarray(rec.aggregate.values), np.asarray(agg.values))
+        assert (rec.view["x_range"], rec.view["y_range"]) == (view.x_range, view.y_range)
+        assert rec.title == view.title
+        assert rec.view["cmap"] == view.cmap
+    return linked

@@ -14,7 +14,7 @@ from urllib.parse import urlencode
 import numpy as np
 import pandas as pd
 import pytest
-from dash_fixtures import memory_context, server_of
+from dash_fixtures import link_figures_of, memory_context, server_of
 
 from swarmaudit.app import view_policy as policy
 from swarmaudit.app.dashboard import Dashboard, build_page
@@ -147,14 +147,8 @@ def test_a_comparing_link_exports_the_screens_picture(server, show, tmp_path):
     cand, ref = server.runs["cand"].ctx, server.runs["ref"].ctx
     res = export_run(cand, ExportOptions(out=str(tmp_path / "out"), snapshots="1", view=link,
                                          quiet=True), keep_aggregates=True, reference=ref)
-    linked = {r.kind: r for r in res.figures if r.path.endswith(("link_space.png", "link_phase.png"))}
-    assert set(linked) == {"space", "phase"}
-    for which in ("space", "phase"):
-        view, agg = dash.shown[which]
-        rec = linked[which]
-        np.testing.assert_array_equal(np.asarray(rec.aggregate.values), np.asarray(agg.values))
-        assert (rec.view["x_range"], rec.view["y_range"]) == (view.x_range, view.y_range)
-        assert rec.title == view.title
+    linked = link_figures_of(dash, res)
+    for rec in linked.values():
         assert rec.view["cmap"] == (policy.DIFFERENCE_CMAP if show == "difference" else policy.DEFAULT_CMAP)
     # the outside reference: numpy.histogram2d of the paired snapshots (candidate 1, reference 2)
     view, agg = dash.shown["space"]

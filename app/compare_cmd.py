@@ -10,7 +10,6 @@ figures and ``report.html``.
 from __future__ import annotations
 
 import argparse
-import copy
 import os
 import sys
 
@@ -67,12 +66,7 @@ def _contexts(args):
     if len(args.run) != 2:
         raise OptionError(f"compare takes two runs, the reference and the candidate; got {len(args.run)} "
                           "(quote a glob so that it stays one argument)")
-    out = []
-    for path in args.run:
-        one = copy.copy(args)
-        one.run = [path]
-        out.append(context_from_options(one))
-    return out
+    return [context_from_options(args, run=path) for path in args.run]
 
 
 def run_compare(args, out=None, err=None) -> int:

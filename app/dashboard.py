@@ -232,14 +232,11 @@ class Dashboard(param.Parameterized):
                                              slab_range=slab_range)
             if zoom and not view.notes:
                 self._store_ranges(which, view.x_range, view.y_range)
-            show = s.show if s.reference else "candidate"
+            show = s.showing
             if show != "candidate" and ref_frame is None:
                 status.object = f"⚠ {ref_problem}"
                 return self._empty_overlay(which, view.x_range, view.y_range, ref_problem)
-            ref_title = (view_policy.view_title(which, s.species,
-                                                f"{s.reference} {s.reference_run.describe(ref_i)}")
-                         if show == "reference" else "")
-            view, agg = view.shown(show, frame, ref_frame, ref_title)
+            view, agg = view_policy.state_shown(s, view, frame, ref_i, ref_frame)
         except SwarmAuditError as exc:
             status.object = f"⚠ {exc}"
             self.problem.object = f"**Snapshot {j} cannot be shown.** {exc}"
@@ -278,7 +275,7 @@ class Dashboard(param.Parameterized):
                              + (f"colours ±{hi:.4g}" if differs else "**no pixel differs**")
                              + extra)
         else:
-            whose = f"{s.reference} {s.reference_run.describe(ref_i)}: " if show == "reference" else ""
+            whose = f"{s.reference_label(ref_i)}: " if show == "reference" else ""
             status.object = f"{whose}{agg.attrs['particles']:,} particles binned on {nx}×{ny} bins{extra}"
         return img * sel_img * blocks * box
 

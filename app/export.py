@@ -535,24 +535,20 @@ def _export_staged(ctx, opts, plan, res, chosen, species, name, views, census_fi
             state.apply_query(query)
             for note in state.link_notes:
                 notes.append(f"--view: {note}")
-            show = state.show if state.reference else "candidate"
             for kind, path in link_figs:
                 try:
                     frame = state.frame()
-                    ref_i, ref_frame, ref_title = None, None, ""
-                    if state.reference:
-                        ref_i, ref_frame = state.reference_frame(state.snapshot)
-                        ref_title = policy.view_title(kind, state.species, f"{state.reference} "
-                                                      f"{state.reference_run.describe(ref_i)}")
+                    ref_i, ref_frame = (state.reference_frame(state.snapshot) if state.reference
+                                        else (None, None))
                     frames = [frame] + ([ref_frame] if ref_frame is not None else [])
                     view = policy.particle_view(state, kind, frame=frame, frames=frames)  # the screen's
                     with transient_columns(frames):
-                        view, agg = view.shown(show, frame, ref_frame, ref_title)
+                        view, agg = policy.state_shown(state, view, frame, ref_i, ref_frame)
                 except (InputError, OptionError, SwarmAuditError) as exc:
                     notes.append(f"--view: the {kind} view of the link cannot be drawn: {exc}")
                     bar.step()
                     continue
-                drawn = ref_frame if show == "reference" else frame
+                drawn = ref_frame if state.showing == "reference" else frame
                 add_density(_view_record(kind, path, view, agg, drawn, state.snapshot,
                                          state.species, keep_aggregates, prefix="the link's "),
                             view, agg)
@@ -835,11 +831,8 @@ def run_export(ctx, args, movie_writer=None) -> int:
     if getattr(args, "reference", None):
         if not opts.view:
             raise OptionError("--reference is the run a --view link compares with; give --view LINK too")
-        import copy
         from .options import context_from_options
-        one = copy.copy(args)
-        one.run = [args.reference]
-        reference = context_from_options(one)
+        reference = context_from_options(args, run=args.reference)
     res = export_run(ctx, opts, args, movie_writer=movie_writer, reference=reference)
     nfig = len(res.figures)
     print(f"swarmaudit export: wrote {nfig} figure{'s' if nfig != 1 else ''}, "

@@ -543,6 +543,15 @@ class ViewState(param.Parameterized):
         """The served run the run in view is compared with, or None."""
         return self._runs[self.reference] if self.reference else None
 
+    @property
+    def showing(self) -> str:
+        """What the particle views draw: ``show``, or the candidate when no reference is chosen."""
+        return self.show if self.reference else "candidate"
+
+    def reference_label(self, i: int) -> str:
+        """The reference run and its snapshot ``i``, as the views' titles and status name them."""
+        return f"{self.reference} {self.reference_run.describe(i)}"
+
     def reference_pairing(self):
         """How the reference's snapshots pair with the run in view's (audit.compare.pair_snapshots,
         the rule of ``swarmaudit compare``), or None without a reference."""

@@ -401,6 +401,15 @@ class ParticleView:
         raise ValueError(f"show is one of {', '.join(SHOW_LABELS)}, not '{show}'")
 
 
+def state_shown(state, view: ParticleView, frame, ref_i=None, ref_frame=None):
+    """``view.shown`` for what ``state`` shows (``ViewState.showing``), the reference titled
+    by its run and snapshot: the picture of the dashboard and of ``export --view`` alike."""
+    show = state.showing
+    title = view_title(view.which, state.species, state.reference_label(ref_i)) \
+        if show == "reference" else ""
+    return view.shown(show, frame, ref_frame, title)
+
+
 def state_axes(state, which: str) -> tuple[str, str]:
     return (state.space_x, state.space_y) if which == "space" else (state.phase_x, state.phase_y)
 
